@@ -1,0 +1,127 @@
+"""Calibration files: published relations as YAML data, validated, never executed.
+
+A calibration is loaded with ``yaml.safe_load``, checked against
+``workflow/schemas/calibration.schema.yaml`` and returned as a frozen
+``Calibration``. The distance methods evaluate it; nothing here knows a method.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import jsonschema
+import numpy as np
+import yaml
+
+SCHEMA_PATH = Path(__file__).resolve().parent.parent / "schemas" / "calibration.schema.yaml"
+
+
+class CalibrationError(ValueError):
+    """A calibration file is malformed; the message names the file and the key."""
+
+
+@dataclass(frozen=True)
+class Calibration:
+    name: str
+    method: str
+    form: str
+    band: str
+    system: str
+    predictor: str
+    pivot: float
+    coefficients: np.ndarray
+    covariance: np.ndarray
+    scatter: float
+    valid_range: tuple[float, float]
+    reference: dict
+    provenance: str
+    zero_point_error: float = 0.0
+    quadratic: dict | None = None
+    width_definition: str | None = None
+    velocity_definition: str | None = None
+    color_bands: tuple[str, str] | None = None
+    magnitude_pivot: float | None = None
+    notes: str = ""
+    path: str = ""
+    sha256: str = ""
+    text: str = field(default="", repr=False)
+
+    def citation(self) -> str:
+        r = self.reference
+        where = f", {r['where']}" if r.get("where") else ""
+        return f"{r['authors']} {r['year']}, {r['journal']}{where} ({self.provenance})"
+
+    def in_range(self, x) -> np.ndarray:
+        lo, hi = self.valid_range
+        x = np.asarray(x, dtype=float)
+        return (x >= lo) & (x <= hi)
+
+    def polynomial(self, x) -> np.ndarray:
+        """sum_k a_k (x - pivot)^k, vectorised."""
+        t = np.asarray(x, dtype=float) - self.pivot
+        return np.polynomial.polynomial.polyval(t, self.coefficients)
+
+    def polynomial_slope(self, x) -> np.ndarray:
+        """d/dx of ``polynomial``."""
+        t = np.asarray(x, dtype=float) - self.pivot
+        deriv = np.polynomial.polynomial.polyder(self.coefficients)
+        return np.polynomial.polynomial.polyval(t, deriv) if deriv.size else np.zeros_like(t)
+
+    def polynomial_variance(self, x) -> np.ndarray:
+        """Variance of ``polynomial`` at x from the coefficient covariance."""
+        t = np.asarray(x, dtype=float) - self.pivot
+        basis = np.stack([t**k for k in range(self.coefficients.size)], axis=-1)
+        return np.einsum("...i,ij,...j->...", basis, self.covariance, basis)
+
+
+def _fail(path, message):
+    raise CalibrationError(f"calibration file {path}: {message}")
+
+
+def load_calibration(path: str | Path) -> Calibration:
+    """Read, validate and return one calibration file."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError as exc:
+        _fail(path, f"cannot be read ({exc.strerror})")
+    try:
+        data = yaml.safe_load(text)
+    except yaml.YAMLError as exc:
+        _fail(path, f"is not valid YAML: {exc}")
+    schema = yaml.safe_load(SCHEMA_PATH.read_text(encoding="utf-8"))
+    errors = sorted(jsonschema.Draft202012Validator(schema).iter_errors(data), key=lambda e: list(e.path))
+    if errors:
+        e = errors[0]
+        key = ".".join(str(p) for p in e.path) or "(top level)"
+        _fail(path, f"key '{key}': {e.message}")
+    coeffs = np.asarray(data["coefficients"], dtype=float)
+    errs = np.asarray(data["coefficient_errors"], dtype=float)
+    if errs.size != coeffs.size:
+        _fail(path, f"key 'coefficient_errors' has {errs.size} entries, 'coefficients' has {coeffs.size}")
+    if "covariance" in data:
+        cov = np.asarray(data["covariance"], dtype=float)
+        if cov.shape != (coeffs.size, coeffs.size):
+            _fail(path, f"key 'covariance' must be {coeffs.size}x{coeffs.size}")
+        if not np.allclose(cov, cov.T):
+            _fail(path, "key 'covariance' must be symmetric")
+    else:
+        cov = np.diag(errs**2)
+    lo, hi = data["valid_range"]
+    if not lo < hi:
+        _fail(path, "key 'valid_range' must be [low, high] with low < high")
+    colors = data.get("color_bands")
+    return Calibration(
+        name=data["name"], method=data["method"], form=data["form"], band=data["band"],
+        system=data["system"], predictor=data["predictor"], pivot=float(data["pivot"]),
+        coefficients=coeffs, covariance=cov, scatter=float(data["scatter"]),
+        valid_range=(float(lo), float(hi)), reference=dict(data["reference"]),
+        provenance=data["provenance"], zero_point_error=float(data.get("zero_point_error", 0.0)),
+        quadratic=data.get("quadratic"), width_definition=data.get("width_definition"),
+        velocity_definition=data.get("velocity_definition"),
+        color_bands=tuple(colors) if colors else None,
+        magnitude_pivot=data.get("magnitude_pivot"), notes=data.get("notes", ""),
+        path=str(path), sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(), text=text,
+    )

@@ -1,0 +1,168 @@
+"""Every quality flag of galdist, in one place.
+
+Each flag column is an unsigned integer of independent bits, one meaning per bit.
+A set bit says how far to trust a value; it never removes a row. Values that can
+still be computed are computed. The README's flag table is generated from the
+``describe`` texts below (``python -m galdist.flags``).
+
+Columns and the enum that defines their bits:
+
+==================  =============  ==========================================
+column              enum           written by
+==================  =============  ==========================================
+``quality_flags``   ``Quality``    ingest (row-level input problems)
+``ext_flags``       ``Ext``        Galactic extinction
+``kcorr_flags``     ``KCorr``      K-corrections
+``z_flags``         ``Redshift``   redshift distances
+``tf_flags``        ``Method``     Tully-Fisher
+``sbf_flags``       ``Method``     surface-brightness fluctuations
+==================  =============  ==========================================
+"""
+
+from __future__ import annotations
+
+import enum
+
+import numpy as np
+
+FLAG_DTYPE = np.uint32
+
+
+class _Documented(enum.IntFlag):
+    """IntFlag whose members carry a meaning and an action for the user."""
+
+    def __new__(cls, bit: int, meaning: str, action: str):
+        obj = int.__new__(cls, 1 << bit)
+        obj._value_ = 1 << bit
+        obj.meaning = meaning
+        obj.action = action
+        return obj
+
+    @classmethod
+    def describe(cls) -> list[dict]:
+        return [
+            {"name": m.name, "bit": int(m.value).bit_length() - 1, "value": int(m.value),
+             "meaning": m.meaning, "action": m.action}
+            for m in cls
+        ]
+
+
+class Quality(_Documented):
+    """Row-level input problems found at ingest. The offending value is set to NaN
+    in the shards (the input file keeps the original), so no later stage uses it."""
+
+    POSITION_INVALID = (0, "ra or dec missing, non-finite, |dec| > 90 or ra outside [0, 360)",
+                        "fix the coordinates; extinction and the CMB frame need them")
+    REDSHIFT_INVALID = (1, "z_helio missing, non-finite, < 0 or > 1",
+                        "check the redshift; no redshift distance or K-correction is possible")
+    REDSHIFT_ERR_INVALID = (2, "z_helio_err missing, non-finite or negative",
+                            "supply an error; mu_z error then omits the measurement term")
+    MAG_INVALID = (3, "a configured band magnitude is non-finite or outside [-10, 40]",
+                   "the methods using that band get no distance for this row")
+    MAG_ERR_INVALID = (4, "a magnitude error is missing, non-finite or negative",
+                       "supply errors; distance errors omit that term")
+    WIDTH_INVALID = (5, "w50 missing, non-finite, <= 0 or > 2000 km/s",
+                     "no Tully-Fisher distance for this row")
+    WIDTH_ERR_INVALID = (6, "w50_err missing, non-finite or negative",
+                         "supply an error; TF error omits the width term")
+    AXIS_RATIO_INVALID = (7, "axis_ratio missing, non-finite or outside (0, 1]",
+                          "no inclination, hence no Tully-Fisher distance")
+    AXIS_RATIO_ERR_INVALID = (8, "axis_ratio_err missing, non-finite or negative",
+                              "supply an error; TF error omits the inclination term")
+    SBF_MAG_INVALID = (9, "sbf_mag non-finite or outside [-10, 50]",
+                       "no SBF distance for this row")
+    SBF_COLOR_INVALID = (10, "sbf_color non-finite or outside [-2, 5]",
+                         "no SBF distance for this row")
+    SBF_ERR_INVALID = (11, "sbf_mag_err or sbf_color_err missing, non-finite or negative",
+                       "supply errors; SBF error omits that term")
+    EBV_INVALID = (12, "catalog ebv non-finite or negative, or ebv_err negative",
+                   "no Galactic extinction correction from the catalog for this row")
+    OPTIONAL_INVALID = (13, "an optional numeric column (e.g. HI flux, resolution) is non-finite or negative",
+                        "the step that needs it is skipped for this row")
+
+
+class Ext(_Documented):
+    """Galactic extinction stage."""
+
+    NO_EBV = (0, "no E(B-V) available (missing in catalog or position invalid)",
+              "A_<band> is NaN; magnitudes of this row are not corrected, methods flag it")
+    HIGH_EXTINCTION = (1, "E(B-V) above the configured limit (default 0.5 mag)",
+                       "corrections are unreliable near the Galactic plane: treat distances with care")
+    OUTSIDE_MAP = (2, "position outside the map's valid area or on a blank pixel",
+                   "supply E(B-V) another way for this row")
+
+
+class KCorr(_Documented):
+    """K-correction stage."""
+
+    COLOR_CLIPPED = (0, "observed colour outside the template range; nearest template used",
+                     "K may be biased; check the photometry")
+    Z_BEYOND_GRID = (1, "redshift beyond the K(z) grid (or invalid); K is NaN",
+                     "no K-correction: methods flag the row")
+    COLOR_MISSING = (2, "colour unavailable; the configured default template was used",
+                     "K assumes the default spectrum")
+
+
+class Redshift(_Documented):
+    """Redshift-distance stage."""
+
+    NO_REDSHIFT = (0, "no valid z_helio or position: no z_cmb, mu_z",
+                   "no Hubble-flow comparison for this row")
+    LOCAL_FLOW = (1, "cz_cmb below the configured minimum (default 3000 km/s)",
+                  "peculiar velocities are a large part of cz: redshift distance is not a distance here")
+
+
+class Method(_Documented):
+    """Distance-method flags; the same bits serve ``tf_flags`` and ``sbf_flags``."""
+
+    MISSING_INPUT = (0, "an input the method needs is missing or was flagged invalid at ingest",
+                     "no distance; see quality_flags for which input")
+    OUT_OF_RANGE = (1, "predictor (log W^i or colour) outside the calibration's valid range",
+                    "extrapolated (if allowed) or NaN: the calibration does not cover this galaxy")
+    LOW_INCLINATION = (2, "inclination below the configured limit (default 45 deg)",
+                       "TF only: deprojection blows up for face-on discs; do not use the distance")
+    HIGH_EXTINCTION = (3, "inherited: Galactic E(B-V) above the limit, or no E(B-V)",
+                       "extinction corrections are unreliable")
+    KCORR_PROBLEM = (4, "inherited: K-correction clipped, defaulted or missing",
+                     "check the K-correction flags")
+    OUTLIER = (5, "|dmu| from the Hubble flow beyond the clipping threshold",
+               "inspect: wrong redshift, bad photometry, or a real large peculiar velocity")
+    LOCAL_FLOW = (6, "inherited: redshift inside the local velocity field",
+                  "dmu and v_pec are not meaningful there; the distance itself is fine")
+    EXTRAPOLATED = (7, "distance computed outside the calibrated range because config allows it",
+                    "use only with the caution the calibration's reference gives")
+
+
+ALL = {"quality_flags": Quality, "ext_flags": Ext, "kcorr_flags": KCorr,
+       "z_flags": Redshift, "tf_flags": Method, "sbf_flags": Method}
+
+
+def set_where(flags: np.ndarray, mask: np.ndarray, flag: enum.IntFlag) -> None:
+    """Set ``flag`` in ``flags`` (in place) where ``mask`` is true."""
+    flags[np.asarray(mask, dtype=bool)] |= FLAG_DTYPE(int(flag))
+
+
+def has(flags: np.ndarray, flag: enum.IntFlag | int) -> np.ndarray:
+    """Boolean array: rows where any bit of ``flag`` is set."""
+    return (np.asarray(flags, dtype=FLAG_DTYPE) & FLAG_DTYPE(int(flag))) != 0
+
+
+def new(n: int) -> np.ndarray:
+    """A fresh all-clear flag column of length ``n``."""
+    return np.zeros(n, dtype=FLAG_DTYPE)
+
+
+def markdown_table() -> str:
+    """The flag table of the README."""
+    lines = []
+    for column, enum_cls in ALL.items():
+        lines.append(f"\n**`{column}`**\n")
+        lines.append("| bit | name | meaning | what to do |")
+        lines.append("|---|---|---|---|")
+        for d in enum_cls.describe():
+            lines.append(f"| {d['bit']} | `{d['name']}` | {d['meaning']} | {d['action']} |")
+    return "\n".join(lines)
+
+
+if __name__ == "__main__":
+    print(markdown_table())
