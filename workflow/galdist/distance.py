@@ -1,4 +1,4 @@
-"""Distance modulus, distance and the homogeneous Malmquist correction.
+"""Distance modulus, distance, luminosity and the homogeneous Malmquist correction.
 
 mu = 5 log10(d / 10 pc); d in Mpc throughout galdist.
 """
@@ -35,3 +35,31 @@ def malmquist_factor(mu_err, kind: str = "mean"):
     delta = LN10_OVER_5 * np.asarray(mu_err, dtype=float)
     coeff = {"mean": 3.5, "median": 3.0}[kind]
     return np.exp(coeff * delta**2)
+
+
+# IAU 2015 Resolution B2: zero point of the absolute bolometric magnitude scale.
+IAU_L0_WATT = 3.0128e28
+# IAU 2015 Resolution B3: nominal solar luminosity.
+IAU_LSUN_WATT = 3.828e26
+PARSEC_M = 3.0856775814913673e16
+
+
+def absolute_magnitude_from_luminosity(luminosity, zero_point=IAU_L0_WATT):
+    """M = -2.5 log10(L / L0); with the IAU 2015 B2 L0 this is M_bol for L in W."""
+    return -2.5 * np.log10(np.asarray(luminosity, dtype=float) / zero_point)
+
+
+def luminosity_from_absolute_magnitude(abs_mag, zero_point=IAU_L0_WATT):
+    """Inverse of ``absolute_magnitude_from_luminosity``."""
+    return zero_point * 10.0 ** (-0.4 * np.asarray(abs_mag, dtype=float))
+
+
+def flux_from_luminosity(luminosity, d_mpc):
+    """Inverse-square flux (W m^-2) of a luminosity (W) at a distance in Mpc."""
+    d_m = np.asarray(d_mpc, dtype=float) * 1e6 * PARSEC_M
+    return np.asarray(luminosity, dtype=float) / (4.0 * np.pi * d_m**2)
+
+
+def solar_luminosities(abs_mag, abs_mag_sun):
+    """L / L_sun in a band from absolute magnitudes: 10^(-0.4 (M - M_sun))."""
+    return 10.0 ** (-0.4 * (np.asarray(abs_mag, dtype=float) - abs_mag_sun))
