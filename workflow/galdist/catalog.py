@@ -1,0 +1,198 @@
+"""Local catalog files: format detection, a structural check, and streaming reads.
+
+Parquet (a file or a directory dataset), FITS binary tables, CSV and ECSV are read
+in row batches; the whole catalog is never in memory. VOTable is XML and is parsed
+whole by astropy: keep it for small catalogs. Nothing here touches the network.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+import yaml
+
+FORMATS = ("parquet", "fits", "csv", "ecsv", "votable")
+_SUFFIXES = {".parquet": "parquet", ".pq": "parquet", ".fits": "fits", ".fit": "fits",
+             ".fts": "fits", ".csv": "csv", ".ecsv": "ecsv", ".xml": "votable",
+             ".vot": "votable", ".votable": "votable"}
+
+
+class CatalogError(ValueError):
+    """A catalog file cannot be read as declared; the message names the file."""
+
+
+@dataclass(frozen=True)
+class SourceColumn:
+    """A column as the file declares it: kind is 'numeric', 'text' or 'unknown' (CSV)."""
+
+    name: str
+    kind: str
+    unit: str | None = None
+
+
+def detect_format(path: str | Path, declared: str = "auto") -> str:
+    if declared != "auto":
+        return declared
+    path = Path(path)
+    if path.is_dir():
+        return "parquet"
+    name = path.name.lower()
+    for suffix in (".fits.gz", ".fit.gz"):
+        if name.endswith(suffix):
+            return "fits"
+    fmt = _SUFFIXES.get(path.suffix.lower())
+    if fmt is None:
+        raise CatalogError(f"catalog {path}: cannot tell its format from the name; set "
+                           f"catalog.format to one of {', '.join(FORMATS)}")
+    return fmt
+
+
+def _parquet_files(path: Path) -> list[Path]:
+    if path.is_dir():
+        files = sorted(p for p in path.rglob("*.parquet") if not p.name.startswith("."))
+        if not files:
+            raise CatalogError(f"catalog {path}: directory holds no .parquet files")
+        return files
+    return [path]
+
+
+def _arrow_kind(t: pa.DataType) -> str:
+    if pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t) or pa.types.is_null(t):
+        return "numeric"
+    if pa.types.is_string(t) or pa.types.is_large_string(t):
+        return "text"
+    return str(t)
+
+
+def _ecsv_header(path: Path) -> tuple[dict, int]:
+    """The ECSV YAML header and the number of comment lines before the column names."""
+    lines = []
+    with open(path, encoding="utf-8") as fh:
+        for line in fh:
+            if not line.startswith("#"):
+                break
+            lines.append(line[2:] if line.startswith("# ") else line[1:])
+    if not lines or not lines[0].startswith("%ECSV"):
+        raise CatalogError(f"catalog {path}: not an ECSV file (no '# %ECSV' first line)")
+    try:
+        header = yaml.safe_load("".join(lines[1:])) or {}
+    except yaml.YAMLError as exc:
+        raise CatalogError(f"catalog {path}: ECSV header is not valid YAML: {exc}") from exc
+    return header, len(lines)
+
+
+def _numpy_kind(dtype: np.dtype) -> str:
+    if dtype.kind in "iuf":
+        return "numeric"
+    if dtype.kind in "SUO":
+        return "text"
+    return str(dtype)
+
+
+def describe(path: str | Path, fmt: str) -> dict[str, SourceColumn]:
+    """The columns a file declares, without reading its rows (VOTable excepted)."""
+    path = Path(path)
+    try:
+        if fmt == "parquet":
+            schema = pq.read_schema(_parquet_files(path)[0])
+            return {f.name: SourceColumn(f.name, _arrow_kind(f.type),
+                                         (f.metadata or {}).get(b"unit", b"").decode() or None)
+                    for f in schema}
+        if fmt == "fits":
+            from astropy.io import fits
+            with fits.open(path, memmap=True) as hdul:
+                hdu = _first_table(hdul, path)
+                return {c.name: SourceColumn(c.name, "text" if "A" in c.format else "numeric", c.unit or None)
+                        for c in hdu.columns}
+        if fmt == "csv":
+            reader = pacsv.open_csv(path, read_options=pacsv.ReadOptions(block_size=1 << 16))
+            names = reader.schema.names
+            return {n: SourceColumn(n, "unknown") for n in names}
+        if fmt == "ecsv":
+            header, _ = _ecsv_header(path)
+            cols = {}
+            for c in header.get("datatype", []):
+                kind = "text" if c.get("datatype") == "string" else "numeric"
+                cols[c["name"]] = SourceColumn(c["name"], kind, c.get("unit"))
+            return cols
+        if fmt == "votable":
+            from astropy.io.votable import parse_single_table
+            table = parse_single_table(str(path))
+            return {f.name: SourceColumn(f.name, "text" if f.datatype in ("char", "unicodeChar") else "numeric",
+                                         str(f.unit) if f.unit is not None else None)
+                    for f in table.fields}
+    except CatalogError:
+        raise
+    except Exception as exc:  # corrupt or truncated files raise many kinds
+        raise CatalogError(f"catalog {path}: cannot be read as {fmt} ({type(exc).__name__}: {exc})") from exc
+    raise CatalogError(f"catalog {path}: unknown format '{fmt}' (allowed: {', '.join(FORMATS)})")
+
+
+def _first_table(hdul, path):
+    from astropy.io import fits
+    for hdu in hdul:
+        if isinstance(hdu, fits.BinTableHDU):
+            return hdu
+    raise CatalogError(f"catalog {path}: no binary table extension in the FITS file")
+
+
+def _native(arr: np.ndarray) -> np.ndarray:
+    arr = np.asarray(arr)
+    if arr.dtype.kind in "SU":
+        return np.char.strip(arr.astype(str)).astype(object)
+    if arr.dtype.byteorder not in ("=", "|"):
+        arr = arr.astype(arr.dtype.newbyteorder("="))
+    return arr
+
+
+def iter_batches(path: str | Path, fmt: str, columns: list[str], batch_rows: int) -> Iterator[dict]:
+    """Yield dicts column -> array (numpy or pyarrow) of at most ``batch_rows`` rows, in file order."""
+    path = Path(path)
+    try:
+        if fmt == "parquet":
+            for f in _parquet_files(path):
+                for batch in pq.ParquetFile(f).iter_batches(batch_size=batch_rows, columns=columns,
+                                                            use_threads=True):
+                    yield {c: batch.column(c) for c in columns}
+        elif fmt == "fits":
+            from astropy.io import fits
+            with fits.open(path, memmap=True) as hdul:
+                hdu = _first_table(hdul, path)
+                n = hdu.header["NAXIS2"]
+                for start in range(0, n, batch_rows):
+                    stop = min(n, start + batch_rows)
+                    yield {c: _native(hdu.data.field(c)[start:stop]) for c in columns}
+        elif fmt in ("csv", "ecsv"):
+            read, parse = pacsv.ReadOptions(block_size=1 << 24), pacsv.ParseOptions()
+            if fmt == "ecsv":
+                header, skip = _ecsv_header(path)
+                read = pacsv.ReadOptions(block_size=1 << 24, skip_rows=skip)
+                parse = pacsv.ParseOptions(delimiter=header.get("delimiter", " "))
+            convert = pacsv.ConvertOptions(include_columns=columns,
+                                           column_types={c: pa.string() for c in columns},
+                                           strings_can_be_null=True)
+            reader = pacsv.open_csv(path, read_options=read, parse_options=parse, convert_options=convert)
+            for batch in reader:
+                for start in range(0, batch.num_rows, batch_rows):
+                    part = batch.slice(start, batch_rows)
+                    yield {c: part.column(c) for c in columns}
+        elif fmt == "votable":
+            from astropy.io.votable import parse_single_table
+            table = parse_single_table(str(path)).to_table()
+            for start in range(0, len(table), batch_rows):
+                part = table[start:start + batch_rows]
+                yield {c: _native(np.ma.filled(part[c], np.nan) if part[c].dtype.kind == "f"
+                                  else np.ma.filled(part[c])) for c in columns}
+        else:
+            raise CatalogError(f"catalog {path}: unknown format '{fmt}'")
+    except CatalogError:
+        raise
+    except Exception as exc:
+        raise CatalogError(f"catalog {path}: reading failed ({type(exc).__name__}: {exc}); "
+                           "the file may be corrupt or truncated") from exc

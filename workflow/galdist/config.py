@@ -1,0 +1,119 @@
+"""Configuration: validated against ``workflow/schemas/config.schema.yaml`` with
+defaults filled in, before any job runs. Every problem names the key and what is
+allowed, so a run never starts on a configuration it would choke on later.
+"""
+
+from __future__ import annotations
+
+import copy
+from pathlib import Path
+
+import jsonschema
+import yaml
+
+SCHEMA_DIR = Path(__file__).resolve().parent.parent / "schemas"
+CONFIG_SCHEMA = SCHEMA_DIR / "config.schema.yaml"
+
+
+class ConfigError(ValueError):
+    """The configuration cannot be used; the message names the key."""
+
+
+def _with_defaults(validator_class):
+    """A validator that fills in ``default`` values while it validates."""
+    validate_properties = validator_class.VALIDATORS["properties"]
+
+    def set_defaults(validator, properties, instance, schema):
+        if isinstance(instance, dict):
+            for name, sub in properties.items():
+                if "default" in sub and name not in instance:
+                    instance[name] = copy.deepcopy(sub["default"])
+        yield from validate_properties(validator, properties, instance, schema)
+
+    return jsonschema.validators.extend(validator_class, {"properties": set_defaults})
+
+
+_Validator = _with_defaults(jsonschema.Draft202012Validator)
+
+
+def _key(error) -> str:
+    return ".".join(str(p) for p in error.absolute_path) or "(top level)"
+
+
+def _explain(error) -> str:
+    """One line naming the key, what is wrong and what is allowed."""
+    key = _key(error)
+    schema = error.schema
+    if error.validator == "additionalProperties":
+        allowed = sorted(schema.get("properties", {}))
+        extra = sorted(set(error.instance) - set(allowed))
+        where = f"in '{key}'" if key != "(top level)" else "at the top level"
+        hint = f"; allowed keys: {', '.join(allowed)}" if allowed else ""
+        return f"unknown config key {', '.join(repr(e) for e in extra)} {where}{hint}"
+    if error.validator == "required":
+        return f"config key '{key}' is missing a required entry: {error.message}"
+    if error.validator == "oneOf" and error.absolute_path and error.absolute_path[0] == "catalog":
+        return ("config key 'catalog': give a path, a list of paths, or "
+                "{paths: [...], format: auto|parquet|fits|csv|ecsv|votable}")
+    desc = schema.get("description")
+    tail = f" ({desc.strip()})" if desc and len(desc) < 200 else ""
+    return f"config key '{key}': {error.message}{tail}"
+
+
+def validate(config: dict, schema_path: Path = CONFIG_SCHEMA) -> dict:
+    """Validate ``config`` in place (filling defaults) and return it.
+
+    Raises ConfigError with every problem found, one per line.
+    """
+    schema = yaml.safe_load(schema_path.read_text(encoding="utf-8"))
+    errors = sorted(_Validator(schema).iter_errors(config), key=lambda e: (_key(e), e.validator))
+    if errors:
+        lines = sorted({_explain(e) for e in errors})
+        raise ConfigError("invalid configuration:\n  - " + "\n  - ".join(lines))
+    return config
+
+
+def catalog_spec(config: dict) -> tuple[list[str], str]:
+    """The catalog's paths and format, whichever shape the config gave."""
+    cat = config["catalog"]
+    if isinstance(cat, str):
+        return [cat], "auto"
+    if isinstance(cat, list):
+        return list(cat), "auto"
+    paths = cat["paths"]
+    return ([paths] if isinstance(paths, str) else list(paths)), cat.get("format", "auto")
+
+
+def check_inputs_exist(paths: list[str], buildable: set[str] = frozenset()) -> None:
+    """Every catalog path must exist (or be one the workflow itself builds)."""
+    missing = [p for p in paths if p not in buildable and not Path(p).exists()]
+    if missing:
+        raise ConfigError(
+            "config key 'catalog': input file not found: " + ", ".join(missing)
+            + " (paths are relative to the directory snakemake runs in; "
+              "no catalog is ever downloaded)")
+
+
+def check_bands(config: dict) -> None:
+    """Every band's filter must be loadable (speclite name or an existing file)."""
+    from .filters import FilterError, load_filter
+
+    problems = []
+    for label, band in config["bands"].items():
+        try:
+            load_filter(band["filter"])
+        except FilterError as exc:
+            problems.append(f"config key 'bands.{label}.filter': {exc}")
+    if problems:
+        raise ConfigError("invalid configuration:\n  - " + "\n  - ".join(problems))
+
+
+def load(path: str | Path) -> dict:
+    """Read a config file with safe YAML."""
+    try:
+        data = yaml.safe_load(Path(path).read_text(encoding="utf-8"))
+    except yaml.YAMLError as exc:
+        raise ConfigError(f"config file {path} is not valid YAML: {exc}") from exc
+    if not isinstance(data, dict):
+        raise ConfigError(f"config file {path} must hold a mapping of keys")
+    return data

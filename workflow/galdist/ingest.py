@@ -1,0 +1,379 @@
+"""Ingest: map a local catalog onto the canonical columns, flag bad values, shard.
+
+Structural problems (a missing or non-numeric column, duplicate or missing IDs)
+stop with an ``IngestError`` naming the column, rows or IDs. Row-level problems
+never drop a row: the value is set to NaN and a ``Quality`` bit records why.
+Rows keep their input order; shard k holds rows [k*S, (k+1)*S).
+"""
+
+from __future__ import annotations
+
+import logging
+import shutil
+from collections import Counter
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import astropy.units as u
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from . import flags as F
+from .catalog import CatalogError, describe, detect_format, iter_batches
+from .columns import Column, OPTIONAL, all_columns, required_columns
+from .io import field as arrow_field
+from .io import fingerprint, write_json, write_parquet, sha256_of
+
+log = logging.getLogger(__name__)
+C_KMS = 299792.458
+
+MAG_RANGE = (-10.0, 40.0)
+SBF_MAG_RANGE = (-10.0, 50.0)
+SBF_COLOR_RANGE = (-2.0, 5.0)
+W50_MAX = 2000.0
+
+
+class IngestError(ValueError):
+    """A structural problem with the catalog; the message says what and how to fix it."""
+
+
+@dataclass
+class IngestPlan:
+    """What to read: canonical column -> source column, for the files given."""
+
+    paths: list[str]
+    fmt: str
+    bands: list[str]
+    methods: list[str]
+    source_of: dict[str, str]  # canonical -> source column present in the files
+    units: dict[str, str]  # canonical -> unit of the source column
+    columns: list[Column] = field(default_factory=list)  # all shard columns
+
+    @property
+    def numeric(self) -> list[str]:
+        return [c.name for c in self.columns if not c.is_text]
+
+
+def plan(paths: list[str], fmt: str, mapping: dict, units: dict, bands: list[str],
+         methods: list[str], extra_required: list[str] = ()) -> IngestPlan:
+    """Check the catalog's structure without reading its rows; raise on any problem.
+
+    ``mapping`` is config ``columns`` (canonical -> user column), ``units`` config
+    ``units`` (canonical -> unit of the user's column).
+    """
+    known = {c.name for c in all_columns(bands, ["tully_fisher", "sbf"])}
+    unknown = sorted(set(mapping) - known)
+    if unknown:
+        raise IngestError(f"config key 'columns': unknown canonical name(s) {', '.join(unknown)}; "
+                          f"allowed: {', '.join(sorted(known))}")
+    unknown = sorted(set(units) - known)
+    if unknown:
+        raise IngestError(f"config key 'units': unknown canonical name(s) {', '.join(unknown)}")
+    required = required_columns(bands, methods, list(extra_required))
+    shard_cols = all_columns(bands, methods)
+    source_of, unit_of = {}, {}
+    fmts = []
+    for path in paths:
+        f = detect_format(path, fmt)
+        fmts.append(f)
+        declared = describe(path, f)
+        problems = []
+        for col in shard_cols:
+            src = mapping.get(col.name, col.name)
+            if src not in declared:
+                if any(col.name == r.name for r in required):
+                    how = (f"map it with config 'columns: {{{col.name}: <your column>}}'"
+                           if col.name not in mapping else f"config 'columns.{col.name}' names '{src}', which the file lacks")
+                    why = _needed_by(col.name, bands, methods)
+                    problems.append(f"missing column '{src}' for canonical '{col.name}' ({why}); {how}")
+                continue
+            kind = declared[src].kind
+            if col.is_text and kind not in ("text", "numeric", "unknown"):
+                problems.append(f"column '{src}' ({col.name}) has type {kind}; it must be text")
+            if not col.is_text and kind not in ("numeric", "unknown"):
+                problems.append(f"column '{src}' ({col.name}) has type {kind}; it must be numeric "
+                                f"(fix the file or map another column in config 'columns.{col.name}')")
+            source_of[col.name] = src
+            unit = units.get(col.name) or declared[src].unit
+            if unit:
+                _check_unit(col, unit)
+                unit_of[col.name] = unit
+        if problems:
+            raise IngestError(f"catalog {path}:\n  - " + "\n  - ".join(problems))
+    if len(set(fmts)) > 1:
+        raise IngestError(f"config key 'catalog': all files must share one format (got {', '.join(fmts)})")
+    return IngestPlan(list(paths), fmts[0], list(bands), list(methods), source_of, unit_of, shard_cols)
+
+
+def _needed_by(name: str, bands, methods) -> str:
+    from .columns import METHOD_COLUMNS
+    for m in methods:
+        if any(c.name == name for c in METHOD_COLUMNS[m]):
+            return f"needed by method {m}; or drop {m} from config 'methods'"
+    if name.startswith("mag_"):
+        return "a configured band in config 'bands'"
+    return "always needed"
+
+
+def _check_unit(col: Column, unit: str) -> None:
+    try:
+        _unit_factor(col, unit)
+    except (ValueError, u.UnitsError) as exc:
+        raise IngestError(f"config key 'units.{col.name}': {exc}") from exc
+
+
+def _unit_factor(col: Column, unit: str) -> tuple[float, bool]:
+    """(factor, is_velocity): multiply the source value by factor to get the canonical unit."""
+    if col.is_text:
+        return 1.0, False
+    src = u.Unit(unit)
+    if col.name in ("z_helio", "z_helio_err") and src.is_equivalent(u.km / u.s):
+        return src.to(u.km / u.s) / C_KMS, True
+    target = u.Unit(col.unit) if col.unit else u.dimensionless_unscaled
+    if src == u.mag or target == u.mag:
+        if src != target:
+            raise ValueError(f"unit '{unit}' cannot be converted to '{col.unit}'")
+        return 1.0, False
+    if not src.is_equivalent(target):
+        raise ValueError(f"unit '{unit}' cannot be converted to '{col.unit or 'dimensionless'}'")
+    return float(src.to(target)), False
+
+
+# --- per-batch conversion -------------------------------------------------------------
+
+def _to_float(values, name: str, first_row: int) -> np.ndarray:
+    """Numeric column as float64; text that is not a number is a structural error."""
+    if isinstance(values, (pa.Array, pa.ChunkedArray)):
+        if pa.types.is_string(values.type) or pa.types.is_large_string(values.type):
+            values = np.asarray(values.to_pylist(), dtype=object)
+        else:
+            return np.array(pc.cast(values, pa.float64()).to_numpy(zero_copy_only=False), dtype=float)
+    arr = np.asarray(values)
+    if arr.dtype.kind in "iufb":
+        return arr.astype(float)  # a copy: later steps write NaN into it
+    s = pd.Series(arr, dtype=object)
+    num = pd.to_numeric(s, errors="coerce").to_numpy(dtype=float, na_value=np.nan)
+    text = s.where(s.notna(), "").astype(str).str.strip()
+    bad = np.isnan(num) & (text != "") & ~text.str.lower().isin(["nan", "null", "none", "na", "-"]).to_numpy()
+    if bad.any():
+        idx = np.flatnonzero(bad)[:5]
+        shown = ", ".join(f"row {first_row + i + 1}: {text.iloc[i][:40]!r}" for i in idx)
+        raise IngestError(f"column '{name}' must be numeric but holds text ({int(bad.sum())} rows in this "
+                          f"batch; first: {shown}). Fix the file or map another column in config 'columns'.")
+    return num
+
+
+def _to_text(values) -> np.ndarray:
+    """Text column as an object array of stripped str (None where missing)."""
+    if isinstance(values, (pa.Array, pa.ChunkedArray)):
+        if not (pa.types.is_string(values.type) or pa.types.is_large_string(values.type)):
+            values = pc.cast(values, pa.string())
+        return pc.utf8_trim_whitespace(values).to_numpy(zero_copy_only=False).astype(object)
+    s = pd.Series(np.asarray(values, dtype=object))
+    if len(s) and isinstance(s.iloc[0], bytes):
+        s = s.str.decode("utf-8", "replace")
+    out = s.astype(object).where(s.notna(), None)
+    text = out.map(lambda v: v if v is None else str(v).strip())
+    return text.to_numpy(dtype=object)
+
+
+def _flag_invalid(values: np.ndarray, bad: np.ndarray, qflags: np.ndarray, bit) -> None:
+    bad = bad | ~np.isfinite(values)
+    F.set_where(qflags, bad, bit)
+    values[bad] = np.nan
+
+
+def quality(cols: dict[str, np.ndarray], bands: list[str], present: set[str]) -> np.ndarray:
+    """Set the Quality bits and NaN the offending values in ``cols`` (in place)."""
+    n = len(cols["ra"])
+    q = F.new(n)
+    Q = F.Quality
+    with np.errstate(invalid="ignore"):
+        ra, dec = cols["ra"], cols["dec"]
+        badpos = ~np.isfinite(ra) | ~np.isfinite(dec) | (np.abs(dec) > 90) | (ra < 0) | (ra >= 360)
+        F.set_where(q, badpos, Q.POSITION_INVALID)
+        ra[badpos] = np.nan
+        dec[badpos] = np.nan
+        z = cols["z_helio"]
+        _flag_invalid(z, (z < 0) | (z > 1), q, Q.REDSHIFT_INVALID)
+        _flag_invalid(cols["z_helio_err"], cols["z_helio_err"] < 0, q, Q.REDSHIFT_ERR_INVALID)
+        for b in bands:
+            m = cols[f"mag_{b}"]
+            _flag_invalid(m, (m < MAG_RANGE[0]) | (m > MAG_RANGE[1]), q, Q.MAG_INVALID)
+            e = cols[f"mag_{b}_err"]
+            _flag_invalid(e, e < 0, q, Q.MAG_ERR_INVALID)
+        if "w50" in cols:
+            w = cols["w50"]
+            _flag_invalid(w, (w <= 0) | (w > W50_MAX), q, Q.WIDTH_INVALID)
+            _flag_invalid(cols["w50_err"], cols["w50_err"] < 0, q, Q.WIDTH_ERR_INVALID)
+            ba = cols["axis_ratio"]
+            _flag_invalid(ba, (ba <= 0) | (ba > 1), q, Q.AXIS_RATIO_INVALID)
+            _flag_invalid(cols["axis_ratio_err"], cols["axis_ratio_err"] < 0, q, Q.AXIS_RATIO_ERR_INVALID)
+        if "sbf_mag" in cols:
+            m = cols["sbf_mag"]
+            _flag_invalid(m, (m < SBF_MAG_RANGE[0]) | (m > SBF_MAG_RANGE[1]), q, Q.SBF_MAG_INVALID)
+            c = cols["sbf_color"]
+            _flag_invalid(c, (c < SBF_COLOR_RANGE[0]) | (c > SBF_COLOR_RANGE[1]), q, Q.SBF_COLOR_INVALID)
+            for name in ("sbf_mag_err", "sbf_color_err"):
+                _flag_invalid(cols[name], cols[name] < 0, q, Q.SBF_ERR_INVALID)
+        if "ebv" in present:
+            _flag_invalid(cols["ebv"], cols["ebv"] < 0, q, Q.EBV_INVALID)
+        if "ebv_err" in present:
+            e = cols["ebv_err"]
+            bad = (e < 0) | np.isinf(e)
+            F.set_where(q, bad, Q.EBV_INVALID)
+            e[bad | ~np.isfinite(e)] = np.nan
+        for name in ("hi_flux", "w50_resolution"):
+            if name in present:
+                _flag_invalid(cols[name], cols[name] < 0, q, Q.OPTIONAL_INVALID)
+    return q
+
+
+def canonical_batch(raw: dict, p: IngestPlan, first_row: int) -> dict[str, np.ndarray]:
+    """Source batch -> canonical columns (float64 / object), units converted."""
+    n = len(next(iter(raw.values()))) if raw else 0
+    out = {}
+    for col in p.columns:
+        src = p.source_of.get(col.name)
+        if src is None:
+            out[col.name] = np.full(n, None, dtype=object) if col.is_text else np.full(n, np.nan)
+            continue
+        if col.is_text:
+            out[col.name] = _to_text(raw[src])
+            continue
+        values = _to_float(raw[src], src, first_row)
+        if col.name in p.units:
+            factor, _ = _unit_factor(col, p.units[col.name])
+            if factor != 1.0:
+                values = values * factor
+        out[col.name] = values
+    ids = out["galaxy_id"]
+    ids_s = pd.Series(ids, dtype=object)
+    missing = (ids_s.isna() | (ids_s == "")).to_numpy()
+    if missing.any():
+        rows = ", ".join(str(first_row + i + 1) for i in np.flatnonzero(missing)[:5])
+        raise IngestError(f"column '{p.source_of['galaxy_id']}' (galaxy_id) is empty in {int(missing.sum())} "
+                          f"rows (first data rows: {rows}); every galaxy needs a unique identifier")
+    return out
+
+
+def _arrow_schema(p: IngestPlan) -> pa.Schema:
+    fields = []
+    for col in p.columns:
+        fields.append(arrow_field(col.name, pa.string() if col.is_text else pa.float64(),
+                                  None if col.is_text or not col.unit else col.unit))
+    fields.append(pa.field("quality_flags", pa.uint32()))
+    return pa.schema(fields)
+
+
+def _table(cols: dict, q: np.ndarray, schema: pa.Schema) -> pa.Table:
+    arrays = [pa.array(cols[f.name], type=f.type) for f in schema if f.name != "quality_flags"]
+    arrays.append(pa.array(q, type=pa.uint32()))
+    return pa.Table.from_arrays(arrays, schema=schema)
+
+
+def run(p: IngestPlan, out_dir: str | Path, summary_path: str | Path, shard_rows: int,
+        batch_rows: int = 262_144) -> dict:
+    """Stream the catalog into shards ``out_dir/part-NNNNN.parquet`` and write the summary.
+
+    The shard directory appears only when every shard and the duplicate-ID check
+    are done (written beside it under a temporary name, then renamed).
+    """
+    out_dir = Path(out_dir)
+    tmp_dir = out_dir.parent / f".{out_dir.name}.tmp"
+    shutil.rmtree(tmp_dir, ignore_errors=True)
+    tmp_dir.mkdir(parents=True)
+    schema = _arrow_schema(p)
+    present = set(p.source_of)
+    counts: Counter = Counter()
+    hashes: list[np.ndarray] = []
+    pending: list[pa.Table] = []
+    pending_rows = 0
+    n_shards = 0
+    rows = 0
+    batch_rows = max(1, min(batch_rows, shard_rows))
+
+    def flush(final: bool = False):
+        nonlocal pending, pending_rows, n_shards
+        while pending_rows >= shard_rows or (final and (pending_rows > 0 or n_shards == 0)):
+            table = pa.concat_tables(pending) if pending else schema.empty_table()
+            shard, rest = table.slice(0, shard_rows), table.slice(shard_rows)
+            ids = shard.column("galaxy_id").to_numpy(zero_copy_only=False)
+            meta = {b"galdist.shard_fingerprint": fingerprint(ids).encode(),
+                    b"galdist.shard_index": str(n_shards).encode()}
+            write_parquet(shard.replace_schema_metadata(meta), tmp_dir / f"part-{n_shards:05d}.parquet")
+            log.info("shard %d written: %d rows", n_shards, shard.num_rows)
+            n_shards += 1
+            pending, pending_rows = ([rest], rest.num_rows) if rest.num_rows else ([], 0)
+            if final and pending_rows == 0:
+                break
+
+    try:
+        needed = sorted(set(p.source_of.values()))
+        for path in p.paths:
+            for raw in iter_batches(path, p.fmt, needed, batch_rows):
+                cols = canonical_batch(raw, p, rows)
+                q = quality(cols, p.bands, present)
+                for member in F.Quality:
+                    counts[member.name] += int(F.has(q, member).sum())
+                hashes.append(pd.util.hash_array(cols["galaxy_id"]))
+                table = _table(cols, q, schema)
+                rows += table.num_rows
+                pending.append(table)
+                pending_rows += table.num_rows
+                flush()
+                log.info("read %d rows", rows)
+        flush(final=True)
+        _check_duplicates(hashes, tmp_dir)
+        shutil.rmtree(out_dir, ignore_errors=True)
+        tmp_dir.rename(out_dir)
+    finally:
+        shutil.rmtree(tmp_dir, ignore_errors=True)
+    summary = {
+        "rows_in": rows, "rows_out": rows, "shards": n_shards, "shard_rows": shard_rows,
+        "flag_counts": {k: counts.get(k, 0) for k in (m.name for m in F.Quality)},
+        "rows_flagged": None,
+        "inputs": [{"path": str(path), "format": p.fmt, "sha256": sha256_of(path)} for path in p.paths],
+        "columns": {canonical: {"source": src, "unit": p.units.get(canonical)}
+                    for canonical, src in sorted(p.source_of.items())},
+        "absent_optional_columns": sorted(c.name for c in OPTIONAL if c.name not in p.source_of),
+    }
+    summary["rows_flagged"] = _rows_flagged(out_dir)
+    write_json(summary, summary_path)
+    return summary
+
+
+def _rows_flagged(shard_dir: Path) -> int:
+    import pyarrow.parquet as pq
+    total = 0
+    for f in sorted(shard_dir.glob("part-*.parquet")):
+        q = pq.read_table(f, columns=["quality_flags"]).column(0).to_numpy()
+        total += int(np.count_nonzero(q))
+    return total
+
+
+def _check_duplicates(hashes: list[np.ndarray], shard_dir: Path) -> None:
+    if not hashes:
+        return
+    allh = np.concatenate(hashes)
+    uniq, counts = np.unique(allh, return_counts=True)
+    dup = uniq[counts > 1]
+    if dup.size == 0:
+        return
+    import pyarrow.parquet as pq
+    found: Counter = Counter()
+    for f in sorted(shard_dir.glob("part-*.parquet")):
+        ids = pq.read_table(f, columns=["galaxy_id"]).column(0).to_numpy(zero_copy_only=False)
+        hit = np.isin(pd.util.hash_array(ids.astype(object)), dup)
+        found.update(ids[hit].tolist())
+    dups = {k: v for k, v in found.items() if v > 1}
+    if not dups:  # hash collision between distinct IDs: not a duplicate
+        return
+    shown = ", ".join(f"{k!r} x{v}" for k, v in sorted(dups.items())[:10])
+    raise IngestError(f"galaxy_id is not unique: {len(dups)} IDs repeat ({shown}"
+                      f"{', ...' if len(dups) > 10 else ''}). Every row needs its own ID.")
+
+
+__all__ = ["IngestError", "IngestPlan", "plan", "run", "quality", "canonical_batch", "CatalogError"]
