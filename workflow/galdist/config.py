@@ -52,12 +52,49 @@ def _explain(error) -> str:
         return f"unknown config key {', '.join(repr(e) for e in extra)} {where}{hint}"
     if error.validator == "required":
         return f"config key '{key}' is missing a required entry: {error.message}"
-    if error.validator == "oneOf" and error.absolute_path and error.absolute_path[0] == "catalog":
-        return ("config key 'catalog': give a path, a list of paths, or "
-                "{paths: [...], format: auto|parquet|fits|csv|ecsv|votable}")
+    if error.validator == "oneOf":
+        # explain the alternative whose type fits the value, if there is one
+        kinds = {dict: "object", list: "array", str: "string"}
+        kind = kinds.get(type(error.instance))
+        for sub in error.context or []:
+            if error.schema["oneOf"][sub.relative_schema_path[0]].get("type") == kind and sub.validator != "type":
+                return _explain(sub)
+        if key == "catalog":
+            return ("config key 'catalog': give a path, a list of paths, or "
+                    "{paths: [...], format: auto|parquet|fits|csv|ecsv|votable}")
     desc = schema.get("description")
     tail = f" ({desc.strip()})" if desc and len(desc) < 200 else ""
     return f"config key '{key}': {error.message}{tail}"
+
+
+def _coerce(instance, schema):
+    """Turn command-line strings into the number or boolean the schema expects.
+
+    ``--config 'demo={n_galaxies: 600}'`` reaches the workflow with '600' as a
+    string; a value that does not parse is left for the validator to report.
+    """
+    if isinstance(instance, dict):
+        props = schema.get("properties", {})
+        extra = schema.get("additionalProperties")
+        for k, v in instance.items():
+            sub = props.get(k, extra if isinstance(extra, dict) else None)
+            if sub is not None:
+                instance[k] = _coerce(v, sub)
+        return instance
+    if isinstance(instance, list) and isinstance(schema.get("items"), dict):
+        return [_coerce(v, schema["items"]) for v in instance]
+    if isinstance(instance, str):
+        kind = schema.get("type")
+        try:
+            if kind == "integer":
+                return int(instance)
+            if kind == "number":
+                return float(instance)
+        except ValueError:
+            return instance
+        if kind == "boolean" and instance.lower() in ("true", "false"):
+            return instance.lower() == "true"
+    return instance
 
 
 def validate(config: dict, schema_path: Path = CONFIG_SCHEMA) -> dict:
@@ -66,6 +103,7 @@ def validate(config: dict, schema_path: Path = CONFIG_SCHEMA) -> dict:
     Raises ConfigError with every problem found, one per line.
     """
     schema = yaml.safe_load(schema_path.read_text(encoding="utf-8"))
+    _coerce(config, schema)
     errors = sorted(_Validator(schema).iter_errors(config), key=lambda e: (_key(e), e.validator))
     if errors:
         lines = sorted({_explain(e) for e in errors})

@@ -49,35 +49,38 @@ class _Documented(enum.IntFlag):
 
 class Quality(_Documented):
     """Row-level input problems found at ingest. The offending value is set to NaN
-    in the shards (the input file keeps the original), so no later stage uses it."""
+    in the shards (the input file keeps the original), so no later stage uses it.
+    A group of inputs left entirely empty (no HI for an early type, no SBF for a
+    disc, a band not observed) means "not observed" and sets no bit; the methods
+    then flag MISSING_INPUT for the galaxies they cannot measure."""
 
-    POSITION_INVALID = (0, "ra or dec missing, non-finite, |dec| > 90 or ra outside [0, 360)",
+    POSITION_INVALID = (0, "ra or dec missing, non-finite, abs(dec) > 90 or ra outside [0, 360)",
                         "fix the coordinates; extinction and the CMB frame need them")
     REDSHIFT_INVALID = (1, "z_helio missing, non-finite, < 0 or > 1",
                         "check the redshift; no redshift distance or K-correction is possible")
     REDSHIFT_ERR_INVALID = (2, "z_helio_err missing, non-finite or negative",
                             "supply an error; mu_z error then omits the measurement term")
-    MAG_INVALID = (3, "a configured band magnitude is non-finite or outside [-10, 40]",
+    MAG_INVALID = (3, "a band magnitude is infinite, outside [-10, 40], or missing while its error is given",
                    "the methods using that band get no distance for this row")
-    MAG_ERR_INVALID = (4, "a magnitude error is missing, non-finite or negative",
+    MAG_ERR_INVALID = (4, "a magnitude error is negative, infinite, or missing while the magnitude is given",
                        "supply errors; distance errors omit that term")
-    WIDTH_INVALID = (5, "w50 missing, non-finite, <= 0 or > 2000 km/s",
+    WIDTH_INVALID = (5, "w50 <= 0, > 2000 km/s, infinite, or missing while other TF inputs are given",
                      "no Tully-Fisher distance for this row")
-    WIDTH_ERR_INVALID = (6, "w50_err missing, non-finite or negative",
+    WIDTH_ERR_INVALID = (6, "w50_err negative, infinite, or missing while other TF inputs are given",
                          "supply an error; TF error omits the width term")
-    AXIS_RATIO_INVALID = (7, "axis_ratio missing, non-finite or outside (0, 1]",
+    AXIS_RATIO_INVALID = (7, "axis_ratio outside (0, 1], infinite, or missing while other TF inputs are given",
                           "no inclination, hence no Tully-Fisher distance")
-    AXIS_RATIO_ERR_INVALID = (8, "axis_ratio_err missing, non-finite or negative",
+    AXIS_RATIO_ERR_INVALID = (8, "axis_ratio_err negative, infinite, or missing while other TF inputs are given",
                               "supply an error; TF error omits the inclination term")
-    SBF_MAG_INVALID = (9, "sbf_mag non-finite or outside [-10, 50]",
+    SBF_MAG_INVALID = (9, "sbf_mag outside [-10, 50], infinite, or missing while other SBF inputs are given",
                        "no SBF distance for this row")
-    SBF_COLOR_INVALID = (10, "sbf_color non-finite or outside [-2, 5]",
+    SBF_COLOR_INVALID = (10, "sbf_color outside [-2, 5], infinite, or missing while other SBF inputs are given",
                          "no SBF distance for this row")
-    SBF_ERR_INVALID = (11, "sbf_mag_err or sbf_color_err missing, non-finite or negative",
+    SBF_ERR_INVALID = (11, "sbf_mag_err or sbf_color_err negative, infinite, or missing while other SBF inputs are given",
                        "supply errors; SBF error omits that term")
-    EBV_INVALID = (12, "catalog ebv non-finite or negative, or ebv_err negative",
+    EBV_INVALID = (12, "catalog ebv negative or infinite, or ebv_err negative or infinite",
                    "no Galactic extinction correction from the catalog for this row")
-    OPTIONAL_INVALID = (13, "an optional numeric column (e.g. HI flux, resolution) is non-finite or negative",
+    OPTIONAL_INVALID = (13, "an optional numeric column (hi_flux, w50_resolution) is negative or infinite",
                         "the step that needs it is skipped for this row")
 
 

@@ -179,14 +179,29 @@ def _to_text(values) -> np.ndarray:
     return text.to_numpy(dtype=object)
 
 
-def _flag_invalid(values: np.ndarray, bad: np.ndarray, qflags: np.ndarray, bit) -> None:
+def _flag_invalid(values: np.ndarray, bad: np.ndarray, qflags: np.ndarray, bit,
+                  measured: np.ndarray | None = None) -> None:
+    """NaN the bad values and set ``bit``. Rows where ``measured`` is false were
+    simply not observed for this quantity (e.g. no HI for an early type): their
+    NaN is not a problem and sets no bit."""
     bad = bad | ~np.isfinite(values)
-    F.set_where(qflags, bad, bit)
+    F.set_where(qflags, bad if measured is None else bad & measured, bit)
     values[bad] = np.nan
 
 
+def _observed(cols, names) -> np.ndarray:
+    """Rows where any of the named inputs carries a value (NaN everywhere = not observed)."""
+    return np.logical_or.reduce([~np.isnan(cols[n]) for n in names])
+
+
 def quality(cols: dict[str, np.ndarray], bands: list[str], present: set[str]) -> np.ndarray:
-    """Set the Quality bits and NaN the offending values in ``cols`` (in place)."""
+    """Set the Quality bits and NaN the offending values in ``cols`` (in place).
+
+    Position and redshift are needed for every row, so missing counts as invalid.
+    Method inputs come in groups (a magnitude and its error; the four TF inputs; the
+    four SBF inputs): a group that is entirely missing means "not observed" and
+    sets no bit; a partly missing or out-of-range group does.
+    """
     n = len(cols["ra"])
     q = F.new(n)
     Q = F.Quality
@@ -200,34 +215,34 @@ def quality(cols: dict[str, np.ndarray], bands: list[str], present: set[str]) ->
         _flag_invalid(z, (z < 0) | (z > 1), q, Q.REDSHIFT_INVALID)
         _flag_invalid(cols["z_helio_err"], cols["z_helio_err"] < 0, q, Q.REDSHIFT_ERR_INVALID)
         for b in bands:
-            m = cols[f"mag_{b}"]
-            _flag_invalid(m, (m < MAG_RANGE[0]) | (m > MAG_RANGE[1]), q, Q.MAG_INVALID)
-            e = cols[f"mag_{b}_err"]
-            _flag_invalid(e, e < 0, q, Q.MAG_ERR_INVALID)
+            m, e = cols[f"mag_{b}"], cols[f"mag_{b}_err"]
+            seen = _observed(cols, [f"mag_{b}", f"mag_{b}_err"])
+            _flag_invalid(m, (m < MAG_RANGE[0]) | (m > MAG_RANGE[1]), q, Q.MAG_INVALID, seen)
+            _flag_invalid(e, e < 0, q, Q.MAG_ERR_INVALID, seen)
         if "w50" in cols:
-            w = cols["w50"]
-            _flag_invalid(w, (w <= 0) | (w > W50_MAX), q, Q.WIDTH_INVALID)
-            _flag_invalid(cols["w50_err"], cols["w50_err"] < 0, q, Q.WIDTH_ERR_INVALID)
-            ba = cols["axis_ratio"]
-            _flag_invalid(ba, (ba <= 0) | (ba > 1), q, Q.AXIS_RATIO_INVALID)
-            _flag_invalid(cols["axis_ratio_err"], cols["axis_ratio_err"] < 0, q, Q.AXIS_RATIO_ERR_INVALID)
+            seen = _observed(cols, ["w50", "w50_err", "axis_ratio", "axis_ratio_err"])
+            w, ba = cols["w50"], cols["axis_ratio"]
+            _flag_invalid(w, (w <= 0) | (w > W50_MAX), q, Q.WIDTH_INVALID, seen)
+            _flag_invalid(cols["w50_err"], cols["w50_err"] < 0, q, Q.WIDTH_ERR_INVALID, seen)
+            _flag_invalid(ba, (ba <= 0) | (ba > 1), q, Q.AXIS_RATIO_INVALID, seen)
+            _flag_invalid(cols["axis_ratio_err"], cols["axis_ratio_err"] < 0, q, Q.AXIS_RATIO_ERR_INVALID, seen)
         if "sbf_mag" in cols:
-            m = cols["sbf_mag"]
-            _flag_invalid(m, (m < SBF_MAG_RANGE[0]) | (m > SBF_MAG_RANGE[1]), q, Q.SBF_MAG_INVALID)
-            c = cols["sbf_color"]
-            _flag_invalid(c, (c < SBF_COLOR_RANGE[0]) | (c > SBF_COLOR_RANGE[1]), q, Q.SBF_COLOR_INVALID)
+            seen = _observed(cols, ["sbf_mag", "sbf_mag_err", "sbf_color", "sbf_color_err"])
+            m, c = cols["sbf_mag"], cols["sbf_color"]
+            _flag_invalid(m, (m < SBF_MAG_RANGE[0]) | (m > SBF_MAG_RANGE[1]), q, Q.SBF_MAG_INVALID, seen)
+            _flag_invalid(c, (c < SBF_COLOR_RANGE[0]) | (c > SBF_COLOR_RANGE[1]), q, Q.SBF_COLOR_INVALID, seen)
             for name in ("sbf_mag_err", "sbf_color_err"):
-                _flag_invalid(cols[name], cols[name] < 0, q, Q.SBF_ERR_INVALID)
-        if "ebv" in present:
-            _flag_invalid(cols["ebv"], cols["ebv"] < 0, q, Q.EBV_INVALID)
-        if "ebv_err" in present:
-            e = cols["ebv_err"]
-            bad = (e < 0) | np.isinf(e)
-            F.set_where(q, bad, Q.EBV_INVALID)
-            e[bad | ~np.isfinite(e)] = np.nan
+                _flag_invalid(cols[name], cols[name] < 0, q, Q.SBF_ERR_INVALID, seen)
+        for name, err in (("ebv", "ebv_err"),):
+            if name in present:
+                seen = _observed(cols, [name] + ([err] if err in present else []))
+                _flag_invalid(cols[name], cols[name] < 0, q, Q.EBV_INVALID, seen)
+                if err in present:
+                    _flag_invalid(cols[err], cols[err] < 0, q, Q.EBV_INVALID, seen & ~np.isnan(cols[name]))
         for name in ("hi_flux", "w50_resolution"):
             if name in present:
-                _flag_invalid(cols[name], cols[name] < 0, q, Q.OPTIONAL_INVALID)
+                v = cols[name]
+                _flag_invalid(v, v < 0, q, Q.OPTIONAL_INVALID, ~np.isnan(v))
     return q
 
 
@@ -243,7 +258,7 @@ def canonical_batch(raw: dict, p: IngestPlan, first_row: int) -> dict[str, np.nd
         if col.is_text:
             out[col.name] = _to_text(raw[src])
             continue
-        values = _to_float(raw[src], src, first_row)
+        values = np.require(_to_float(raw[src], src, first_row), requirements="W")
         if col.name in p.units:
             factor, _ = _unit_factor(col, p.units[col.name])
             if factor != 1.0:

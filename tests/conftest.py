@@ -1,0 +1,60 @@
+"""Shared test helpers: a tiny hand-made catalog and a way to run the workflow."""
+
+from __future__ import annotations
+
+import os
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+REPO = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(REPO / "workflow"))
+
+BANDS = ["V", "I", "Ks"]
+
+
+def small_catalog(n: int = 40, seed: int = 1) -> dict:
+    """A small canonical-column catalog with valid values (invented, for tests only)."""
+    rng = np.random.default_rng(seed)
+    cols = {
+        "galaxy_id": np.array([f"T-{i:04d}" for i in range(n)], dtype=object),
+        "ra": rng.uniform(0, 359, n), "dec": rng.uniform(-80, 80, n),
+        "z_helio": rng.uniform(0.005, 0.05, n), "z_helio_err": np.full(n, 3e-5),
+        "ebv": rng.uniform(0.01, 0.1, n), "ebv_err": np.full(n, 0.003),
+        "w50": rng.uniform(150, 500, n), "w50_err": np.full(n, 6.0),
+        "axis_ratio": rng.uniform(0.25, 0.7, n), "axis_ratio_err": np.full(n, 0.03),
+        "sbf_mag": rng.uniform(29, 33, n), "sbf_mag_err": np.full(n, 0.07),
+        "sbf_color": rng.uniform(1.05, 1.25, n), "sbf_color_err": np.full(n, 0.02),
+        "galaxy_class": np.array(["disc"] * n, dtype=object),
+    }
+    for b in BANDS:
+        cols[f"mag_{b}"] = rng.uniform(11, 16, n)
+        cols[f"mag_{b}_err"] = np.full(n, 0.04)
+    return cols
+
+
+def copy_workflow(dest: Path) -> Path:
+    """A copy of the workflow (code and config, no results) to run in isolation."""
+    for name in ("Snakefile", "workflow", "scripts", "config"):
+        src = REPO / name
+        if src.is_dir():
+            shutil.copytree(src, dest / name, ignore=shutil.ignore_patterns("__pycache__"))
+        else:
+            shutil.copy2(src, dest / name)
+    return dest
+
+
+def run_snakemake(workdir: Path, *args: str, timeout: int = 900) -> subprocess.CompletedProcess:
+    env = dict(os.environ)
+    env.pop("SNAKEMAKE_PROFILE", None)
+    cmd = [sys.executable, "-m", "snakemake", "--cores", "2", *args]
+    return subprocess.run(cmd, cwd=workdir, env=env, capture_output=True, text=True, timeout=timeout)
+
+
+@pytest.fixture
+def workflow_copy(tmp_path):
+    return copy_workflow(tmp_path)
