@@ -24,7 +24,7 @@ from . import flags as F
 from .catalog import CatalogError, describe, detect_format, iter_batches
 from .columns import Column, OPTIONAL, all_columns, required_columns
 from .io import field as arrow_field
-from .io import fingerprint, write_json, write_parquet, sha256_of
+from .io import INTERMEDIATE_COMPRESSION, AtomicParquetWriter, Fingerprint, sha256_of, write_json
 
 log = logging.getLogger(__name__)
 C_KMS = 299792.458
@@ -289,12 +289,54 @@ def _table(cols: dict, q: np.ndarray, schema: pa.Schema) -> pa.Table:
     return pa.Table.from_arrays(arrays, schema=schema)
 
 
+class _ShardWriter:
+    """Writes consecutive shards of ``shard_rows`` rows, batch by batch (bounded memory)."""
+
+    def __init__(self, directory: Path, schema: pa.Schema, shard_rows: int):
+        self.directory, self.schema, self.shard_rows = directory, schema, shard_rows
+        self.count = 0
+        self.hashes: list[np.ndarray] = []
+        self._open()
+
+    def _open(self):
+        self.rows = 0
+        self.fp = Fingerprint()
+        self.writer = AtomicParquetWriter(self.directory / f"part-{self.count:05d}.parquet", self.schema,
+                                          compression=INTERMEDIATE_COMPRESSION)
+
+    def _close(self):
+        self.writer.add_metadata({"galdist.shard_fingerprint": self.fp.hexdigest(),
+                                  "galdist.shard_index": str(self.count)})
+        self.writer.__exit__(None, None, None)
+        log.info("shard %d written: %d rows", self.count, self.rows)
+        self.count += 1
+
+    def write(self, table: pa.Table) -> None:
+        while table.num_rows:
+            take = min(table.num_rows, self.shard_rows - self.rows)
+            part, table = table.slice(0, take), table.slice(take)
+            self.hashes.append(self.fp.update(part.column("galaxy_id").to_numpy(zero_copy_only=False)))
+            self.writer.write(part)
+            self.rows += take
+            if self.rows == self.shard_rows and table.num_rows:
+                self._close()
+                self._open()
+
+    def finish(self) -> int:
+        self._close()
+        return self.count
+
+    def abort(self) -> None:
+        self.writer.__exit__(RuntimeError, None, None)
+
+
 def run(p: IngestPlan, out_dir: str | Path, summary_path: str | Path, shard_rows: int,
-        batch_rows: int = 262_144) -> dict:
+        batch_rows: int = 131_072) -> dict:
     """Stream the catalog into shards ``out_dir/part-NNNNN.parquet`` and write the summary.
 
-    The shard directory appears only when every shard and the duplicate-ID check
-    are done (written beside it under a temporary name, then renamed).
+    Memory stays at about one batch whatever the catalog size. The shard directory
+    appears only when every shard and the duplicate-ID check are done (it is written
+    beside its final place under a temporary name, then renamed).
     """
     out_dir = Path(out_dir)
     tmp_dir = out_dir.parent / f".{out_dir.name}.tmp"
@@ -303,70 +345,40 @@ def run(p: IngestPlan, out_dir: str | Path, summary_path: str | Path, shard_rows
     schema = _arrow_schema(p)
     present = set(p.source_of)
     counts: Counter = Counter()
-    hashes: list[np.ndarray] = []
-    pending: list[pa.Table] = []
-    pending_rows = 0
-    n_shards = 0
-    rows = 0
-    batch_rows = max(1, min(batch_rows, shard_rows))
-
-    def flush(final: bool = False):
-        nonlocal pending, pending_rows, n_shards
-        while pending_rows >= shard_rows or (final and (pending_rows > 0 or n_shards == 0)):
-            table = pa.concat_tables(pending) if pending else schema.empty_table()
-            shard, rest = table.slice(0, shard_rows), table.slice(shard_rows)
-            ids = shard.column("galaxy_id").to_numpy(zero_copy_only=False)
-            meta = {b"galdist.shard_fingerprint": fingerprint(ids).encode(),
-                    b"galdist.shard_index": str(n_shards).encode()}
-            write_parquet(shard.replace_schema_metadata(meta), tmp_dir / f"part-{n_shards:05d}.parquet")
-            log.info("shard %d written: %d rows", n_shards, shard.num_rows)
-            n_shards += 1
-            pending, pending_rows = ([rest], rest.num_rows) if rest.num_rows else ([], 0)
-            if final and pending_rows == 0:
-                break
-
+    rows = flagged = 0
+    writer = _ShardWriter(tmp_dir, schema, shard_rows)
     try:
         needed = sorted(set(p.source_of.values()))
         for path in p.paths:
-            for raw in iter_batches(path, p.fmt, needed, batch_rows):
+            for raw in iter_batches(path, p.fmt, needed, max(1, min(batch_rows, shard_rows))):
                 cols = canonical_batch(raw, p, rows)
                 q = quality(cols, p.bands, present)
                 for member in F.Quality:
                     counts[member.name] += int(F.has(q, member).sum())
-                hashes.append(pd.util.hash_array(cols["galaxy_id"]))
-                table = _table(cols, q, schema)
-                rows += table.num_rows
-                pending.append(table)
-                pending_rows += table.num_rows
-                flush()
+                flagged += int(np.count_nonzero(q))
+                writer.write(_table(cols, q, schema))
+                rows += len(q)
                 log.info("read %d rows", rows)
-        flush(final=True)
-        _check_duplicates(hashes, tmp_dir)
+        n_shards = writer.finish()
+        _check_duplicates(writer.hashes, tmp_dir)
         shutil.rmtree(out_dir, ignore_errors=True)
         tmp_dir.rename(out_dir)
+    except BaseException:
+        writer.abort()
+        raise
     finally:
         shutil.rmtree(tmp_dir, ignore_errors=True)
     summary = {
-        "rows_in": rows, "rows_out": rows, "shards": n_shards, "shard_rows": shard_rows,
-        "flag_counts": {k: counts.get(k, 0) for k in (m.name for m in F.Quality)},
-        "rows_flagged": None,
+        "rows_in": rows, "rows_out": rows, "rows_flagged": flagged, "shards": n_shards,
+        "shard_rows": shard_rows,
+        "flag_counts": {m.name: counts.get(m.name, 0) for m in F.Quality},
         "inputs": [{"path": str(path), "format": p.fmt, "sha256": sha256_of(path)} for path in p.paths],
         "columns": {canonical: {"source": src, "unit": p.units.get(canonical)}
                     for canonical, src in sorted(p.source_of.items())},
         "absent_optional_columns": sorted(c.name for c in OPTIONAL if c.name not in p.source_of),
     }
-    summary["rows_flagged"] = _rows_flagged(out_dir)
     write_json(summary, summary_path)
     return summary
-
-
-def _rows_flagged(shard_dir: Path) -> int:
-    import pyarrow.parquet as pq
-    total = 0
-    for f in sorted(shard_dir.glob("part-*.parquet")):
-        q = pq.read_table(f, columns=["quality_flags"]).column(0).to_numpy()
-        total += int(np.count_nonzero(q))
-    return total
 
 
 def _check_duplicates(hashes: list[np.ndarray], shard_dir: Path) -> None:

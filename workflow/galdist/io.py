@@ -60,6 +60,10 @@ class AtomicParquetWriter:
     def write(self, table: pa.Table) -> None:
         self.writer.write_table(table, row_group_size=256 * 1024)
 
+    def add_metadata(self, metadata: dict) -> None:
+        """Key-value metadata written into the footer when the file closes."""
+        self.writer.add_key_value_metadata(metadata)
+
     def __enter__(self):
         return self
 
@@ -93,11 +97,27 @@ def _json_default(obj):
     raise TypeError(f"not JSON serialisable: {type(obj)}")
 
 
+class Fingerprint:
+    """Incremental hash of a galaxy_id column, fed batch by batch in row order."""
+
+    def __init__(self):
+        self._h = hashlib.blake2b(digest_size=16)
+
+    def update(self, galaxy_ids) -> np.ndarray:
+        """Add a batch; returns the per-row 64-bit hashes (reused for duplicate checks)."""
+        rows = pd.util.hash_array(np.asarray(galaxy_ids, dtype=object))
+        self._h.update(rows.tobytes())
+        return rows
+
+    def hexdigest(self) -> str:
+        return self._h.hexdigest()
+
+
 def fingerprint(galaxy_ids) -> str:
     """A hash of a shard's galaxy_id column, in order."""
-    ids = pd.Series(np.asarray(galaxy_ids, dtype=object))
-    return hashlib.blake2b(pd.util.hash_pandas_object(ids, index=False).to_numpy().tobytes(),
-                           digest_size=16).hexdigest()
+    f = Fingerprint()
+    f.update(galaxy_ids)
+    return f.hexdigest()
 
 
 def field(name: str, dtype: pa.DataType, unit: str | None = None) -> pa.Field:
@@ -128,7 +148,7 @@ def write_stage_columns(columns: dict, path: str | Path, shard_fingerprint: str,
 
 
 def read_fingerprint(path: str | Path) -> str:
-    meta = pq.read_schema(path).metadata or {}
+    meta = pq.read_metadata(path).metadata or {}
     return meta.get(FINGERPRINT_KEY, b"").decode()
 
 
