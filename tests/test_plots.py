@@ -1,0 +1,138 @@
+"""Tests of galdist.plots: every plot is written, non-empty, for data, NaNs and nothing."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from galdist import flags, plots
+from galdist.calibration import load_calibration
+from galdist.flags import Method
+from galdist.redshift import MuGrid, make_cosmology
+
+PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
+
+# A synthetic TF calibration for drawing only: NOT a published calibration.
+TF_YAML = """\
+name: synthetic_tf
+method: tully_fisher
+form: luminosity
+band: Cousins I
+system: Vega
+predictor: log_w_i
+width_definition: w50
+pivot: 2.5
+coefficients: [-21.0, -8.0]
+coefficient_errors: [0.05, 0.3]
+quadratic: {break: 2.6, coefficient: -5.0}
+scatter: 0.4
+valid_range: [2.0, 2.9]
+reference: {authors: "synthetic", year: 2024, journal: "test fixture"}
+provenance: "synthetic test values, not a published calibration"
+"""
+
+# Tonry et al. 1997, ApJ 475, 399: M_I = -1.74 + 4.5 [(V-I)_0 - 1.15], 1.0 < (V-I)_0 < 1.3
+# (secondary copy, reference-values.md). Used here only to draw a line.
+SBF_YAML = """\
+name: tonry1997_i
+method: sbf
+form: colour_polynomial
+band: Cousins I
+system: Vega
+predictor: V-I
+color_bands: [V, I]
+pivot: 1.15
+coefficients: [-1.74, 4.5]
+coefficient_errors: [0.07, 0.25]
+scatter: 0.08
+valid_range: [1.0, 1.3]
+reference: {authors: "Tonry, Blakeslee, Ajhar & Dressler", year: 1997, journal: "ApJ 475, 399"}
+provenance: "secondary copy"
+"""
+
+COLUMNS = ["z_cmb", "mu_z", "mu_z_err", "gal_l", "gal_b",
+           "tf_mu", "tf_mu_err", "tf_flags", "tf_logw_i", "tf_abs_mag", "tf_dmu", "tf_vpec",
+           "sbf_mu", "sbf_mu_err", "sbf_flags", "sbf_color_0", "sbf_abs_mag", "sbf_dmu", "sbf_vpec"]
+
+
+@pytest.fixture(scope="module")
+def grid():
+    return MuGrid.build(make_cosmology(), z_max=0.5, n=500)
+
+
+@pytest.fixture()
+def calibrations(tmp_path):
+    (tmp_path / "tf.yaml").write_text(TF_YAML)
+    (tmp_path / "sbf.yaml").write_text(SBF_YAML)
+    return load_calibration(tmp_path / "tf.yaml"), load_calibration(tmp_path / "sbf.yaml")
+
+
+def _frame(grid, n=150, seed=1):
+    rng = np.random.default_rng(seed)
+    z = rng.uniform(0.003, 0.08, n)
+    mu_z = grid.mu(z)
+    tf_flags, sbf_flags = flags.new(n), flags.new(n)
+    flags.set_where(tf_flags, rng.random(n) < 0.1, Method.OUTLIER)
+    flags.set_where(sbf_flags, rng.random(n) < 0.1, Method.OUT_OF_RANGE)
+    tf_mu = mu_z + rng.normal(0, 0.4, n)
+    sbf_mu = np.where(rng.random(n) < 0.3, mu_z + rng.normal(0, 0.1, n), np.nan)
+    logw = rng.uniform(2.1, 2.8, n)
+    col = rng.uniform(1.0, 1.3, n)
+    return pd.DataFrame({
+        "z_cmb": z, "mu_z": mu_z, "mu_z_err": np.full(n, 0.1),
+        "gal_l": rng.uniform(0, 360, n), "gal_b": np.degrees(np.arcsin(rng.uniform(-1, 1, n))),
+        "tf_mu": tf_mu, "tf_mu_err": np.full(n, 0.4), "tf_flags": tf_flags,
+        "tf_logw_i": logw, "tf_abs_mag": -21.0 - 8.0 * (logw - 2.5) + rng.normal(0, 0.4, n),
+        "tf_dmu": tf_mu - mu_z, "tf_vpec": rng.normal(0, 400, n),
+        "sbf_mu": sbf_mu, "sbf_mu_err": np.full(n, 0.1), "sbf_flags": sbf_flags,
+        "sbf_color_0": col, "sbf_abs_mag": -1.74 + 4.5 * (col - 1.15) + rng.normal(0, 0.1, n),
+        "sbf_dmu": sbf_mu - mu_z, "sbf_vpec": np.where(np.isfinite(sbf_mu), rng.normal(0, 300, n), np.nan),
+    })
+
+
+def _draw_all(df, tmp_path, grid, calibrations):
+    tf_cal, sbf_cal = calibrations
+    return {
+        "hubble": plots.hubble_diagram(df, tmp_path / "hubble.png", grid),
+        "tf": plots.tf_relation(df, tmp_path / "tf.png", tf_cal),
+        "sbf": plots.sbf_relation(df, tmp_path / "sbf.png", sbf_cal),
+        "dmu": plots.dmu_histograms(df, tmp_path / "dmu.png"),
+        "sky": plots.vpec_sky(df, tmp_path / "sky.png"),
+    }
+
+
+def _assert_pngs(tmp_path, names):
+    for name in names:
+        data = (tmp_path / f"{name}.png").read_bytes()
+        assert data[:8] == PNG_MAGIC and len(data) > 2000, name
+
+
+def test_plots_of_synthetic_frame(tmp_path, grid, calibrations):
+    df = _frame(grid)
+    counts = _draw_all(df, tmp_path, grid, calibrations)
+    _assert_pngs(tmp_path, counts)
+    n_sbf = int(np.isfinite(df["sbf_mu"]).sum())
+    assert counts["hubble"] == len(df) + n_sbf
+    assert counts["tf"] == len(df) and counts["sbf"] == len(df)
+    cz_ok = df["z_cmb"] * 299792.458 >= 3000
+    assert counts["dmu"] == int(cz_ok.sum() + (cz_ok & np.isfinite(df["sbf_dmu"])).sum())
+    assert counts["sky"] == len(df) + n_sbf
+
+
+def test_plots_of_all_nan_frame(tmp_path, grid, calibrations):
+    df = pd.DataFrame({c: np.full(20, np.nan) for c in COLUMNS})
+    df["tf_flags"] = flags.new(20)
+    df["sbf_flags"] = flags.new(20)
+    counts = _draw_all(df, tmp_path, grid, calibrations)
+    assert all(v == 0 for v in counts.values())
+    _assert_pngs(tmp_path, counts)
+
+
+def test_plots_of_empty_frame_without_columns_or_calibration(tmp_path, grid):
+    df = pd.DataFrame({"z_cmb": np.zeros(0)})
+    paths = plots.write_all(df, tmp_path / "plots", grid)
+    assert set(paths) == {"hubble_diagram", "tf_relation", "sbf_relation", "dmu_histograms", "vpec_sky"}
+    for p in paths.values():
+        data = open(p, "rb").read()
+        assert data[:8] == PNG_MAGIC and len(data) > 2000

@@ -1,0 +1,390 @@
+"""Cross-check of method distances against the Hubble flow, and between methods.
+
+Per method M (a column prefix: "tf", "sbf", later "fp"; nothing here is
+specific to one method):
+
+* dmu = mu_M - mu_z and the log-distance ratio eta = log10(d_z / d_M) = -dmu/5
+  (both luminosity distances);
+* peculiar velocities, two ways:
+  (a) exact: z_cos from inverting d_L(z) at the method's distance, then
+      (1 + z_cmb) = (1 + z_cos)(1 + z_pec), v = c z_pec (Davis & Scrimgeour
+      2014, MNRAS 442, 1117, Eq. 1 form);
+  (b) the log-ratio estimator of Watkins & Feldman 2015 (MNRAS 450, 1868),
+      see ``peculiar_velocity_log_ratio`` for its form, the derivation of which
+      distance it takes, and how it differs from (a);
+* sample statistics with iterative clipping (zero point, implied H0, scatter,
+  outlier flags), method-pair offsets, and the inverse-variance best distance.
+
+Sample statistics are plain dicts of JSON-ready values (float, int, str, or
+None where a value is undefined) for summary.json.
+"""
+
+from __future__ import annotations
+
+import itertools
+from collections.abc import Iterable, Mapping, Sequence
+
+import numpy as np
+
+from . import flags as _flags
+from .flags import Method
+from .redshift import C_KMS, MuGrid
+
+LN10 = np.log(10.0)
+
+#: methods tried, in this order, by ``crosscheck`` (those without a <M>_mu column are skipped)
+DEFAULT_METHODS = ("tf", "sbf", "fp")
+
+
+def _bits(names: Iterable[str | Method] | int | None, key: str = "crosscheck.best_ignore_flags") -> int:
+    """An integer mask of Method bits from names (or members, or an int); ``key``
+    names the config entry in the error message."""
+    if names is None:
+        return 0
+    if isinstance(names, (int, np.integer)):
+        return int(names)
+    out = 0
+    for n in names:
+        if isinstance(n, Method):
+            out |= int(n)
+        elif n in Method.__members__:
+            out |= int(Method[n])
+        else:
+            raise ValueError(f"{key}: unknown method flag {n!r}; allowed: "
+                             f"{', '.join(Method.__members__)}")
+    return out
+
+
+ALL_METHOD_BITS = _bits(list(Method))
+
+
+def _f(x) -> float | None:
+    """JSON-ready float: None for NaN/inf."""
+    x = float(x)
+    return x if np.isfinite(x) else None
+
+
+# --------------------------------------------------------------------------- per galaxy
+
+def delta_mu(mu, mu_z) -> np.ndarray:
+    """dmu = mu_method - mu_z (mag)."""
+    return np.asarray(mu, dtype=float) - np.asarray(mu_z, dtype=float)
+
+
+def log_distance_ratio(mu, mu_z) -> np.ndarray:
+    """eta = log10(d_z / d) = (mu_z - mu) / 5, both luminosity distances."""
+    return -0.2 * delta_mu(mu, mu_z)
+
+
+def inherit_local_flow(method_flags, z_flags) -> np.ndarray:
+    """Copy of ``method_flags`` with Method.LOCAL_FLOW where z_flags has Redshift.LOCAL_FLOW."""
+    out = np.array(method_flags, dtype=_flags.FLAG_DTYPE, copy=True)
+    _flags.set_where(out, _flags.has(z_flags, _flags.Redshift.LOCAL_FLOW), Method.LOCAL_FLOW)
+    return out
+
+
+def peculiar_velocity_exact(mu, mu_err, z_cmb, z_cmb_err, grid: MuGrid):
+    """Peculiar velocity (km/s) from (1 + z_cmb) = (1 + z_cos)(1 + z_pec), v = c z_pec.
+
+    z_cos is the redshift whose luminosity distance is the method's distance,
+    found by inverting the grid's d_L(z) (Davis & Scrimgeour 2014, MNRAS 442,
+    1117). First-order error from sigma_mu and sigma_z_cmb:
+    dz_pec/dz_cmb = 1/(1 + z_cos), dz_pec/dmu = -(1 + z_cmb)/(1 + z_cos)^2 dz_cos/dmu.
+    Returns (v, v_err); NaN where mu or z_cmb is missing or beyond the grid.
+    """
+    mu = np.asarray(mu, dtype=float)
+    z = np.asarray(z_cmb, dtype=float)
+    z_cos = grid.z_from_mu(mu)
+    one_c = 1.0 + z_cos
+    v = C_KMS * ((1.0 + z) / one_c - 1.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        dz_dmu = 1.0 / grid.dmu_dz(z_cos)
+    d_mu = -(1.0 + z) / one_c**2 * dz_dmu
+    d_z = 1.0 / one_c
+    s_mu = np.nan_to_num(np.asarray(mu_err, dtype=float), nan=0.0)
+    s_z = np.nan_to_num(np.asarray(z_cmb_err, dtype=float), nan=0.0)
+    err = C_KMS * np.sqrt((d_mu * s_mu) ** 2 + (d_z * s_z) ** 2)
+    return v, np.where(np.isfinite(v), err, np.nan)
+
+
+def modified_redshift(z, q0: float, j0: float) -> np.ndarray:
+    """z_mod = z [1 + (1 - q0) z / 2 - (1 - q0 - 3 q0^2 + j0) z^2 / 6].
+
+    Watkins & Feldman 2015, MNRAS 450, 1868 (form quoted from a secondary copy;
+    the j0 term should be checked against the paper). It is the third-order
+    Taylor series of the flat-space luminosity distance, H0 d_L / c (Visser 2004,
+    Class. Quantum Grav. 21, 2603, from memory); tests/test_crosscheck.py checks
+    numerically that c z_mod / H0 - d_L(z) is O(z^4) for flat LCDM.
+    """
+    z = np.asarray(z, dtype=float)
+    return z * (1.0 + 0.5 * (1.0 - q0) * z - (1.0 - q0 - 3.0 * q0**2 + j0) * z**2 / 6.0)
+
+
+def peculiar_velocity_log_ratio(mu, mu_err, z_cmb, z_cmb_err, h0: float, q0: float, j0: float):
+    """Log-ratio peculiar-velocity estimator of Watkins & Feldman 2015 (MNRAS 450, 1868):
+
+        v = c z_mod / (1 + z_mod) * ln(c z_mod / (H0 d)),  z_mod from ``modified_redshift``.
+
+    Which distance d: with no peculiar velocity the estimator must give v = 0,
+    i.e. c z_mod(z) = H0 d(z). z_mod matches term by term the expansion
+    H0 d_L / c = z + (1 - q0) z^2 / 2 - (1 - q0 - 3 q0^2 + j0) z^3 / 6 + O(z^4)
+    of the luminosity distance, whereas the comoving distance has
+    z - (1 + q0) z^2 / 2 + ..., which would leave v = c z ln(1 + z) / (1 + z) at
+    zero peculiar velocity. So d is the luminosity distance, d = 10^((mu - 25)/5)
+    Mpc, as every galdist distance is. (Derived here, not read in the paper.)
+
+    How it differs from the exact form (``peculiar_velocity_exact``): for
+    v << c z, writing z_c for z_cos, ln(z_mod(z)/z_mod(z_c)) ~ z_mod'(z) dz / z_mod
+    with dz = (1 + z_c) v / c, so v_lr / v_exact -> z_mod'(z)(1 + z)/(1 + z_mod)
+    = 1 + (1 - q0) z - (2 - 2 q0 - 3 q0^2 + j0) z^2 / 2 + O(z^3): about +1.6% at
+    z = 0.01 and +14% at z = 0.1 for q0 = -0.55, j0 = 1; in addition the
+    logarithm adds a relative term ~ v / (2 c z). The estimator's virtue is that
+    its error is Gaussian when the error of mu is (W&F 2015), not that it equals
+    c z_pec.
+
+    Error (first order): dv/dmu = -A ln10 / 5 with A = c z_mod / (1 + z_mod);
+    dv/dz = c z_mod' / (1 + z_mod)^2 * L + A z_mod' / z_mod, L the logarithm.
+    NaN where z_cmb <= 0 or inputs are missing.
+    """
+    mu = np.asarray(mu, dtype=float)
+    z = np.asarray(z_cmb, dtype=float)
+    zm = modified_redshift(z, q0, j0)
+    dzm = 1.0 + (1.0 - q0) * z - 0.5 * (1.0 - q0 - 3.0 * q0**2 + j0) * z**2
+    d_mpc = 10.0 ** (0.2 * (mu - 25.0))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ok = zm > 0
+        L = np.where(ok, np.log(np.where(ok, C_KMS * zm / (float(h0) * d_mpc), 1.0)), np.nan)
+        A = C_KMS * zm / (1.0 + zm)
+        v = A * L
+        d_mu = -A * LN10 / 5.0
+        d_z = C_KMS * dzm / (1.0 + zm) ** 2 * L + A * dzm / zm
+    s_mu = np.nan_to_num(np.asarray(mu_err, dtype=float), nan=0.0)
+    s_z = np.nan_to_num(np.asarray(z_cmb_err, dtype=float), nan=0.0)
+    err = np.sqrt((d_mu * s_mu) ** 2 + (d_z * s_z) ** 2)
+    return v, np.where(np.isfinite(v), err, np.nan)
+
+
+# --------------------------------------------------------------------------- sample statistics
+
+def _clip(values, usable, clip_sigma: float, max_iter: int):
+    """Iterative clipping about the median at clip_sigma x the sample standard
+    deviation (common practice); rejected points may re-enter. Returns the final
+    selection, centre, scale and number of iterations."""
+    sel = usable.copy()
+    center = scale = np.nan
+    it = 0
+    for it in range(1, max_iter + 1):
+        if sel.sum() < 3:
+            break
+        center = float(np.median(values[sel]))
+        scale = float(np.std(values[sel], ddof=1))
+        new = usable & (np.abs(values - center) <= clip_sigma * scale)
+        if np.array_equal(new, sel):
+            break
+        sel = new
+    if sel.sum() >= 1:
+        center = float(np.median(values[sel]))
+        scale = float(np.std(values[sel], ddof=1)) if sel.sum() > 1 else np.nan
+    return sel, center, scale, it
+
+
+def _summary(values, errors, sel) -> dict:
+    """Median, weighted mean, scatter and chi2 of values[sel] with errors[sel]."""
+    n = int(sel.sum())
+    x, e = values[sel], errors[sel]
+    out = {"n_used": n}
+    if n == 0:
+        return out | dict.fromkeys(["median", "median_err", "wmean", "wmean_err",
+                                    "wmean_err_formal", "std", "rms_expected_err",
+                                    "excess_scatter", "chi2_nu"])
+    w = 1.0 / e**2
+    wmean = float(np.sum(w * x) / np.sum(w))
+    formal = float(1.0 / np.sqrt(np.sum(w)))
+    std = float(np.std(x, ddof=1)) if n > 1 else np.nan
+    chi2_nu = float(np.sum(w * (x - wmean) ** 2) / (n - 1)) if n > 1 else np.nan
+    rms_exp = float(np.sqrt(np.mean(e**2)))
+    inflate = np.sqrt(max(1.0, chi2_nu)) if np.isfinite(chi2_nu) else 1.0
+    return out | {
+        "median": _f(np.median(x)),
+        # asymptotic error of a Gaussian sample's median: sqrt(pi/2) s / sqrt(n) (common practice)
+        "median_err": _f(np.sqrt(np.pi / 2.0) * std / np.sqrt(n)) if n > 1 else None,
+        "wmean": _f(wmean),
+        # formal error scaled by sqrt(chi2_nu) when the scatter exceeds the errors (common practice)
+        "wmean_err": _f(formal * inflate),
+        "wmean_err_formal": _f(formal),
+        "std": _f(std),
+        "rms_expected_err": _f(rms_exp),
+        "excess_scatter": _f(np.sqrt(max(0.0, std**2 - rms_exp**2))) if np.isfinite(std) else None,
+        "chi2_nu": _f(chi2_nu),
+    }
+
+
+def hubble_statistics(dmu, dmu_err, method_flags, z_cmb, h0_assumed: float, *,
+                      min_cz: float = 3000.0, clip_sigma: float = 3.5, max_iter: int = 20,
+                      exclude_flags=None):
+    """Zero point, implied H0 and scatter of one method against the Hubble flow.
+
+    Sample: finite dmu with a positive error, c z_cmb >= ``min_cz`` and none of
+    ``exclude_flags`` set (default: every Method bit except OUTLIER, which is
+    recomputed here). Clipped iteratively at ``clip_sigma`` (see ``_clip``).
+    ``dmu_err`` is the expected error of dmu, sqrt(sigma_mu^2 + sigma_mu_z^2).
+
+    Implied H0: mu_method ~ 5 log10(c z / H0_true) + 25 and mu_z the same with
+    H0_assumed, so dmu = 5 log10(H0_assumed / H0_true) and
+    H0_true = H0_assumed 10^(-0.2 <dmu>) (exact at all z when only H0 differs,
+    since d_L scales as 1/H0).
+
+    Returns (stats dict, outlier mask). The mask marks every row with finite
+    dmu and c z_cmb >= min_cz (flagged or not) whose |dmu - centre| exceeds
+    clip_sigma x the final clipped scatter.
+    """
+    dmu = np.asarray(dmu, dtype=float)
+    err = np.asarray(dmu_err, dtype=float)
+    fl = np.asarray(method_flags, dtype=_flags.FLAG_DTYPE)
+    cz = C_KMS * np.asarray(z_cmb, dtype=float)
+    exclude = ((ALL_METHOD_BITS & ~int(Method.OUTLIER)) if exclude_flags is None
+               else _bits(exclude_flags, "crosscheck.exclude_flags"))
+    if not (np.isfinite(clip_sigma) and clip_sigma > 0):
+        raise ValueError(f"crosscheck.clip_sigma must be > 0, got {clip_sigma}")
+    candidate = np.isfinite(dmu) & (np.nan_to_num(cz, nan=-np.inf) >= float(min_cz))
+    usable = candidate & np.isfinite(err) & (err > 0) & ((fl & _flags.FLAG_DTYPE(exclude)) == 0)
+    sel, center, scale, iters = _clip(dmu, usable, float(clip_sigma), int(max_iter))
+    if np.isfinite(scale):
+        outlier = candidate & (np.abs(dmu - center) > clip_sigma * scale)
+    else:
+        outlier = np.zeros(dmu.shape, dtype=bool)
+    stats = _summary(dmu, np.where(usable, err, 1.0), sel)
+    stats = {"n_rows": int(dmu.size), "n_candidates": int(candidate.sum()),
+             "n_usable": int(usable.sum()), "n_clipped": int(usable.sum() - sel.sum()),
+             "n_outliers": int(outlier.sum()), "clip_sigma": float(clip_sigma),
+             "clip_iterations": int(iters), "min_cz": float(min_cz),
+             "clip_center": _f(center), "clip_scale": _f(scale)} | stats
+    wm, wm_err = stats["wmean"], stats["wmean_err"]
+    h0 = float(h0_assumed)
+    stats["h0_assumed"] = h0
+    if wm is None:
+        stats["h0_implied"] = stats["h0_implied_err"] = None
+    else:
+        h = h0 * 10.0 ** (-0.2 * wm)
+        stats["h0_implied"] = _f(h)
+        stats["h0_implied_err"] = _f(h * 0.2 * LN10 * wm_err) if wm_err is not None else None
+    return stats, outlier
+
+
+def pair_statistics(mu_a, mu_a_err, flags_a, mu_b, mu_b_err, flags_b, *,
+                    clip_sigma: float = 3.5, max_iter: int = 20, exclude_flags=None) -> dict:
+    """Offset mu_a - mu_b and its scatter over galaxies measured by both methods.
+
+    Rows need finite values and errors in both and none of ``exclude_flags`` in
+    either (default: every Method bit except OUTLIER and LOCAL_FLOW — a Hubble
+    outlier or a nearby galaxy still has a valid distance to compare). Clipped
+    like ``hubble_statistics``; expected error sqrt(sigma_a^2 + sigma_b^2).
+    """
+    a, b = np.asarray(mu_a, dtype=float), np.asarray(mu_b, dtype=float)
+    ea, eb = np.asarray(mu_a_err, dtype=float), np.asarray(mu_b_err, dtype=float)
+    exclude = (ALL_METHOD_BITS & ~int(Method.OUTLIER | Method.LOCAL_FLOW)
+               if exclude_flags is None else _bits(exclude_flags, "crosscheck.pair_exclude_flags"))
+    if not (np.isfinite(clip_sigma) and clip_sigma > 0):
+        raise ValueError(f"crosscheck.clip_sigma must be > 0, got {clip_sigma}")
+    mask = _flags.FLAG_DTYPE(exclude)
+    diff = a - b
+    err = np.sqrt(ea**2 + eb**2)
+    both = np.isfinite(a) & np.isfinite(b)
+    usable = (both & np.isfinite(err) & (err > 0)
+              & ((np.asarray(flags_a, dtype=_flags.FLAG_DTYPE) & mask) == 0)
+              & ((np.asarray(flags_b, dtype=_flags.FLAG_DTYPE) & mask) == 0))
+    sel, center, scale, iters = _clip(diff, usable, float(clip_sigma), int(max_iter))
+    return {"n_both": int(both.sum()), "n_usable": int(usable.sum()),
+            "n_clipped": int(usable.sum() - sel.sum()), "clip_sigma": float(clip_sigma),
+            "clip_iterations": int(iters)} | _summary(diff, np.where(usable, err, 1.0), sel)
+
+
+def best_distance(methods: Mapping[str, tuple], *, ignore_flags=("LOCAL_FLOW",)) -> dict[str, np.ndarray]:
+    """Inverse-variance mean of the usable methods per galaxy.
+
+    ``methods`` maps a prefix to (mu, mu_err, flags). A method is usable for a
+    row when mu is finite, mu_err finite and > 0, and no flag other than
+    ``ignore_flags`` is set (default ignores only LOCAL_FLOW, whose meaning is
+    that the distance itself is fine). Returns mu_best, mu_best_err
+    (1/sqrt(sum w)) and best_method: the usable prefixes joined by '+' in the
+    order given, '' when none.
+    """
+    keep = _flags.FLAG_DTYPE(ALL_METHOD_BITS & ~_bits(ignore_flags, "crosscheck.best_ignore_flags"))
+    sw = swx = None
+    label = None
+    for name, (mu, err, fl) in methods.items():
+        mu = np.asarray(mu, dtype=float)
+        err = np.asarray(err, dtype=float)
+        use = (np.isfinite(mu) & np.isfinite(err) & (err > 0)
+               & ((np.asarray(fl, dtype=_flags.FLAG_DTYPE) & keep) == 0))
+        w = np.where(use, 1.0 / np.where(use, err, 1.0) ** 2, 0.0)
+        if sw is None:
+            sw, swx = np.zeros(mu.shape), np.zeros(mu.shape)
+            label = np.full(mu.shape, "", dtype=f"<U{sum(len(m) + 1 for m in methods)}")
+        sw += w
+        swx += np.where(use, w * np.where(use, mu, 0.0), 0.0)
+        joined = np.char.add(np.char.add(label, "+"), name)
+        label = np.where(use, np.where(label == "", name, joined), label)
+    if sw is None:
+        raise ValueError("crosscheck: no method columns to combine")
+    has = sw > 0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        mu_best = np.where(has, swx / np.where(has, sw, 1.0), np.nan)
+        mu_best_err = np.where(has, 1.0 / np.sqrt(np.where(has, sw, 1.0)), np.nan)
+    return {"mu_best": mu_best, "mu_best_err": mu_best_err, "best_method": label}
+
+
+# --------------------------------------------------------------------------- driver
+
+def crosscheck(columns: Mapping[str, Sequence], grid: MuGrid, *,
+               methods: Sequence[str] = DEFAULT_METHODS, min_cz: float = 3000.0,
+               clip_sigma: float = 3.5, max_iter: int = 20, best_ignore_flags=("LOCAL_FLOW",)):
+    """Cross-check every method present in ``columns`` (a dict or DataFrame).
+
+    Needs z_cmb, z_cmb_err, mu_z, mu_z_err, z_flags and, per method M present
+    (M_mu exists), M_mu, M_mu_err, M_flags. Returns (new columns, summary):
+    per method M_dmu, M_logd_ratio, M_vpec, M_vpec_err, M_vpec_lr,
+    M_vpec_lr_err and M_flags (the input flags plus LOCAL_FLOW inherited from
+    z_flags and OUTLIER from the clipping, previous OUTLIER bits cleared);
+    then mu_best, mu_best_err, best_method. Summary: {"methods": {M: stats},
+    "pairs": {"A-B": stats}, "best": counts}. H0, q0, j0 are the grid's.
+    """
+    def col(name):
+        return np.asarray(columns[name], dtype=float)
+
+    z, z_err = col("z_cmb"), col("z_cmb_err")
+    mu_z, mu_z_err = col("mu_z"), col("mu_z_err")
+    z_flags = np.asarray(columns["z_flags"], dtype=_flags.FLAG_DTYPE)
+    present = [m for m in methods if f"{m}_mu" in columns]
+    out: dict[str, np.ndarray] = {}
+    summary: dict = {"methods": {}, "pairs": {}, "best": {}}
+    for m in present:
+        mu, mu_err = col(f"{m}_mu"), col(f"{m}_mu_err")
+        fl = inherit_local_flow(columns[f"{m}_flags"], z_flags)
+        fl &= _flags.FLAG_DTYPE(~int(Method.OUTLIER) & 0xFFFFFFFF)
+        dmu = delta_mu(mu, mu_z)
+        v, v_err = peculiar_velocity_exact(mu, mu_err, z, z_err, grid)
+        v_lr, v_lr_err = peculiar_velocity_log_ratio(mu, mu_err, z, z_err, grid.h0, grid.q0, grid.j0)
+        stats, outlier = hubble_statistics(dmu, np.sqrt(mu_err**2 + mu_z_err**2), fl, z, grid.h0,
+                                           min_cz=min_cz, clip_sigma=clip_sigma, max_iter=max_iter)
+        _flags.set_where(fl, outlier, Method.OUTLIER)
+        summary["methods"][m] = stats
+        out |= {f"{m}_dmu": dmu, f"{m}_logd_ratio": log_distance_ratio(mu, mu_z),
+                f"{m}_vpec": v, f"{m}_vpec_err": v_err,
+                f"{m}_vpec_lr": v_lr, f"{m}_vpec_lr_err": v_lr_err, f"{m}_flags": fl}
+    for a, b in itertools.combinations(present, 2):
+        summary["pairs"][f"{a}-{b}"] = pair_statistics(
+            col(f"{a}_mu"), col(f"{a}_mu_err"), out[f"{a}_flags"],
+            col(f"{b}_mu"), col(f"{b}_mu_err"), out[f"{b}_flags"],
+            clip_sigma=clip_sigma, max_iter=max_iter)
+    if present:
+        best = best_distance({m: (col(f"{m}_mu"), col(f"{m}_mu_err"), out[f"{m}_flags"])
+                              for m in present}, ignore_flags=best_ignore_flags)
+    else:
+        n = z.shape[0]
+        best = {"mu_best": np.full(n, np.nan), "mu_best_err": np.full(n, np.nan),
+                "best_method": np.full(n, "", dtype="<U1")}
+    out |= best
+    labels, counts = np.unique(best["best_method"], return_counts=True)
+    summary["best"] = {(str(k) or "none"): int(c) for k, c in zip(labels, counts)}
+    return out, summary
