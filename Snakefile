@@ -11,9 +11,17 @@ configfile: "config/config.yaml"
 include: "workflow/rules/common.smk"
 include: "workflow/rules/demo.smk"
 include: "workflow/rules/ingest.smk"
+include: "workflow/rules/extinction.smk"
+include: "workflow/rules/kcorrect.smk"
+include: "workflow/rules/redshift.smk"
+include: "workflow/rules/tully_fisher.smk"
+include: "workflow/rules/sbf.smk"
+include: "workflow/rules/crosscheck.smk"
 
 
 rule all:
     input:
-        final_targets(),
+        rules.assemble.output.distances,
+        rules.assemble.output.summary,
+        rules.plots.output,
     default_target: True

@@ -155,3 +155,76 @@ def load(path: str | Path) -> dict:
     if not isinstance(data, dict):
         raise ConfigError(f"config file {path} must hold a mapping of keys")
     return data
+
+
+def extra_required_columns(config: dict) -> list[str]:
+    """Optional canonical columns that the configured stages make required."""
+    extra = []
+    if config["extinction"]["source"] == "catalog":
+        extra.append("ebv")
+    return extra
+
+
+def extinction_map_files(config: dict) -> list[str]:
+    ext = config["extinction"]
+    return {"catalog": [], "healpix": [ext["map_file"]],
+            "zea": [ext["map_north"], ext["map_south"]]}[ext["source"]]
+
+
+def check_stages(config: dict) -> dict:
+    """Cross-key checks the schema cannot express; returns the loaded calibrations by method.
+
+    Band labels used by stages must be configured bands; map and table files must
+    exist; calibration files must validate and belong to their method.
+    """
+    from .calibration import load_calibration
+
+    bands = set(config["bands"])
+    problems = []
+
+    def need_band(key, label):
+        if label not in bands:
+            problems.append(f"config key '{key}': '{label}' is not a configured band "
+                            f"(bands: {', '.join(sorted(bands))})")
+
+    ext = config["extinction"]
+    if ext["source"] == "healpix" and not ext["map_file"]:
+        problems.append("config key 'extinction.map_file': needed when extinction.source is healpix")
+    if ext["source"] == "zea" and not (ext["map_north"] and ext["map_south"]):
+        problems.append("config keys 'extinction.map_north' and 'extinction.map_south': needed when "
+                        "extinction.source is zea")
+    for f in extinction_map_files(config):
+        if f and not Path(f).exists():
+            problems.append(f"config key 'extinction': map file not found: {f} (galdist never downloads maps; "
+                            "see the README on pointing at your own map)")
+    if ext["coefficients"] == "table":
+        if not Path(ext["table"]).exists():
+            problems.append(f"config key 'extinction.table': file not found: {ext['table']}")
+        missing = sorted(bands - set(ext["table_keys"]))
+        if missing:
+            problems.append(f"config key 'extinction.table_keys': give the table key of band(s) "
+                            f"{', '.join(missing)} (e.g. {{V: landolt-V}})")
+    kc = config["kcorrect"]
+    for label in kc["colour_pair"] or []:
+        need_band("kcorrect.colour_pair", label)
+    if kc["templates"] and not Path(kc["templates"]).exists():
+        problems.append(f"config key 'kcorrect.templates': file not found: {kc['templates']}")
+
+    calibrations = {}
+    expected = {"tully_fisher": "tully_fisher", "sbf": "sbf"}
+    for method in config["methods"]:
+        section = config[method]
+        path = section["calibration"]
+        if not Path(path).exists():
+            problems.append(f"config key '{method}.calibration': file not found: {path}")
+            continue
+        cal = load_calibration(path)
+        if cal.method != expected[method]:
+            problems.append(f"config key '{method}.calibration': {path} is a {cal.method} calibration")
+        calibrations[method] = cal
+        need_band(f"{method}.band", section["band"])
+        for label in section.get("color_bands", []):
+            need_band(f"{method}.color_bands", label)
+    if problems:
+        raise ConfigError("invalid configuration:\n  - " + "\n  - ".join(problems))
+    return calibrations

@@ -335,56 +335,150 @@ def best_distance(methods: Mapping[str, tuple], *, ignore_flags=("LOCAL_FLOW",))
 
 
 # --------------------------------------------------------------------------- driver
+#
+# Two passes, so a catalog never has to be in memory whole: ``method_sample``
+# keeps, shard by shard, only what the sample statistics need (rows with a finite
+# dmu); ``sample_statistics`` computes them once over all shards; and
+# ``galaxy_columns`` then derives every per-galaxy column of a shard, outlier bits
+# included, from those statistics. ``crosscheck`` chains the three on one table.
 
-def crosscheck(columns: Mapping[str, Sequence], grid: MuGrid, *,
-               methods: Sequence[str] = DEFAULT_METHODS, min_cz: float = 3000.0,
-               clip_sigma: float = 3.5, max_iter: int = 20, best_ignore_flags=("LOCAL_FLOW",)):
-    """Cross-check every method present in ``columns`` (a dict or DataFrame).
+SAMPLE_KEYS = ("dmu", "dmu_err", "flags", "z_cmb", "mu", "mu_err")
 
-    Needs z_cmb, z_cmb_err, mu_z, mu_z_err, z_flags and, per method M present
-    (M_mu exists), M_mu, M_mu_err, M_flags. Returns (new columns, summary):
-    per method M_dmu, M_logd_ratio, M_vpec, M_vpec_err, M_vpec_lr,
-    M_vpec_lr_err and M_flags (the input flags plus LOCAL_FLOW inherited from
-    z_flags and OUTLIER from the clipping, previous OUTLIER bits cleared);
-    then mu_best, mu_best_err, best_method. Summary: {"methods": {M: stats},
-    "pairs": {"A-B": stats}, "best": counts}. H0, q0, j0 are the grid's.
+
+def _method_flags(columns, m, z_flags) -> np.ndarray:
+    """M_flags with LOCAL_FLOW inherited and any stale OUTLIER bit cleared."""
+    fl = inherit_local_flow(columns[f"{m}_flags"], z_flags)
+    return fl & _flags.FLAG_DTYPE(~int(Method.OUTLIER) & 0xFFFFFFFF)
+
+
+def method_sample(columns: Mapping[str, Sequence], methods: Sequence[str] = DEFAULT_METHODS) -> dict:
+    """Per method present, the compact arrays the statistics need: rows with a finite mu only.
+
+    Returns {M: {dmu, dmu_err, flags, z_cmb, mu, mu_err, row}}; ``row`` indexes
+    the input rows (so pairs of methods can be matched).
     """
     def col(name):
         return np.asarray(columns[name], dtype=float)
 
-    z, z_err = col("z_cmb"), col("z_cmb_err")
-    mu_z, mu_z_err = col("mu_z"), col("mu_z_err")
+    z_flags = np.asarray(columns["z_flags"], dtype=_flags.FLAG_DTYPE)
+    out = {}
+    for m in methods:
+        if f"{m}_mu" not in columns:
+            continue
+        mu = col(f"{m}_mu")
+        keep = np.flatnonzero(np.isfinite(mu))
+        mu_err = col(f"{m}_mu_err")[keep]
+        mu_z, mu_z_err = col("mu_z")[keep], col("mu_z_err")[keep]
+        out[m] = {"dmu": delta_mu(mu[keep], mu_z), "dmu_err": np.sqrt(mu_err**2 + mu_z_err**2),
+                  "flags": _method_flags(columns, m, z_flags)[keep], "z_cmb": col("z_cmb")[keep],
+                  "mu": mu[keep], "mu_err": mu_err, "row": keep}
+    return out
+
+
+def concat_samples(samples: Sequence[dict]) -> dict:
+    """Join per-shard ``method_sample`` results (row indices offset to stay unique)."""
+    out: dict = {}
+    offset = 0
+    for part, n_rows in samples:
+        for m, arrays in part.items():
+            dest = out.setdefault(m, {k: [] for k in (*SAMPLE_KEYS, "row")})
+            for k in SAMPLE_KEYS:
+                dest[k].append(arrays[k])
+            dest["row"].append(arrays["row"] + offset)
+        offset += n_rows
+    return {m: {k: np.concatenate(v) for k, v in arrays.items()} for m, arrays in out.items()}
+
+
+def sample_statistics(sample: dict, n_rows: int, h0_assumed: float, *, min_cz: float = 3000.0,
+                      clip_sigma: float = 3.5, max_iter: int = 20) -> dict:
+    """Per-method Hubble statistics and per-pair offsets from a (concatenated) sample."""
+    summary: dict = {"methods": {}, "pairs": {}}
+    for m, s in sample.items():
+        stats, _ = hubble_statistics(s["dmu"], s["dmu_err"], s["flags"], s["z_cmb"], h0_assumed,
+                                     min_cz=min_cz, clip_sigma=clip_sigma, max_iter=max_iter)
+        stats["n_rows"] = int(n_rows)
+        stats["n_measured"] = int(s["dmu"].size)
+        summary["methods"][m] = stats
+    def flags_with_outliers(m, idx):
+        s = sample[m]
+        fl = s["flags"][idx].copy()
+        _flags.set_where(fl, _outliers(s["dmu"][idx], s["z_cmb"][idx], summary["methods"][m], min_cz, clip_sigma),
+                         Method.OUTLIER)
+        return fl
+
+    for a, b in itertools.combinations(list(sample), 2):
+        sa, sb = sample[a], sample[b]
+        _, ia, ib = np.intersect1d(sa["row"], sb["row"], assume_unique=True, return_indices=True)
+        summary["pairs"][f"{a}-{b}"] = pair_statistics(
+            sa["mu"][ia], sa["mu_err"][ia], flags_with_outliers(a, ia),
+            sb["mu"][ib], sb["mu_err"][ib], flags_with_outliers(b, ib),
+            clip_sigma=clip_sigma, max_iter=max_iter)
+    return summary
+
+
+def _outliers(dmu, z_cmb, stats: dict, min_cz: float, clip_sigma: float) -> np.ndarray:
+    """The outlier rule of ``hubble_statistics``, applied with its final centre and scale."""
+    center, scale = stats.get("clip_center"), stats.get("clip_scale")
+    dmu = np.asarray(dmu, dtype=float)
+    if center is None or scale is None:
+        return np.zeros(dmu.shape, dtype=bool)
+    cz = C_KMS * np.nan_to_num(np.asarray(z_cmb, dtype=float), nan=-np.inf)
+    with np.errstate(invalid="ignore"):
+        return np.isfinite(dmu) & (cz >= float(min_cz)) & (np.abs(dmu - center) > clip_sigma * scale)
+
+
+def galaxy_columns(columns: Mapping[str, Sequence], grid: MuGrid, statistics: dict, *,
+                   methods: Sequence[str] = DEFAULT_METHODS, min_cz: float = 3000.0,
+                   clip_sigma: float = 3.5, best_ignore_flags=("LOCAL_FLOW",)) -> dict:
+    """Per-galaxy cross-check columns of one shard, given the sample ``statistics``.
+
+    Per method M present: M_dmu, M_logd_ratio, M_vpec, M_vpec_err, M_vpec_lr,
+    M_vpec_lr_err and M_flags (input flags + LOCAL_FLOW inherited from z_flags +
+    OUTLIER from the statistics' clipping); then mu_best, mu_best_err, best_method.
+    """
+    def col(name):
+        return np.asarray(columns[name], dtype=float)
+
+    z, z_err, mu_z = col("z_cmb"), col("z_cmb_err"), col("mu_z")
     z_flags = np.asarray(columns["z_flags"], dtype=_flags.FLAG_DTYPE)
     present = [m for m in methods if f"{m}_mu" in columns]
     out: dict[str, np.ndarray] = {}
-    summary: dict = {"methods": {}, "pairs": {}, "best": {}}
     for m in present:
         mu, mu_err = col(f"{m}_mu"), col(f"{m}_mu_err")
-        fl = inherit_local_flow(columns[f"{m}_flags"], z_flags)
-        fl &= _flags.FLAG_DTYPE(~int(Method.OUTLIER) & 0xFFFFFFFF)
+        fl = _method_flags(columns, m, z_flags)
         dmu = delta_mu(mu, mu_z)
+        _flags.set_where(fl, _outliers(dmu, z, statistics["methods"].get(m, {}), min_cz, clip_sigma),
+                         Method.OUTLIER)
         v, v_err = peculiar_velocity_exact(mu, mu_err, z, z_err, grid)
         v_lr, v_lr_err = peculiar_velocity_log_ratio(mu, mu_err, z, z_err, grid.h0, grid.q0, grid.j0)
-        stats, outlier = hubble_statistics(dmu, np.sqrt(mu_err**2 + mu_z_err**2), fl, z, grid.h0,
-                                           min_cz=min_cz, clip_sigma=clip_sigma, max_iter=max_iter)
-        _flags.set_where(fl, outlier, Method.OUTLIER)
-        summary["methods"][m] = stats
         out |= {f"{m}_dmu": dmu, f"{m}_logd_ratio": log_distance_ratio(mu, mu_z),
                 f"{m}_vpec": v, f"{m}_vpec_err": v_err,
                 f"{m}_vpec_lr": v_lr, f"{m}_vpec_lr_err": v_lr_err, f"{m}_flags": fl}
-    for a, b in itertools.combinations(present, 2):
-        summary["pairs"][f"{a}-{b}"] = pair_statistics(
-            col(f"{a}_mu"), col(f"{a}_mu_err"), out[f"{a}_flags"],
-            col(f"{b}_mu"), col(f"{b}_mu_err"), out[f"{b}_flags"],
-            clip_sigma=clip_sigma, max_iter=max_iter)
     if present:
-        best = best_distance({m: (col(f"{m}_mu"), col(f"{m}_mu_err"), out[f"{m}_flags"])
-                              for m in present}, ignore_flags=best_ignore_flags)
+        out |= best_distance({m: (col(f"{m}_mu"), col(f"{m}_mu_err"), out[f"{m}_flags"]) for m in present},
+                             ignore_flags=best_ignore_flags)
     else:
         n = z.shape[0]
-        best = {"mu_best": np.full(n, np.nan), "mu_best_err": np.full(n, np.nan),
+        out |= {"mu_best": np.full(n, np.nan), "mu_best_err": np.full(n, np.nan),
                 "best_method": np.full(n, "", dtype="<U1")}
-    out |= best
-    labels, counts = np.unique(best["best_method"], return_counts=True)
+    return out
+
+
+def crosscheck(columns: Mapping[str, Sequence], grid: MuGrid, *,
+               methods: Sequence[str] = DEFAULT_METHODS, min_cz: float = 3000.0,
+               clip_sigma: float = 3.5, max_iter: int = 20, best_ignore_flags=("LOCAL_FLOW",)):
+    """Cross-check every method present in ``columns`` (a dict or DataFrame) in one go.
+
+    Needs z_cmb, z_cmb_err, mu_z, mu_z_err, z_flags and, per method M present
+    (M_mu exists), M_mu, M_mu_err, M_flags. Returns (new columns, summary) as
+    ``galaxy_columns`` and ``sample_statistics`` give them, plus summary["best"]:
+    counts of best_method. H0, q0, j0 are the grid's.
+    """
+    n = len(np.asarray(columns["z_cmb"]))
+    sample = concat_samples([(method_sample(columns, methods), n)])
+    summary = sample_statistics(sample, n, grid.h0, min_cz=min_cz, clip_sigma=clip_sigma, max_iter=max_iter)
+    out = galaxy_columns(columns, grid, summary, methods=methods, min_cz=min_cz, clip_sigma=clip_sigma,
+                         best_ignore_flags=best_ignore_flags)
+    labels, counts = np.unique(out["best_method"], return_counts=True)
     summary["best"] = {(str(k) or "none"): int(c) for k, c in zip(labels, counts)}
     return out, summary

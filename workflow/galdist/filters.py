@@ -87,3 +87,8 @@ def band_average(filt: sf.FilterResponse, wave: np.ndarray, flux: np.ndarray) ->
 def effective_wavelength(filt: sf.FilterResponse) -> float:
     """speclite's photon-weighted effective wavelength of the filter, in Angstrom."""
     return float(filt.effective_wavelength.to_value("Angstrom"))
+
+
+def load_bands(bands: dict, base_dir: str | Path | None = None) -> dict[str, sf.FilterResponse]:
+    """Filter curves of the configured bands: label -> FilterResponse."""
+    return {label: load_filter(band["filter"], base_dir) for label, band in bands.items()}

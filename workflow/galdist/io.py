@@ -130,7 +130,8 @@ def table_from_columns(columns: dict, units: dict | None = None, metadata: dict 
     units = units or {}
     arrays, fields = [], []
     for name, values in columns.items():
-        arr = pa.array(values)
+        kind = getattr(values, "dtype", np.dtype(object)).kind
+        arr = pa.array(values, type=pa.string()) if kind in "OUS" else pa.array(values)
         arrays.append(arr)
         fields.append(field(name, arr.type, units.get(name)))
     schema = pa.schema(fields, metadata={k.encode() if isinstance(k, str) else k:
@@ -154,6 +155,8 @@ def read_fingerprint(path: str | Path) -> str:
 
 def read_columns(path: str | Path, columns: list[str] | None = None) -> dict:
     """Read columns of a Parquet file into a dict of numpy arrays (strings as object)."""
+    if columns is not None:
+        columns = list(dict.fromkeys(columns))  # a column asked for twice is read once
     table = pq.read_table(path, columns=columns)
     out = {}
     for name in table.column_names:
@@ -175,3 +178,27 @@ def sha256_of(path: str | Path, chunk: int = 1 << 22) -> str:
             while block := fh.read(chunk):
                 h.update(block)
     return h.hexdigest()
+
+
+class StaleInputError(RuntimeError):
+    """A stage file does not belong to the shard it is joined with."""
+
+
+def read_shard(shard_path: str | Path, columns: list[str] | None = None,
+               stages: dict[str, str | Path] | None = None,
+               stage_columns: dict[str, list[str] | None] | None = None) -> tuple[dict, str]:
+    """Columns of one ingest shard plus the narrow files other stages wrote for it.
+
+    Every stage file's fingerprint must equal the shard's; otherwise a
+    StaleInputError names the file (the fix is to let Snakemake re-run that stage).
+    Returns (columns, fingerprint).
+    """
+    fp = read_fingerprint(shard_path)
+    out = read_columns(shard_path, columns)
+    for name, path in (stages or {}).items():
+        got = read_fingerprint(path)
+        if got != fp:
+            raise StaleInputError(f"{path} ({name}) was written for another version of shard "
+                                  f"{shard_path}; delete it and re-run")
+        out.update(read_columns(path, (stage_columns or {}).get(name)))
+    return out, fp

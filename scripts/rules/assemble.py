@@ -1,0 +1,30 @@
+"""Rule script: stream every shard's stages into distances.parquet and write summary.json."""
+import json
+from pathlib import Path
+
+from galdist import calibration, io, product, redshift
+from galdist.logs import logged
+
+with logged(snakemake.log[0], "assemble") as log:
+    inp, cfg = snakemake.input, snakemake.params.crosscheck
+    stages = ["extinction", "kcorrect", "redshift", *snakemake.params.methods]
+    shards = [{"shard": s} | {st: inp[st][i] for st in stages} for i, s in enumerate(inp.shards)]
+    with open(inp.statistics) as fh:
+        stats = json.load(fh)
+    with open(inp.ingest_summary) as fh:
+        ingest_summary = json.load(fh)
+    cals = {m: calibration.load_calibration(p) for m, p in snakemake.params.calibrations.items()}
+    info = product.provenance(snakemake.config, cals, ingest_summary, Path(snakemake.scriptdir).parents[1])
+    counts = product.assemble(shards, snakemake.output.distances, snakemake.output.plot_sample,
+                              redshift.MuGrid.load(inp.grid), stats, snakemake.params.methods, info,
+                              min_cz=cfg["min_cz_kms"], clip_sigma=cfg["clip_sigma"],
+                              plot_max_points=cfg["plot_max_points"], total_rows=ingest_summary["rows_out"])
+    if counts["rows"] != ingest_summary["rows_in"]:
+        raise RuntimeError(f"row count changed: {ingest_summary['rows_in']} in, {counts['rows']} out")
+    summary = {"rows_in": ingest_summary["rows_in"], "rows_out": counts["rows"],
+               "flag_counts": counts["flag_counts"], "best_method": counts["best_method"],
+               "statistics": stats, "cosmology": info["config"]["redshift"]["cosmology"],
+               "calibrations": {m: c["reference"] for m, c in info["calibrations"].items()},
+               "inputs": info["inputs"], "git_commit": info["git_commit"]}
+    log.info("%d rows written", counts["rows"])
+    io.write_json(summary, snakemake.output.summary)

@@ -1,0 +1,76 @@
+# Cross-check and product: statistics over all shards first (zero point, clipping),
+# then the streaming assembly of distances.parquet and summary.json, then the plots.
+
+METHOD_SHARDS = {
+    "tully_fisher": f"{SHARDS}/tully_fisher/{TF_CAL}/part-{{shard}}.parquet",
+    "sbf": f"{SHARDS}/sbf/{SBF_CAL}/part-{{shard}}.parquet",
+}
+STAGE_SHARDS = {
+    "extinction": f"{SHARDS}/extinction/part-{{shard}}.parquet",
+    "kcorrect": f"{SHARDS}/kcorrect/part-{{shard}}.parquet",
+    "redshift": f"{SHARDS}/redshift/part-{{shard}}.parquet",
+} | {m: METHOD_SHARDS[m] for m in METHODS}
+PLOTS = ["hubble_diagram", "tf_relation", "sbf_relation", "dmu_histograms", "vpec_sky"]
+
+
+rule crosscheck_statistics:
+    input:
+        grid=rules.mu_grid.output[0],
+        redshift=per_shard(STAGE_SHARDS["redshift"]),
+        **{m: per_shard(METHOD_SHARDS[m]) for m in METHODS},
+    output:
+        f"{RUN}/crosscheck_statistics.json",
+    params:
+        crosscheck=config["crosscheck"],
+        methods=METHODS,
+    log:
+        f"{LOGS}/crosscheck_statistics.log",
+    benchmark:
+        f"{BENCH}/crosscheck_statistics.tsv"
+    script:
+        "../../scripts/rules/crosscheck_statistics.py"
+
+
+rule assemble:
+    input:
+        shards=per_shard(f"{SHARDS}/ingest/part-{{shard}}.parquet"),
+        ingest_summary=rules.ingest.output.summary,
+        statistics=rules.crosscheck_statistics.output[0],
+        grid=rules.mu_grid.output[0],
+        calibrations=[config[m]["calibration"] for m in METHODS],
+        **{stage: per_shard(pattern) for stage, pattern in STAGE_SHARDS.items()},
+    output:
+        distances=f"{RUN}/distances.parquet",
+        summary=f"{RUN}/summary.json",
+        plot_sample=f"{RUN}/plot_sample.parquet",
+    params:
+        crosscheck=config["crosscheck"],
+        methods=METHODS,
+        calibrations={m: config[m]["calibration"] for m in METHODS},
+    log:
+        f"{LOGS}/assemble.log",
+    benchmark:
+        f"{BENCH}/assemble.tsv"
+    script:
+        "../../scripts/rules/assemble.py"
+
+
+rule plots:
+    input:
+        sample=rules.assemble.output.plot_sample,
+        grid=rules.mu_grid.output[0],
+    output:
+        **{
+            name: report(f"{RUN}/plots/{name}.png", caption=f"../report/{name}.rst", category="Distances")
+            for name in PLOTS
+        },
+    params:
+        methods=METHODS,
+        calibrations={m: config[m]["calibration"] for m in METHODS},
+        min_cz=config["crosscheck"]["min_cz_kms"],
+    log:
+        f"{LOGS}/plots.log",
+    benchmark:
+        f"{BENCH}/plots.tsv"
+    script:
+        "../../scripts/rules/plots.py"

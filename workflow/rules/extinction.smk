@@ -1,0 +1,34 @@
+# Galactic extinction: band coefficients once per configuration, then E(B-V) and A_<band> per shard.
+
+
+rule extinction_coefficients:
+    input:
+        table=lambda w: [config["extinction"]["table"]] if config["extinction"]["coefficients"] == "table" else [],
+    output:
+        f"{GRIDS}/extinction_coefficients.json",
+    params:
+        extinction=config["extinction"],
+        bands=config["bands"],
+    log:
+        f"{LOGS}/extinction_coefficients.log",
+    benchmark:
+        f"{BENCH}/extinction_coefficients.tsv"
+    script:
+        "../../scripts/rules/extinction_coefficients.py"
+
+
+rule extinction:
+    input:
+        shard=shard_path,
+        coefficients=rules.extinction_coefficients.output[0],
+        maps=EXTINCTION_MAPS,
+    output:
+        f"{SHARDS}/extinction/part-{{shard}}.parquet",
+    params:
+        extinction=config["extinction"],
+    log:
+        f"{LOGS}/extinction/part-{{shard}}.log",
+    benchmark:
+        f"{BENCH}/extinction/part-{{shard}}.tsv"
+    script:
+        "../../scripts/rules/extinction.py"
