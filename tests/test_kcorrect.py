@@ -366,3 +366,20 @@ def test_rebin_conserves_flux(script):
         total = np.trapezoid(np.interp(fine, wave, flux[row]), fine)
         assert np.sum(out[row] * np.diff(edges)) == pytest.approx(total, rel=1e-6)
     np.testing.assert_allclose(out[1], (edges[1:] + edges[:-1]) / 2000.0, rtol=1e-10)  # linear: exact
+
+
+def test_clip_tolerance(grid):
+    # galdist convention (documented in kcorrect.assign): a colour beyond the template
+    # range by less than clip_tolerance uses the end template without a flag.
+    j = 50
+    z = np.full(2, grid.z[j])
+    ends = grid.colour[[0, -1], j]
+    red_end = ends.max()
+    c = np.array([red_end + 0.05, red_end + 0.3])
+    out = kc.assign(grid, z, c, "constant", clip_tolerance=0.1)
+    assert fl.has(out["kcorr_flags"], KCorr.COLOR_CLIPPED).tolist() == [False, True]
+    red_index = 0 if grid.colour[0, j] > grid.colour[-1, j] else len(grid.names) - 1
+    assert out["kcorr_template"].tolist() == [red_index, red_index]
+    strict = kc.assign(grid, z, c, "constant", clip_tolerance=0.01)
+    assert fl.has(strict["kcorr_flags"], KCorr.COLOR_CLIPPED).all()
+    np.testing.assert_array_equal(out["K_" + next(iter(grid.k))], strict["K_" + next(iter(grid.k))])

@@ -15,5 +15,5 @@ with logged(snakemake.log[0], f"K-corrections, shard {snakemake.wildcards.shard}
     if pair:
         blue, red = pair
         colour = (cols[f"mag_{blue}"] - cols[f"A_{blue}"]) - (cols[f"mag_{red}"] - cols[f"A_{red}"])
-    out = kcorrect.assign(grid, cols["z_helio"], colour, cfg["default_template"])
+    out = kcorrect.assign(grid, cols["z_helio"], colour, cfg["default_template"], cfg["clip_tolerance"])
     io.write_stage_columns(out, snakemake.output[0], fp, {k: "mag" for k in out if k.startswith("K_")})

@@ -22,11 +22,9 @@ SURVEY_PREFIX = "CRS"
 
 @dataclass(frozen=True)
 class DemoSettings:
-    bands: dict = field(default_factory=lambda: {
-        "V": {"filter": "bessell-V", "system": "Vega", "ab_minus_vega": 0.02},
-        "I": {"filter": "bessell-I", "system": "Vega", "ab_minus_vega": 0.45},
-        "Ks": {"filter": "twomass-Ks", "system": "Vega", "ab_minus_vega": 1.85},
-    })
+    """What the demo follows: the run's bands, stage settings and calibrations."""
+
+    config: dict = field(default_factory=dict)
     disc_fraction: float = 0.65
     cz_range: tuple = (1500.0, 15000.0)
     sigma_vpec: float = 300.0
@@ -34,14 +32,11 @@ class DemoSettings:
 
 
 def settings_from_config(path=None) -> DemoSettings:
-    """Demo settings following a galdist config's bands (default config/config.yaml)."""
+    """Demo settings following a galdist config (default config/config.yaml)."""
     from . import config as cfg
 
     path = Path(path) if path else Path(__file__).resolve().parents[2] / "config" / "config.yaml"
-    if not path.exists():
-        return DemoSettings()
-    conf = cfg.validate(cfg.load(path))
-    return DemoSettings(bands=conf["bands"])
+    return DemoSettings(config=cfg.validate(cfg.load(path)))
 
 
 def _positions(rng, n):
@@ -57,71 +52,139 @@ def _cosmological_redshift(rng, n, cz_range):
     return np.cbrt(r3) / C_KMS
 
 
-def make_catalog(n: int, seed: int, settings: DemoSettings | None = None) -> pa.Table:
-    """A deterministic invented catalog of ``n`` galaxies in canonical columns."""
-    settings = settings or DemoSettings()
+def make_catalog(n: int, seed: int, settings: DemoSettings | None = None, first_id: int = 1) -> pa.Table:
+    """A deterministic invented catalog of ``n`` galaxies in canonical columns.
+
+    IDs run from ``first_id``, so a large catalog can be written in chunks
+    (different seeds, consecutive ``first_id``) without holding it in memory.
+    """
+    settings = settings or settings_from_config()
     rng = np.random.default_rng(seed)
     ra, dec = _positions(rng, n)
     z_cos = _cosmological_redshift(rng, n, settings.cz_range)
     v_pec = rng.normal(0.0, settings.sigma_vpec, n)
     is_disc = rng.uniform(size=n) < settings.disc_fraction
-    cols = _observe(rng, ra, dec, z_cos, v_pec, is_disc, settings.bands)
-    cols["galaxy_id"] = np.array([f"{SURVEY_PREFIX}-{i:07d}" for i in range(1, n + 1)], dtype=object)
+    cols = _observe(rng, ra, dec, z_cos, v_pec, is_disc, settings.config)
+    cols["galaxy_id"] = np.array([f"{SURVEY_PREFIX}-{i:08d}" for i in range(first_id, first_id + n)], dtype=object)
     cols["galaxy_class"] = np.where(is_disc, "disc", "early-type").astype(object)
     _sprinkle_bad_rows(rng, cols, settings)
     order = ["galaxy_id", "ra", "dec", "z_helio", "z_helio_err", "ebv", "ebv_err"]
-    for b in settings.bands:
+    for b in settings.config["bands"]:
         order += [f"mag_{b}", f"mag_{b}_err"]
     order += ["w50", "w50_err", "axis_ratio", "axis_ratio_err", "hi_flux",
               "sbf_mag", "sbf_mag_err", "sbf_color", "sbf_color_err", "galaxy_class"]
     return pa.table({k: cols[k] for k in order if k in cols})
 
 
-def _observe(rng, ra, dec, z_cos, v_pec, is_disc, bands):
-    """Observables of each galaxy, generated forward from its true distance."""
-    from astropy.cosmology import FlatLambdaCDM
+def _observed_width(w_r, w_t, w_c):
+    """Invert the turbulence correction: the W whose W_R is ``w_r`` (monotonic, tabulated)."""
+    from .tully_fisher import turbulence_correction
+
+    w = np.linspace(w_t + 1e-3, 3000.0, 60000)
+    return np.interp(w_r, turbulence_correction(w, w_t, w_c), w)
+
+
+def _disc(rng, n, cal, band_cfg, z_helio, mu, a_gal, k_corr, tf_cfg):
+    """Observed magnitude, width and axis ratio of discs following a TF calibration."""
+    from . import tully_fisher as tf
+
+    lo, hi = cal.valid_range
+    logw_i = np.clip(rng.normal(0.5 * (lo + hi), 0.15, n), lo + 0.02, hi - 0.02)
+    abs_mag = cal.polynomial(logw_i) + rng.normal(0.0, cal.scatter, n)
+    cos_i = rng.uniform(np.cos(np.radians(88.0)), np.cos(np.radians(25.0)), n)
+    q0 = tf_cfg["q0"]
+    axis_ratio = np.sqrt(cos_i**2 * (1.0 - q0**2) + q0**2)
+    g0, g1 = tf.INTERNAL_EXTINCTION_GAMMA[cal.band]
+    a_int = tf.internal_extinction(axis_ratio, logw_i, g0, g1)
+    w_t, w_c = tf.TURBULENCE_CONSTANTS[tf_cfg["width_definition"]]
+    w50 = _observed_width(10.0**logw_i * np.sqrt(1.0 - cos_i**2), w_t, w_c) * (1.0 + z_helio)
+    m_cal = abs_mag + mu + a_gal + k_corr + a_int
+    mag = tf.convert_system(m_cal, cal.system, band_cfg["system"], band_cfg["ab_minus_vega"])
+    return mag, w50, axis_ratio
+
+
+def _observe(rng, ra, dec, z_cos, v_pec, is_disc, conf):
+    """Observables generated forward through every correction the pipeline undoes,
+    with the run's extinction law, K-correction templates and calibrations."""
+    from . import extinction, filters, kcorrect, redshift, sbf
+    from .calibration import load_calibration
 
     n = len(ra)
-    cosmo = FlatLambdaCDM(H0=70.0, Om0=0.3)
+    bands = conf["bands"]
+    rcfg = conf["redshift"]
+    grid = redshift.MuGrid.build(redshift.make_cosmology(**rcfg["cosmology"]))
+    mu = grid.mu(z_cos)
     z_cmb = (1.0 + z_cos) * (1.0 + v_pec / C_KMS) - 1.0
-    mu_true = 5.0 * np.log10(cosmo.luminosity_distance(z_cos).to_value("Mpc")) + 25.0
+    l, b = redshift.galactic_coordinates(ra, dec)
+    apex = 1.0 + rcfg["v_sun_kms"] / C_KMS * redshift.cos_angle_to_apex(l, b, rcfg["apex_l_deg"], rcfg["apex_b_deg"])
+    z_helio = (1.0 + z_cmb) / apex - 1.0
+    # dust: E(B-V) on the input scale; a few galaxies behind an invented dust lane
     ebv = 0.012 + rng.gamma(2.0, 0.012, n)
     dusty = rng.uniform(size=n) < 0.01
     ebv[dusty] = rng.uniform(0.5, 1.0, dusty.sum())
-    r_band = {"V": 2.742, "I": 1.505, "Ks": 0.302}
-    cols = {"ra": ra, "dec": dec, "z_helio": z_cmb, "z_helio_err": np.full(n, 3e-5),
-            "ebv": ebv, "ebv_err": 0.1 * ebv}
-    # discs: Tully-Fisher
-    logw_i = np.clip(rng.normal(2.45, 0.18, n), 2.0, 2.9)
-    abs_i = -21.39 - 8.81 * (logw_i - 2.5) + rng.normal(0.0, 0.35, n)
-    cos_i = rng.uniform(np.cos(np.radians(85.0)), np.cos(np.radians(20.0)), n)
-    q0 = 0.2
-    axis_ratio = np.sqrt(cos_i**2 * (1 - q0**2) + q0**2)
-    w_r = 10**logw_i * np.sqrt(1 - cos_i**2)
-    w50 = (w_r + 9.0) * (1 + z_cmb)
-    # early types: SBF
-    color0 = rng.uniform(1.02, 1.28, n)
-    abs_sbf = -1.74 + 4.5 * (color0 - 1.15) + rng.normal(0.0, 0.05, n)
-    abs_broad_i = np.where(is_disc, abs_i, rng.normal(-21.5, 0.8, n))
-    abs_mag = {"V": abs_broad_i + np.where(is_disc, 0.9, color0), "I": abs_broad_i,
-               "Ks": abs_broad_i - np.where(is_disc, 2.0, 2.3)}
-    for b in bands:
-        m = abs_mag.get(b, abs_broad_i) + mu_true + r_band.get(b, 1.0) * ebv
-        err = rng.uniform(0.02, 0.06, n)
-        cols[f"mag_{b}"] = m + rng.normal(0.0, 1.0, n) * err
-        cols[f"mag_{b}_err"] = err
-    cols["w50"] = np.where(is_disc, w50 + rng.normal(0.0, 6.0, n), np.nan)
-    cols["w50_err"] = np.where(is_disc, 6.0, np.nan)
-    cols["axis_ratio"] = np.where(is_disc, np.clip(axis_ratio + rng.normal(0.0, 0.02, n), 0.05, 1.0), np.nan)
-    cols["axis_ratio_err"] = np.where(is_disc, 0.02, np.nan)
+    ecfg = conf["extinction"]
+    r = extinction.law_coefficients(filters.load_bands(bands), law=ecfg["law"], r_v=ecfg["r_v"],
+                                    source_temperature=ecfg["source_temperature"],
+                                    normalisation=ecfg["normalisation"]).per_true_ebv()
+    a = {band: r[band] * ecfg["ebv_scale"] * ebv for band in bands}
+    # K-corrections: discs star-forming templates, early types passive ones
+    kcfg = conf["kcorrect"]
+    offsets = {k: v["ab_minus_vega"] if v["system"] == "Vega" else 0.0 for k, v in bands.items()}
+    kgrid = kcorrect.build_grids(kcorrect.load_templates(kcfg["templates"]), filters.load_bands(bands),
+                                 kcfg["colour_pair"], offsets, z_max=kcfg["z_max"], dz=kcfg["dz"])
+    nt = len(kgrid.names)
+    template = np.where(is_disc, rng.uniform(nt / 2.0, nt - 1.0, n), rng.uniform(0.0, 1.5, n))
+    k, colour = kcorrect.evaluate(kgrid, z_helio, template)
+    z_err = np.full(n, 3e-5)
+    cols = {"ra": ra, "dec": dec, "z_helio": z_helio + rng.normal(0.0, 1.0, n) * z_err, "z_helio_err": z_err}
+    ebv_err = 0.002 + 0.05 * ebv
+    cols["ebv"], cols["ebv_err"] = ebv + rng.normal(0.0, 1.0, n) * ebv_err, ebv_err
+    # broadband magnitudes: the TF band from the TF relation (discs) or a luminosity
+    # function (early types); other bands from the template colour
+    tcfg, scfg = conf["tully_fisher"], conf["sbf"]
+    tf_band = tcfg["band"]
+    tf_mag, w50, axis_ratio = _disc(rng, n, load_calibration(tcfg["calibration"]), bands[tf_band], z_helio,
+                                    mu, a[tf_band], k[tf_band], tcfg)
+    mags = {tf_band: np.where(is_disc, tf_mag, rng.normal(-22.0, 0.8, n) + mu + a[tf_band] + k[tf_band])}
+    blue, red = kcfg["colour_pair"] or (None, None)
+    ref = red if red in mags or blue is None else tf_band
+    if blue is not None:
+        # the colour the K stage matches, Galactic extinction added back
+        if red == tf_band:
+            mags[blue] = mags[red] - a[red] + a[blue] + colour
+        elif blue == tf_band:
+            mags[red] = mags[blue] - a[blue] + a[red] - colour
+    for band in bands:
+        if band not in mags:  # a band outside the colour pair: a plain rest-frame colour of 2 mag
+            mags[band] = mags[ref] - a[ref] - k[ref] - 2.0 + a[band] + k[band]
+    for band in bands:
+        err = rng.uniform(0.02, 0.05, n)
+        cols[f"mag_{band}"] = mags[band] + rng.normal(0.0, 1.0, n) * err
+        cols[f"mag_{band}_err"] = err
+    # HI for discs only
+    w_err = np.full(n, 6.0)
+    ba_err = np.full(n, 0.02)
+    cols["w50"] = np.where(is_disc, w50 + rng.normal(0.0, 1.0, n) * w_err, np.nan)
+    cols["w50_err"] = np.where(is_disc, w_err, np.nan)
+    cols["axis_ratio"] = np.where(is_disc, np.clip(axis_ratio + rng.normal(0.0, 1.0, n) * ba_err, 0.05, 1.0), np.nan)
+    cols["axis_ratio_err"] = np.where(is_disc, ba_err, np.nan)
     cols["hi_flux"] = np.where(is_disc, 10 ** rng.normal(0.5, 0.3, n), np.nan)
-    err_sbf = rng.uniform(0.04, 0.1, n)
-    sbf_mag = abs_sbf + mu_true + r_band["I"] * ebv + rng.normal(0.0, 1.0, n) * err_sbf
-    cols["sbf_mag"] = np.where(is_disc, np.nan, sbf_mag)
-    cols["sbf_mag_err"] = np.where(is_disc, np.nan, err_sbf)
-    cols["sbf_color"] = np.where(is_disc, np.nan, color0 + (r_band["V"] - r_band["I"]) * ebv
-                                 + rng.normal(0.0, 0.02, n))
-    cols["sbf_color_err"] = np.where(is_disc, np.nan, 0.02)
+    # SBF for early types, following the SBF calibration
+    cal = load_calibration(scfg["calibration"])
+    sb, (cb, cr) = scfg["band"], scfg["color_bands"]
+    lo, hi = cal.valid_range
+    color_0 = rng.uniform(lo + 0.02, hi - 0.02, n)
+    abs_sbf = cal.polynomial(color_0) + rng.normal(0.0, cal.scatter, n)
+    m_off = sbf.system_offset(bands[sb]["system"], cal.system, bands[sb]["ab_minus_vega"])
+    c_off = sbf.color_system_offset(bands[cb]["system"], bands[cb]["ab_minus_vega"], bands[cr]["system"],
+                                    bands[cr]["ab_minus_vega"], cal.system)
+    sbf_mag = abs_sbf + mu + a[sb] + k[sb] - m_off
+    sbf_color = color_0 + (a[cb] - a[cr]) + (k[cb] - k[cr]) - c_off
+    m_err, c_err = rng.uniform(0.04, 0.10, n), np.full(n, 0.02)
+    cols["sbf_mag"] = np.where(is_disc, np.nan, sbf_mag + rng.normal(0.0, 1.0, n) * m_err)
+    cols["sbf_mag_err"] = np.where(is_disc, np.nan, m_err)
+    cols["sbf_color"] = np.where(is_disc, np.nan, sbf_color + rng.normal(0.0, 1.0, n) * c_err)
+    cols["sbf_color_err"] = np.where(is_disc, np.nan, c_err)
     return cols
 
 
@@ -129,7 +192,7 @@ def _sprinkle_bad_rows(rng, cols, settings):
     """Corrupt a few rows with each kind of bad value the ingest flags."""
     n = len(cols["ra"])
     n_bad = max(1, int(settings.bad_fraction * n / 12))
-    band = next(iter(settings.bands))
+    band = next(iter(settings.config["bands"]))
     kinds = [
         ("ra", np.nan), ("dec", 95.0), ("z_helio", -0.01), ("z_helio", 1.5), ("z_helio_err", -1e-4),
         (f"mag_{band}", np.inf), (f"mag_{band}_err", -0.1), ("w50", -50.0), ("w50", 0.0),

@@ -336,7 +336,31 @@ def _interp_z(table: np.ndarray, t: np.ndarray, i: np.ndarray, w: np.ndarray) ->
     return flat[base] * (1.0 - w) + flat[base + 1] * w
 
 
-def assign(grid: KGrid, z, colour_obs, default_template: str) -> dict:
+def evaluate(grid: KGrid, z, template) -> tuple[dict, np.ndarray | None]:
+    """K per band and the model colour at redshifts ``z`` and fractional template indices.
+
+    The forward direction of ``assign`` (same interpolation in z and between the two
+    neighbouring templates): assign(grid, z, colour) on the returned colour gives
+    back ``template``. NaN where z is outside the grid.
+    """
+    z = np.asarray(z, dtype=float).ravel()
+    tpl = np.clip(np.asarray(template, dtype=float).ravel(), 0.0, len(grid.names) - 1)
+    i, w, zvalid = _z_index(grid, z)
+    nt = len(grid.names)
+    t_lo = np.minimum(np.floor(tpl).astype(np.intp), max(nt - 2, 0))
+    t_hi = np.minimum(t_lo + 1, nt - 1)
+    a = tpl - t_lo
+
+    def at(table):
+        v = _interp_z(table, t_lo, i, w) * (1.0 - a) + _interp_z(table, t_hi, i, w) * a
+        v[~zvalid] = np.nan
+        return v
+
+    k = {band: at(table) for band, table in grid.k.items()}
+    return k, (at(grid.colour) if grid.colour is not None else None)
+
+
+def assign(grid: KGrid, z, colour_obs, default_template: str, clip_tolerance: float = 0.0) -> dict:
     """Per-galaxy K-corrections by template colour matching.
 
     ``z``: heliocentric (observed) redshift. ``colour_obs``: observed colour
@@ -349,7 +373,9 @@ def assign(grid: KGrid, z, colour_obs, default_template: str) -> dict:
 
     Returns ``K_<band>`` per band, ``kcorr_template`` (fractional index along
     the passive -> star-forming sequence) and ``kcorr_flags`` (KCorr bits):
-    COLOR_CLIPPED (colour outside the template range, end template used),
+    COLOR_CLIPPED (colour outside the template range by more than
+    ``clip_tolerance`` mag, end template used; closer than that the end template
+    is used without a flag, since photometric noise alone puts galaxies there),
     COLOR_MISSING (NaN colour, default template used), Z_BEYOND_GRID (z NaN or
     outside the grid: K and template NaN).
     """
@@ -379,24 +405,16 @@ def assign(grid: KGrid, z, colour_obs, default_template: str) -> dict:
         c_hi = s * _interp_z(grid.colour, lo + 1, i, w)
         frac = (sc - c_lo) / (c_hi - c_lo)
         missing = ~np.isfinite(c)
-        clipped = ~missing & ((frac < 0.0) | (frac > 1.0))
+        beyond = np.where(frac < 0.0, c_lo - sc, np.where(frac > 1.0, sc - c_hi, 0.0))
+        clipped = ~missing & (beyond > clip_tolerance)
         tpl = lo + np.clip(frac, 0.0, 1.0)
         tpl[missing] = float(default_index)
         fl.set_where(out_flags, clipped, KCorr.COLOR_CLIPPED)
         fl.set_where(out_flags, missing, KCorr.COLOR_MISSING)
 
     fl.set_where(out_flags, ~zvalid, KCorr.Z_BEYOND_GRID)
-    if nt > 1:
-        t_lo = np.minimum(np.floor(tpl).astype(np.intp), nt - 2)
-        t_hi = t_lo + 1
-    else:
-        t_lo = t_hi = np.zeros(n, dtype=np.intp)
-    a = tpl - t_lo
-    out = {}
-    for band, table in grid.k.items():
-        k = _interp_z(table, t_lo, i, w) * (1.0 - a) + _interp_z(table, t_hi, i, w) * a
-        k[~zvalid] = np.nan
-        out[f"K_{band}"] = k
+    k, _ = evaluate(grid, z, tpl)
+    out = {f"K_{band}": values for band, values in k.items()}
     tpl = tpl.astype(float)
     tpl[~zvalid] = np.nan
     out["kcorr_template"] = tpl
