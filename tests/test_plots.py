@@ -52,8 +52,8 @@ provenance: "secondary copy"
 """
 
 COLUMNS = ["z_cmb", "mu_z", "mu_z_err", "gal_l", "gal_b",
-           "tf_mu", "tf_mu_err", "tf_flags", "tf_logw_i", "tf_abs_mag", "tf_dmu", "tf_vpec",
-           "sbf_mu", "sbf_mu_err", "sbf_flags", "sbf_color_0", "sbf_abs_mag", "sbf_dmu", "sbf_vpec"]
+           "tf_mu", "tf_mu_err", "tf_flags", "tf_logw_i", "tf_mag_corr", "tf_dmu", "tf_vpec",
+           "sbf_mu", "sbf_mu_err", "sbf_flags", "sbf_color_0", "sbf_mag_0", "sbf_dmu", "sbf_vpec"]
 
 
 @pytest.fixture(scope="module")
@@ -83,10 +83,10 @@ def _frame(grid, n=150, seed=1):
         "z_cmb": z, "mu_z": mu_z, "mu_z_err": np.full(n, 0.1),
         "gal_l": rng.uniform(0, 360, n), "gal_b": np.degrees(np.arcsin(rng.uniform(-1, 1, n))),
         "tf_mu": tf_mu, "tf_mu_err": np.full(n, 0.4), "tf_flags": tf_flags,
-        "tf_logw_i": logw, "tf_abs_mag": -21.0 - 8.0 * (logw - 2.5) + rng.normal(0, 0.4, n),
+        "tf_logw_i": logw, "tf_mag_corr": mu_z - 21.0 - 8.0 * (logw - 2.5) + rng.normal(0, 0.4, n),
         "tf_dmu": tf_mu - mu_z, "tf_vpec": rng.normal(0, 400, n),
         "sbf_mu": sbf_mu, "sbf_mu_err": np.full(n, 0.1), "sbf_flags": sbf_flags,
-        "sbf_color_0": col, "sbf_abs_mag": -1.74 + 4.5 * (col - 1.15) + rng.normal(0, 0.1, n),
+        "sbf_color_0": col, "sbf_mag_0": mu_z - 1.74 + 4.5 * (col - 1.15) + rng.normal(0, 0.1, n),
         "sbf_dmu": sbf_mu - mu_z, "sbf_vpec": np.where(np.isfinite(sbf_mu), rng.normal(0, 300, n), np.nan),
     })
 

@@ -124,8 +124,10 @@ def _calibration_curve(calibration, x):
     return None
 
 
-def _relation(df, path, calibration, xcol, ycol, flagcol, xlabel, title, color) -> int:
-    x, y = _col(df, xcol), _col(df, ycol)
+def _relation(df, path, calibration, xcol, magcol, flagcol, xlabel, title, color) -> int:
+    """Absolute magnitude implied by the redshift distance, magcol - mu_z, against xcol:
+    the galaxies scatter about the calibration as they should, peculiar velocities included."""
+    x, y = _col(df, xcol), _col(df, magcol) - _col(df, "mu_z")
     ok = np.isfinite(x) & np.isfinite(y)
     bad = ok & _flagged(df, flagcol)
     fig, ax = plt.subplots(figsize=(7, 5))
@@ -151,7 +153,7 @@ def _relation(df, path, calibration, xcol, ycol, flagcol, xlabel, title, color) 
         ax.invert_yaxis()  # brighter up
     ax.set_xlabel(xlabel)
     band = f" ({calibration.band}, {calibration.system})" if calibration is not None else ""
-    ax.set_ylabel(f"absolute magnitude{band} (mag)")
+    ax.set_ylabel(f"absolute magnitude{band}, from $\\mu_z$ (mag)")
     ax.set_title(title)
     ax.grid(alpha=0.3)
     if calibration is not None:
@@ -165,16 +167,16 @@ def _relation(df, path, calibration, xcol, ycol, flagcol, xlabel, title, color) 
 
 
 def tf_relation(df, path, calibration=None) -> int:
-    """Tully-Fisher: tf_abs_mag against tf_logw_i with the calibration line and scatter band."""
-    return _relation(df, path, calibration, "tf_logw_i", "tf_abs_mag", "tf",
+    """Tully-Fisher: tf_mag_corr - mu_z against tf_logw_i with the calibration line and scatter band."""
+    return _relation(df, path, calibration, "tf_logw_i", "tf_mag_corr", "tf",
                      r"$\log_{10} W^i$ (W in km/s)", "Tully-Fisher relation", "tab:blue")
 
 
 def sbf_relation(df, path, calibration=None) -> int:
-    """SBF: sbf_abs_mag (fluctuation magnitude) against sbf_color_0 with the calibration."""
+    """SBF: sbf_mag_0 - mu_z (fluctuation magnitude) against sbf_color_0 with the calibration."""
     colour = "-".join(calibration.color_bands) if calibration is not None and calibration.color_bands else \
         (calibration.predictor if calibration is not None else "colour")
-    return _relation(df, path, calibration, "sbf_color_0", "sbf_abs_mag", "sbf",
+    return _relation(df, path, calibration, "sbf_color_0", "sbf_mag_0", "sbf",
                      f"dereddened colour ({colour})$_0$ (mag)",
                      r"SBF: $\bar M$ against colour", "tab:red")
 
