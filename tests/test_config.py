@@ -27,7 +27,7 @@ def test_default_config_is_valid_and_defaults_fill_in():
     (lambda c: c.update(bogus=1), r"unknown config key 'bogus' at the top level; allowed keys: bands"),
     (lambda c: c["catalog"].update(formt="csv"), r"unknown config key 'formt' in 'catalog'"),
     (lambda c: c.update(shard_rows="many"), r"config key 'shard_rows': 'many' is not of type 'integer'"),
-    (lambda c: c.update(shard_rows=10), r"config key 'shard_rows': 10 is less than the minimum"),
+    (lambda c: c.update(shard_rows=10), r"config key 'shard_rows': 10 is less than the minimum of 100"),
     (lambda c: c["bands"]["V"].update(system="vega"), r"config key 'bands.V.system': 'vega' is not one of"),
     (lambda c: c["bands"]["V"].pop("filter"), r"config key 'bands.V' is missing a required entry: 'filter'"),
     (lambda c: c.update(methods=["tully_fisher", "cepheids"]), r"config key 'methods.1'"),
