@@ -66,6 +66,7 @@ def test_product_metadata(demo_run):
         assert len(cal["sha256"]) == 64 and cal["text"] and cal["reference"], method
     assert len(prov["inputs"][0]["sha256"]) == 64
     assert prov["packages"]["numpy"] and prov["created_utc"]
+    assert any("face-on" in c for c in prov["cautions"])
     units = {f.name: f.metadata[b"unit"].decode() for f in schema if f.metadata and b"unit" in f.metadata}
     assert units["ra"] == "deg" and units["tf_d_mpc"] == "Mpc" and units["tf_vpec"] == "km / s"
     assert units["mu_z"] == "mag" and units["A_V"] == "mag"

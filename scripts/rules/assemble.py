@@ -25,6 +25,6 @@ with logged(snakemake.log[0], "assemble") as log:
                "flag_counts": counts["flag_counts"], "best_method": counts["best_method"],
                "statistics": stats, "cosmology": info["config"]["redshift"]["cosmology"],
                "calibrations": {m: c["reference"] for m, c in info["calibrations"].items()},
-               "inputs": info["inputs"], "git_commit": info["git_commit"]}
+               "inputs": info["inputs"], "git_commit": info["git_commit"], "cautions": info["cautions"]}
     log.info("%d rows written", counts["rows"])
     io.write_json(summary, snakemake.output.summary)

@@ -34,6 +34,19 @@ LEADING = ["galaxy_id", "ra", "dec", "gal_l", "gal_b", "galaxy_class", *FLAG_COL
 TRAILING = ["mu_best", "mu_best_err", "best_method"]
 CROSSCHECK_UNITS = {"dmu": "mag", "vpec": "km / s", "vpec_err": "km / s", "vpec_lr": "km / s",
                     "vpec_lr_err": "km / s", "logd_ratio": "dex"}
+CAUTIONS = (
+    "Tully-Fisher distances of discs below the inclination limit (LOW_INCLINATION) are unreliable: "
+    "the deprojection 1/sin i blows up for face-on discs.",
+    "Distances outside a calibration's valid predictor range are extrapolations (OUT_OF_RANGE, EXTRAPOLATED); "
+    "SBF gives none there unless config allows it.",
+    "Redshift distances, dmu and v_pec below the minimum cz (LOCAL_FLOW) are not distances: "
+    "peculiar velocities are a large part of cz there.",
+    "Single-galaxy peculiar velocities carry errors of about 0.46 sigma_mu cz; use them in aggregate.",
+    "Extinction corrections above the E(B-V) limit (HIGH_EXTINCTION) are unreliable.",
+    "mu_z assumes the configured cosmology (default flat LCDM, H0 = 70): a convention for comparison, "
+    "not a measurement.",
+    "Calibrations marked 'from memory' in their files must be checked against the papers before publication.",
+)
 PACKAGES = ("galdist", "numpy", "pandas", "pyarrow", "astropy", "scipy", "speclite",
             "dust_extinction", "astropy-healpix", "matplotlib", "snakemake")
 
@@ -75,6 +88,7 @@ def provenance(config: dict, calibrations: dict, ingest_summary: dict, repo: Pat
         "inputs": ingest_summary.get("inputs", []),
         "packages": versions,
         "git_commit": _git_commit(repo),
+        "cautions": list(CAUTIONS),
         "created_utc": created or _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
     }
 
