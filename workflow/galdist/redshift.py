@@ -24,10 +24,10 @@ from pathlib import Path
 import numpy as np
 from astropy import constants as _const
 from astropy import units as _u
-from astropy.coordinates import SkyCoord
 from astropy.cosmology import FlatLambdaCDM, realizations
 
 from . import flags as _flags
+from .ebv_maps import galactic_coordinates
 from .distance import mpc_from_mu
 from .uncertainty import quadrature
 
@@ -219,22 +219,6 @@ class MuGrid:
 
 
 # --------------------------------------------------------------------------- frames
-
-def galactic_coordinates(ra_deg, dec_deg) -> tuple[np.ndarray, np.ndarray]:
-    """Galactic (l, b) in degrees of ICRS (ra, dec) via astropy SkyCoord.
-
-    Invalid positions (non-finite, |dec| > 90) give NaN.
-    """
-    ra = np.asarray(ra_deg, dtype=float)
-    dec = np.asarray(dec_deg, dtype=float)
-    ok = np.isfinite(ra) & np.isfinite(dec) & (np.abs(dec) <= 90.0)
-    if ra.size == 0:
-        return np.zeros(0), np.zeros(0)
-    g = SkyCoord(ra=np.where(ok, ra, 0.0) * _u.deg, dec=np.where(ok, dec, 0.0) * _u.deg,
-                 frame="icrs").galactic
-    return (np.where(ok, g.l.to_value(_u.deg), np.nan),
-            np.where(ok, g.b.to_value(_u.deg), np.nan))
-
 
 def cos_angle_to_apex(l_deg, b_deg, apex_l: float = APEX_L_DEG, apex_b: float = APEX_B_DEG):
     """cos theta between (l, b) and the apex (spherical law of cosines)."""
