@@ -2,7 +2,7 @@
 import dataclasses
 import json
 
-from galdist import calibration, extinction, io, tully_fisher
+from galdist import calibration, extinction, io, tully_fisher, uncertainty
 from galdist.logs import logged
 
 with logged(snakemake.log[0], f"Tully-Fisher, shard {snakemake.wildcards.shard}"):
@@ -18,15 +18,18 @@ with logged(snakemake.log[0], f"Tully-Fisher, shard {snakemake.wildcards.shard}"
                              {"extinction": ["ebv_used_err", f"A_{band}", "ext_flags"],
                               "kcorrect": [f"K_{band}", "kcorr_flags"]})
     settings = dataclasses.replace(
-        tully_fisher.TFSettings.from_config(cfg, ignore=("calibration", "band")),
+        tully_fisher.TFSettings.from_config(cfg, ignore=("calibration", "band", "mc_max_rows")),
         input_system=bands[band]["system"], ab_minus_vega=bands[band]["ab_minus_vega"])
+    no_mc = dataclasses.replace(settings, mc_draws=0)
     inputs = {"mag": cols[f"mag_{band}"], "mag_err": cols[f"mag_{band}_err"],
               "a_gal": cols[f"A_{band}"], "a_gal_err": r_band * cols["ebv_used_err"], "k_corr": cols[f"K_{band}"]}
     inputs |= {k: cols[k] for k in ("w50", "w50_err", "axis_ratio", "axis_ratio_err", "z_helio", "w50_resolution",
                                     "quality_flags", "ext_flags", "kcorr_flags")}
     if cal.form == "baryonic":
         inputs["hi_flux"] = cols["hi_flux"]
-    out = tully_fisher.tully_fisher_distance(inputs, cal, settings)
+    out = uncertainty.monte_carlo_on_subsample(
+        lambda rows, mc: tully_fisher.tully_fisher_distance(rows, cal, settings if mc else no_mc),
+        inputs, "tf_mu", "tf_mu_err_mc", cfg["mc_max_rows"])
     units = {"tf_inclination_deg": "deg", "tf_w_z": "km / s", "tf_w_r": "km / s", "tf_d_mpc": "Mpc",
              "tf_d_err_mpc": "Mpc"} | {k: "mag" for k in ("tf_a_int", "tf_mag_corr", "tf_abs_mag", "tf_mu",
                                                           "tf_mu_err", "tf_mu_err_mc")}

@@ -9,6 +9,7 @@ position.
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import json
 import os
@@ -25,9 +26,25 @@ INTERMEDIATE_COMPRESSION = "snappy"  # fastest to write and read for files read 
 PRODUCT_COMPRESSION = "zstd"  # smaller final product, still fast to read
 
 
-def _atomic_target(path: Path):
+def _umask() -> int:
+    try:  # Linux: read it without changing it (os.umask would, for a moment, for every thread)
+        with open("/proc/self/status", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except (OSError, ValueError):
+        pass
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
+def _atomic_target(path: Path, suffix: str = ".tmp"):
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=suffix, dir=path.parent)
+    # mkstemp creates the file owner-only (0600); the renamed file gets the mode any
+    # other new file would have
+    os.fchmod(fd, 0o666 & ~_umask())
     os.close(fd)
     return Path(tmp)
 
@@ -36,6 +53,25 @@ def _commit(tmp: Path, path: Path) -> None:
     with open(tmp, "rb") as fh:
         os.fsync(fh.fileno())
     os.replace(tmp, path)
+
+
+@contextlib.contextmanager
+def atomic_path(path: str | Path):
+    """A temporary path beside ``path`` to write to; renamed onto ``path`` only on success.
+
+    The temporary name keeps ``path``'s suffix, so writers that choose the format from
+    it (numpy.savez, matplotlib savefig) work unchanged::
+
+        with atomic_path(out) as tmp:
+            np.savez(tmp, ...)
+    """
+    path = Path(path)
+    tmp = _atomic_target(path, suffix=path.suffix)
+    try:
+        yield tmp
+        _commit(tmp, path)
+    finally:
+        tmp.unlink(missing_ok=True)
 
 
 def write_parquet(table: pa.Table, path: str | Path, compression: str = INTERMEDIATE_COMPRESSION) -> None:
@@ -148,8 +184,24 @@ def write_stage_columns(columns: dict, path: str | Path, shard_fingerprint: str,
     write_parquet(table_from_columns(columns, units, meta), path)
 
 
+class CorruptFileError(RuntimeError):
+    """A Parquet file cannot be read (truncated or overwritten); the message names it."""
+
+
+@contextlib.contextmanager
+def _reading(path):
+    try:
+        yield
+    except FileNotFoundError:
+        raise
+    except (pa.ArrowException, OSError) as exc:
+        raise CorruptFileError(f"{path}: not a readable Parquet file ({type(exc).__name__}: {exc}); "
+                               "delete it and re-run to rebuild it") from exc
+
+
 def read_fingerprint(path: str | Path) -> str:
-    meta = pq.read_metadata(path).metadata or {}
+    with _reading(path):
+        meta = pq.read_metadata(path).metadata or {}
     return meta.get(FINGERPRINT_KEY, b"").decode()
 
 
@@ -157,7 +209,8 @@ def read_columns(path: str | Path, columns: list[str] | None = None) -> dict:
     """Read columns of a Parquet file into a dict of numpy arrays (strings as object)."""
     if columns is not None:
         columns = list(dict.fromkeys(columns))  # a column asked for twice is read once
-    table = pq.read_table(path, columns=columns)
+    with _reading(path):
+        table = pq.read_table(path, columns=columns)
     out = {}
     for name in table.column_names:
         col = table.column(name)
@@ -202,3 +255,48 @@ def read_shard(shard_path: str | Path, columns: list[str] | None = None,
                                   f"{shard_path}; delete it and re-run")
         out.update(read_columns(path, (stage_columns or {}).get(name)))
     return out, fp
+
+
+def iter_rows(path: str | Path, columns: list[str] | None, rows: int):
+    """Tables of exactly ``rows`` rows (the last may be shorter) from a Parquet file,
+    whatever its row groups, so several files of one shard can be walked in step."""
+    pending, have = [], 0
+    for batch in pq.ParquetFile(path).iter_batches(batch_size=rows, columns=columns):
+        pending.append(pa.Table.from_batches([batch]))
+        have += batch.num_rows
+        while have >= rows:
+            table = pa.concat_tables(pending)
+            yield table.slice(0, rows)
+            rest = table.slice(rows)
+            pending, have = ([rest], rest.num_rows) if rest.num_rows else ([], 0)
+    if have:
+        yield pa.concat_tables(pending)
+
+
+def iter_shard(shard_path: str | Path, stages: dict[str, str | Path], rows: int = 131_072):
+    """The ingest shard and its stage files, walked together in aligned row batches.
+
+    Yields (columns, units) per batch: a dict of numpy arrays of every column, and the
+    units from the files' field metadata. Fingerprints are checked first, as in
+    ``read_shard``.
+    """
+    fp = read_fingerprint(shard_path)
+    paths = {"shard": shard_path, **stages}
+    for name, path in stages.items():
+        if read_fingerprint(path) != fp:
+            raise StaleInputError(f"{path} ({name}) was written for another version of shard "
+                                  f"{shard_path}; delete it and re-run")
+    units = {}
+    for path in paths.values():
+        units.update({f.name: f.metadata[b"unit"].decode() for f in pq.read_schema(path)
+                      if f.metadata and b"unit" in f.metadata})
+    walkers = [iter_rows(p, None, rows) for p in paths.values()]
+    for parts in zip(*walkers):
+        cols = {}
+        for table in parts:
+            for name in table.column_names:
+                col = table.column(name)
+                cols[name] = (np.asarray(col.to_pylist(), dtype=object)
+                              if pa.types.is_string(col.type) or pa.types.is_large_string(col.type)
+                              else col.to_numpy())
+        yield cols, units

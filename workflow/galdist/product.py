@@ -24,7 +24,7 @@ import pyarrow.parquet as pq
 
 from . import crosscheck
 from . import flags as F
-from .io import AtomicParquetWriter, read_shard, table_from_columns, write_parquet
+from .io import AtomicParquetWriter, iter_shard, table_from_columns, write_parquet
 
 METHOD_PREFIX = {"tully_fisher": "tf", "sbf": "sbf"}
 FLAG_COLUMNS = ("quality_flags", "ext_flags", "kcorr_flags", "z_flags", "tf_flags", "sbf_flags")
@@ -47,6 +47,9 @@ CAUTIONS = (
     "not a measurement.",
     "Calibrations marked 'from memory' in their files must be checked against the papers before publication.",
 )
+PLOT_COLUMNS = ["galaxy_id", "gal_l", "gal_b", "z_cmb", "mu_z", "mu_z_err", "tf_logw_i", "tf_mag_corr",
+                "sbf_color_0", "sbf_mag_0"] + [f"{p}_{c}" for p in METHOD_PREFIX.values()
+                                              for c in ("mu", "mu_err", "flags", "dmu", "vpec")]
 PACKAGES = ("galdist", "numpy", "pandas", "pyarrow", "astropy", "scipy", "speclite",
             "dust_extinction", "astropy-healpix", "matplotlib", "snakemake")
 
@@ -93,11 +96,6 @@ def provenance(config: dict, calibrations: dict, ingest_summary: dict, repo: Pat
     }
 
 
-def _units_of(path) -> dict:
-    return {f.name: f.metadata[b"unit"].decode() for f in pq.read_schema(path)
-            if f.metadata and b"unit" in f.metadata}
-
-
 def _unit(name: str, units: dict) -> str | None:
     if name in units:
         return units[name]
@@ -127,29 +125,26 @@ def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, 
     try:
         for index, files in enumerate(shards):
             stages = {k: v for k, v in files.items() if k != "shard"}
-            cols, _ = read_shard(files["shard"], None, stages)
-            units = {}
-            for p in files.values():
-                units.update(_units_of(p))
-            cols |= crosscheck.galaxy_columns(cols, grid, statistics, methods=prefixes, min_cz=min_cz,
-                                              clip_sigma=clip_sigma)
-            names = ordered(list(cols))
-            table = table_from_columns({n: cols[n] for n in names},
-                                       {n: u for n in names if (u := _unit(n, units))})
-            if writer is None:
-                schema = table.schema.with_metadata({b"galdist.provenance": json.dumps(
-                    provenance_info, sort_keys=True, default=str).encode()})
-                writer = AtomicParquetWriter(out_path, schema)
-            writer.write(table.cast(writer.writer.schema))
-            for c in FLAG_COLUMNS:
-                if c in cols:
-                    for m in F.ALL[c]:
-                        flag_counts[c][m.name] += int(F.has(cols[c], m).sum())
-            best.update(str(b) or "none" for b in cols["best_method"])
             rng = np.random.default_rng(index)
-            pick = rng.uniform(size=table.num_rows) < keep_fraction
-            samples.append(table.filter(pa.array(pick)))
-            rows += table.num_rows
+            for cols, units in iter_shard(files["shard"], stages):
+                cols |= crosscheck.galaxy_columns(cols, grid, statistics, methods=prefixes, min_cz=min_cz,
+                                                  clip_sigma=clip_sigma)
+                names = ordered(list(cols))
+                table = table_from_columns({n: cols[n] for n in names},
+                                           {n: u for n in names if (u := _unit(n, units))})
+                if writer is None:
+                    schema = table.schema.with_metadata({b"galdist.provenance": json.dumps(
+                        provenance_info, sort_keys=True, default=str).encode()})
+                    writer = AtomicParquetWriter(out_path, schema)
+                writer.write(table.cast(writer.writer.schema))
+                for c in FLAG_COLUMNS:
+                    if c in cols:
+                        for m in F.ALL[c]:
+                            flag_counts[c][m.name] += int(F.has(cols[c], m).sum())
+                best.update(Counter(str(b) or "none" for b in cols["best_method"]))
+                pick = rng.uniform(size=table.num_rows) < keep_fraction
+                samples.append(table.select([n for n in PLOT_COLUMNS if n in names]).filter(pa.array(pick)))
+                rows += table.num_rows
     except BaseException:
         if writer is not None:
             writer.__exit__(RuntimeError, None, None)
