@@ -145,7 +145,9 @@ def _observe(rng, ra, dec, z_cos, v_pec, is_disc, conf):
     tf_band = tcfg["band"]
     tf_mag, w50, axis_ratio = _disc(rng, n, load_calibration(tcfg["calibration"]), bands[tf_band], z_helio,
                                     mu, a[tf_band], k[tf_band], tcfg)
-    mags = {tf_band: np.where(is_disc, tf_mag, rng.normal(-22.0, 0.8, n) + mu + a[tf_band] + k[tf_band])}
+    # a few lenticulars carry both HI and SBF measurements, so the methods can be compared
+    has_hi = is_disc | (rng.uniform(size=n) < 0.08)
+    mags = {tf_band: np.where(has_hi, tf_mag, rng.normal(-22.0, 0.8, n) + mu + a[tf_band] + k[tf_band])}
     blue, red = kcfg["colour_pair"] or (None, None)
     ref = red if red in mags or blue is None else tf_band
     if blue is not None:
@@ -164,11 +166,11 @@ def _observe(rng, ra, dec, z_cos, v_pec, is_disc, conf):
     # HI for discs only
     w_err = np.full(n, 6.0)
     ba_err = np.full(n, 0.02)
-    cols["w50"] = np.where(is_disc, w50 + rng.normal(0.0, 1.0, n) * w_err, np.nan)
-    cols["w50_err"] = np.where(is_disc, w_err, np.nan)
-    cols["axis_ratio"] = np.where(is_disc, np.clip(axis_ratio + rng.normal(0.0, 1.0, n) * ba_err, 0.05, 1.0), np.nan)
-    cols["axis_ratio_err"] = np.where(is_disc, ba_err, np.nan)
-    cols["hi_flux"] = np.where(is_disc, 10 ** rng.normal(0.5, 0.3, n), np.nan)
+    cols["w50"] = np.where(has_hi, w50 + rng.normal(0.0, 1.0, n) * w_err, np.nan)
+    cols["w50_err"] = np.where(has_hi, w_err, np.nan)
+    cols["axis_ratio"] = np.where(has_hi, np.clip(axis_ratio + rng.normal(0.0, 1.0, n) * ba_err, 0.05, 1.0), np.nan)
+    cols["axis_ratio_err"] = np.where(has_hi, ba_err, np.nan)
+    cols["hi_flux"] = np.where(has_hi, 10 ** rng.normal(0.5, 0.3, n), np.nan)
     # SBF for early types, following the SBF calibration
     cal = load_calibration(scfg["calibration"])
     sb, (cb, cr) = scfg["band"], scfg["color_bands"]
@@ -191,13 +193,13 @@ def _observe(rng, ra, dec, z_cos, v_pec, is_disc, conf):
 def _sprinkle_bad_rows(rng, cols, settings):
     """Corrupt a few rows with each kind of bad value the ingest flags."""
     n = len(cols["ra"])
-    n_bad = max(1, int(settings.bad_fraction * n / 12))
+    n_bad = max(1, int(settings.bad_fraction * n / 16))
     band = next(iter(settings.config["bands"]))
     kinds = [
         ("ra", np.nan), ("dec", 95.0), ("z_helio", -0.01), ("z_helio", 1.5), ("z_helio_err", -1e-4),
         (f"mag_{band}", np.inf), (f"mag_{band}_err", -0.1), ("w50", -50.0), ("w50", 0.0),
         ("axis_ratio", 1.3), ("axis_ratio_err", np.nan), ("sbf_mag", np.nan), ("sbf_color", 9.0),
-        ("sbf_mag_err", -0.2), ("ebv", -0.05),
+        ("sbf_mag_err", -0.2), ("ebv", -0.05), ("hi_flux", -1.0),
     ]
     idx = rng.permutation(n)
     k = 0
