@@ -87,6 +87,8 @@ def load_calibration(path: str | Path) -> Calibration:
         text = path.read_text(encoding="utf-8")
     except OSError as exc:
         _fail(path, f"cannot be read ({exc.strerror})")
+    except UnicodeDecodeError as exc:
+        _fail(path, f"is not UTF-8 text ({exc})")
     try:
         data = yaml.safe_load(text)
     except yaml.YAMLError as exc:
@@ -97,12 +99,18 @@ def load_calibration(path: str | Path) -> Calibration:
         e = errors[0]
         key = ".".join(str(p) for p in e.path) or "(top level)"
         _fail(path, f"key '{key}': {e.message}")
+    from .config import non_finite  # NaN passes every minimum/maximum test of the schema
+    for key, value in non_finite(data):
+        _fail(path, f"key '{key}': {value} is not a finite number")
     coeffs = np.asarray(data["coefficients"], dtype=float)
     errs = np.asarray(data["coefficient_errors"], dtype=float)
     if errs.size != coeffs.size:
         _fail(path, f"key 'coefficient_errors' has {errs.size} entries, 'coefficients' has {coeffs.size}")
     if "covariance" in data:
-        cov = np.asarray(data["covariance"], dtype=float)
+        try:
+            cov = np.asarray(data["covariance"], dtype=float)
+        except ValueError:  # ragged rows
+            cov = np.empty(0)
         if cov.shape != (coeffs.size, coeffs.size):
             _fail(path, f"key 'covariance' must be {coeffs.size}x{coeffs.size}")
         if not np.allclose(cov, cov.T):

@@ -119,6 +119,10 @@ def describe(path: str | Path, fmt: str) -> dict[str, SourceColumn]:
             cols = {}
             for c in header.get("datatype", []):
                 kind = "text" if c.get("datatype") == "string" else "numeric"
+                if c.get("subtype"):  # JSON-encoded objects or arrays (astropy's object columns)
+                    fix = ".astype(str)" if kind == "text" else " as a plain number column"
+                    kind = (f"ECSV subtype {c['subtype']!r} (JSON-encoded values; write it as "
+                            f"table['{c['name']}']{fix})")
                 cols[c["name"]] = SourceColumn(c["name"], kind, c.get("unit"))
             return cols
         if fmt == "votable":
@@ -139,7 +143,10 @@ def _first_table(hdul, path):
     for hdu in hdul:
         if isinstance(hdu, fits.BinTableHDU):
             return hdu
-    raise CatalogError(f"catalog {path}: no binary table extension in the FITS file")
+    hint = ""
+    if Path(path).is_file() and Path(path).stat().st_size % 2880:
+        hint = " (its size is not a whole number of 2880-byte FITS blocks: truncated or corrupt?)"
+    raise CatalogError(f"catalog {path}: no binary table extension in the FITS file{hint}")
 
 
 def _native(arr: np.ndarray) -> np.ndarray:
@@ -174,9 +181,11 @@ def iter_batches(path: str | Path, fmt: str, columns: list[str], batch_rows: int
                 header, skip = _ecsv_header(path)
                 read = pacsv.ReadOptions(block_size=1 << 24, skip_rows=skip)
                 parse = pacsv.ParseOptions(delimiter=header.get("delimiter", " "))
+            # only an empty field is null: a text column may hold "NA" or "null" as a
+            # name; numeric columns read such words as missing values (ingest._to_float)
             convert = pacsv.ConvertOptions(include_columns=columns,
                                            column_types={c: pa.string() for c in columns},
-                                           strings_can_be_null=True)
+                                           null_values=[""], strings_can_be_null=True)
             reader = pacsv.open_csv(path, read_options=read, parse_options=parse, convert_options=convert)
             for batch in reader:
                 for start in range(0, batch.num_rows, batch_rows):

@@ -6,6 +6,7 @@ allowed, so a run never starts on a configuration it would choke on later.
 from __future__ import annotations
 
 import copy
+import math
 from pathlib import Path
 
 import jsonschema
@@ -105,10 +106,25 @@ def validate(config: dict, schema_path: Path = CONFIG_SCHEMA) -> dict:
     schema = yaml.safe_load(schema_path.read_text(encoding="utf-8"))
     _coerce(config, schema)
     errors = sorted(_Validator(schema).iter_errors(config), key=lambda e: (_key(e), e.validator))
-    if errors:
-        lines = sorted({_explain(e) for e in errors})
-        raise ConfigError("invalid configuration:\n  - " + "\n  - ".join(lines))
+    # NaN passes every minimum/maximum test of the schema (all comparisons are false)
+    lines = {_explain(e) for e in errors} | {
+        f"config key '{key}': {value} is not a finite number (use a finite value)"
+        for key, value in non_finite(config)}
+    if lines:
+        raise ConfigError("invalid configuration:\n  - " + "\n  - ".join(sorted(lines)))
     return config
+
+
+def non_finite(data, path: str = ""):
+    """(dotted key, value) of every NaN or infinite number in nested dicts and lists."""
+    if isinstance(data, float) and not math.isfinite(data):
+        yield path or "(top level)", data
+    elif isinstance(data, dict):
+        for k, v in data.items():
+            yield from non_finite(v, f"{path}.{k}" if path else str(k))
+    elif isinstance(data, list):
+        for i, v in enumerate(data):
+            yield from non_finite(v, f"{path}.{i}" if path else str(i))
 
 
 def catalog_spec(config: dict) -> tuple[list[str], str]:
@@ -152,6 +168,10 @@ def load(path: str | Path) -> dict:
         data = yaml.safe_load(Path(path).read_text(encoding="utf-8"))
     except yaml.YAMLError as exc:
         raise ConfigError(f"config file {path} is not valid YAML: {exc}") from exc
+    except UnicodeDecodeError as exc:
+        raise ConfigError(f"config file {path} is not UTF-8 text ({exc})") from exc
+    except OSError as exc:
+        raise ConfigError(f"config file {path} cannot be read ({exc.strerror})") from exc
     if not isinstance(data, dict):
         raise ConfigError(f"config file {path} must hold a mapping of keys")
     return data

@@ -33,6 +33,9 @@ MAG_RANGE = (-10.0, 40.0)
 SBF_MAG_RANGE = (-10.0, 50.0)
 SBF_COLOR_RANGE = (-2.0, 5.0)
 W50_MAX = 2000.0
+# words that mean "no value" in a numeric text column (pyarrow's CSV null words, lower case)
+MISSING_WORDS = ["nan", "-nan", "null", "none", "na", "n/a", "#n/a", "#n/a n/a", "#na", "-", "-1.#ind",
+                 "-1.#qnan", "1.#ind", "1.#qnan"]
 
 
 class IngestError(ValueError):
@@ -156,7 +159,7 @@ def _to_float(values, name: str, first_row: int) -> np.ndarray:
     s = pd.Series(arr, dtype=object)
     num = pd.to_numeric(s, errors="coerce").to_numpy(dtype=float, na_value=np.nan)
     text = s.where(s.notna(), "").astype(str).str.strip()
-    bad = np.isnan(num) & (text != "") & ~text.str.lower().isin(["nan", "null", "none", "na", "-"]).to_numpy()
+    bad = np.isnan(num) & (text != "") & ~text.str.lower().isin(MISSING_WORDS).to_numpy()
     if bad.any():
         idx = np.flatnonzero(bad)[:5]
         shown = ", ".join(f"row {first_row + i + 1}: {text.iloc[i][:40]!r}" for i in idx)
