@@ -6,8 +6,8 @@
   is SIGKILLed while the demo catalog is built, while ingest writes its shards, during the
   per-shard stages, while the product is assembled and while the plots are drawn. After
   each kill the README's command is run again (when Snakemake refuses because the killed
-  run left its lock, with the remedy it names, `--unlock`, first; a strict xfail records
-  that the README does not say so yet); right after each kill every Parquet and JSON
+  run left its lock, with the remedy it names, `--unlock`, first, as the README says);
+  right after each kill every Parquet and JSON
   file under its final name is complete; the final products equal a clean run's (Parquet
   content and summary; provenance creation time aside) and every other file is
   byte-identical.
@@ -146,11 +146,6 @@ def _partial_write_then_fail(target, *args, **kwargs):
     raise OSError("disk full")
 
 
-NOT_YET_ATOMIC = pytest.mark.xfail(strict=True, reason="writes in place: a failure or kill leaves a partial file "
-                                                      "under the final name; proposal: galdist.io.atomic_path")
-
-
-@NOT_YET_ATOMIC
 def test_mu_grid_is_written_atomically(tmp_path, monkeypatch):
     from galdist import redshift
     grid = redshift.MuGrid.build(redshift.make_cosmology(H0=70.0, Om0=0.3), z_max=0.5, n=200)
@@ -160,7 +155,6 @@ def test_mu_grid_is_written_atomically(tmp_path, monkeypatch):
     assert list(tmp_path.iterdir()) == []
 
 
-@NOT_YET_ATOMIC
 def test_kcorrect_grid_is_written_atomically(tmp_path, monkeypatch):
     from galdist import kcorrect
     grid = kcorrect.KGrid(z=np.linspace(0.0, 0.2, 3), k={"V": np.zeros((1, 3))}, names=("flat",))
@@ -170,7 +164,6 @@ def test_kcorrect_grid_is_written_atomically(tmp_path, monkeypatch):
     assert list(tmp_path.iterdir()) == []
 
 
-@NOT_YET_ATOMIC
 def test_plots_are_written_atomically(tmp_path, monkeypatch):
     import matplotlib.figure
     from galdist import plots
@@ -347,9 +340,6 @@ def test_kill_at_every_phase_then_resume_gives_the_clean_products(reference, kil
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="README does not yet say how to resume after a kill: Snakemake leaves "
-                                       "its lock behind and the README's command refuses to start until "
-                                       "`snakemake --unlock` (report to the lead)")
 def test_resume_needs_only_the_readme_command(killed):
     readme = (REPO / "README.md").read_text()
     undocumented = [r for r in dict.fromkeys(killed["remedies"]) if r not in readme]

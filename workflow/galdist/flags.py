@@ -78,7 +78,7 @@ class Quality(_Documented):
                          "no SBF distance for this row")
     SBF_ERR_INVALID = (11, "sbf_mag_err or sbf_color_err negative, infinite, or missing while other SBF inputs are given",
                        "supply errors; SBF error omits that term")
-    EBV_INVALID = (12, "catalog ebv negative or infinite, or ebv_err negative or infinite",
+    EBV_INVALID = (12, "catalog ebv negative or infinite, or ebv_err negative, infinite or missing while ebv is given",
                    "no Galactic extinction correction from the catalog for this row")
     OPTIONAL_INVALID = (13, "an optional numeric column (hi_flux, w50_resolution) is negative or infinite",
                         "the step that needs it is skipped for this row")

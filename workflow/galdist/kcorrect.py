@@ -41,6 +41,7 @@ import numpy as np
 from astropy.table import Table
 
 from . import flags as fl
+from .io import atomic_path
 from .filters import band_average
 from .flags import KCorr
 
@@ -237,6 +238,10 @@ class KGrid:
     def to_file(self, path: str | Path) -> None:
         """Write a compressed .npz (no pickles) holding everything ``from_file`` needs."""
         bands = list(self.k)
+        with atomic_path(path) as tmp:
+            self._write(tmp, bands)
+
+    def _write(self, path, bands) -> None:
         np.savez_compressed(
             path,
             z=self.z,

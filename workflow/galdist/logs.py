@@ -8,9 +8,27 @@ import sys
 import time
 
 
+def _structural_errors() -> tuple[type, ...]:
+    from .calibration import CalibrationError
+    from .catalog import CatalogError
+    from .config import ConfigError
+    from .ingest import IngestError
+    from .io import CorruptFileError, StaleInputError
+
+    return (CalibrationError, CatalogError, ConfigError, IngestError, CorruptFileError, StaleInputError)
+
+
+STRUCTURAL = _structural_errors()
+
+
 @contextlib.contextmanager
 def logged(path: str, what: str):
-    """Send logging to ``path``; log start, end and any error (then re-raise)."""
+    """Send logging to ``path``; log start, end and any error.
+
+    Errors that name a problem with the user's files or settings (the STRUCTURAL
+    exceptions) end the job with their message alone; anything else is a bug in
+    galdist and keeps its traceback.
+    """
     handler = logging.FileHandler(path, mode="w", encoding="utf-8")
     handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
     root = logging.getLogger()
@@ -21,8 +39,13 @@ def logged(path: str, what: str):
     log.info("%s: start", what)
     try:
         yield log
+    except STRUCTURAL as exc:
+        # a problem with the user's data or config, named in the message: no traceback
+        log.error("%s failed: %s", what, exc)
+        print(f"galdist: {what} failed: {exc}", file=sys.stderr)
+        raise SystemExit(1) from None
     except Exception as exc:
-        log.error("%s failed: %s: %s", what, type(exc).__name__, exc)
+        log.exception("%s failed: %s: %s", what, type(exc).__name__, exc)
         print(f"galdist: {what} failed: {exc}", file=sys.stderr)
         raise
     else:

@@ -20,6 +20,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
 from .flags import Method  # noqa: E402
+from .io import atomic_path  # noqa: E402
 
 DPI = 110
 MAX_ERRORBARS = 3000  # above this, points only (error bars would hide the data)
@@ -52,9 +53,12 @@ def _no_data(ax, text="no data"):
 
 
 def _save(fig, path) -> None:
-    Path(path).parent.mkdir(parents=True, exist_ok=True)
-    fig.savefig(path, dpi=DPI)
-    plt.close(fig)
+    """Write the PNG atomically (temporary name, then rename) and free the figure."""
+    try:
+        with atomic_path(path) as tmp:
+            fig.savefig(tmp, dpi=DPI)
+    finally:
+        plt.close(fig)
 
 
 def _points(ax, x, y, yerr, good, bad, color, label, size=12):

@@ -29,6 +29,7 @@ from astropy.cosmology import FlatLambdaCDM, realizations
 from . import flags as _flags
 from .ebv_maps import galactic_coordinates
 from .distance import mpc_from_mu
+from .io import atomic_path
 from .uncertainty import quadrature
 
 C_KMS = _const.c.to_value(_u.km / _u.s)  # 299792.458 km/s (exact, SI definition)
@@ -142,7 +143,7 @@ class MuGrid:
     def save(self, path: str | Path) -> None:
         """Write the grid as a small .npz (no pickles)."""
         meta = dict(self.cosmology, h0=self.h0, q0=self.q0, j0=self.j0)
-        with open(path, "wb") as fh:
+        with atomic_path(path) as tmp, open(tmp, "wb") as fh:
             np.savez(fh, z=self.z, mu=self.mu_values, dmu_dlnz=self.dmu_dlnz,
                      meta=np.array(json.dumps(meta, sort_keys=True)))
 
