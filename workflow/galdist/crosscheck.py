@@ -342,7 +342,8 @@ def best_distance(methods: Mapping[str, tuple], *, ignore_flags=("LOCAL_FLOW",))
 # ``galaxy_columns`` then derives every per-galaxy column of a shard, outlier bits
 # included, from those statistics. ``crosscheck`` chains the three on one table.
 
-SAMPLE_KEYS = ("dmu", "dmu_err", "flags", "z_cmb", "mu", "mu_err")
+SAMPLE_KEYS = ("dmu", "dmu_err", "flags", "z_cmb")
+PAIR_KEYS = ("mu_a", "mu_a_err", "flags_a", "mu_b", "mu_b_err", "flags_b")
 
 
 def _method_flags(columns, m, z_flags) -> np.ndarray:
@@ -352,67 +353,68 @@ def _method_flags(columns, m, z_flags) -> np.ndarray:
 
 
 def method_sample(columns: Mapping[str, Sequence], methods: Sequence[str] = DEFAULT_METHODS) -> dict:
-    """Per method present, the compact arrays the statistics need: rows with a finite mu only.
+    """What the sample statistics need from one shard, compactly (float32, measured rows only).
 
-    Returns {M: {dmu, dmu_err, flags, z_cmb, mu, mu_err, row}}; ``row`` indexes
-    the input rows (so pairs of methods can be matched).
+    Returns {"methods": {M: {dmu, dmu_err, flags, z_cmb}}, "pairs": {"A-B": {mu_a, mu_a_err,
+    flags_a, mu_b, mu_b_err, flags_b}}}; 16 bytes per measured row and method, so the
+    statistics of a 10^7-row catalog fit in a few hundred MB.
     """
     def col(name):
         return np.asarray(columns[name], dtype=float)
 
     z_flags = np.asarray(columns["z_flags"], dtype=_flags.FLAG_DTYPE)
-    out = {}
-    for m in methods:
-        if f"{m}_mu" not in columns:
-            continue
+    present = [m for m in methods if f"{m}_mu" in columns]
+    out: dict = {"methods": {}, "pairs": {}}
+    for m in present:
         mu = col(f"{m}_mu")
-        keep = np.flatnonzero(np.isfinite(mu))
-        mu_err = col(f"{m}_mu_err")[keep]
-        mu_z, mu_z_err = col("mu_z")[keep], col("mu_z_err")[keep]
-        out[m] = {"dmu": delta_mu(mu[keep], mu_z), "dmu_err": np.sqrt(mu_err**2 + mu_z_err**2),
-                  "flags": _method_flags(columns, m, z_flags)[keep], "z_cmb": col("z_cmb")[keep],
-                  "mu": mu[keep], "mu_err": mu_err, "row": keep}
+        keep = np.isfinite(mu)
+        dmu_err = np.sqrt(col(f"{m}_mu_err")[keep] ** 2 + col("mu_z_err")[keep] ** 2)
+        out["methods"][m] = {"dmu": delta_mu(mu[keep], col("mu_z")[keep]).astype(np.float32),
+                             "dmu_err": dmu_err.astype(np.float32),
+                             "flags": _method_flags(columns, m, z_flags)[keep],
+                             "z_cmb": col("z_cmb")[keep].astype(np.float32)}
+    for a, b in itertools.combinations(present, 2):
+        both = np.isfinite(col(f"{a}_mu")) & np.isfinite(col(f"{b}_mu"))
+        out["pairs"][f"{a}-{b}"] = {
+            "mu_a": col(f"{a}_mu")[both], "mu_a_err": col(f"{a}_mu_err")[both],
+            "flags_a": _method_flags(columns, a, z_flags)[both],
+            "mu_b": col(f"{b}_mu")[both], "mu_b_err": col(f"{b}_mu_err")[both],
+            "flags_b": _method_flags(columns, b, z_flags)[both]}
     return out
 
 
 def concat_samples(samples: Sequence[dict]) -> dict:
-    """Join per-shard ``method_sample`` results (row indices offset to stay unique)."""
-    out: dict = {}
-    offset = 0
-    for part, n_rows in samples:
-        for m, arrays in part.items():
-            dest = out.setdefault(m, {k: [] for k in (*SAMPLE_KEYS, "row")})
-            for k in SAMPLE_KEYS:
-                dest[k].append(arrays[k])
-            dest["row"].append(arrays["row"] + offset)
-        offset += n_rows
-    return {m: {k: np.concatenate(v) for k, v in arrays.items()} for m, arrays in out.items()}
+    """Join the ``method_sample`` results of all shards."""
+    out: dict = {"methods": {}, "pairs": {}}
+    for part in samples:
+        for group, keys in (("methods", SAMPLE_KEYS), ("pairs", PAIR_KEYS)):
+            for name, arrays in part[group].items():
+                dest = out[group].setdefault(name, {k: [] for k in keys})
+                for k in keys:
+                    dest[k].append(arrays[k])
+    return {group: {name: {k: np.concatenate(v) for k, v in arrays.items()} for name, arrays in items.items()}
+            for group, items in out.items()}
 
 
 def sample_statistics(sample: dict, n_rows: int, h0_assumed: float, *, min_cz: float = 3000.0,
                       clip_sigma: float = 3.5, max_iter: int = 20) -> dict:
-    """Per-method Hubble statistics and per-pair offsets from a (concatenated) sample."""
+    """Per-method Hubble statistics and per-pair offsets from a (concatenated) sample.
+
+    The pair statistics ignore OUTLIER and LOCAL_FLOW (``pair_statistics``'s default):
+    a Hubble outlier or a nearby galaxy still has a valid distance to compare.
+    """
     summary: dict = {"methods": {}, "pairs": {}}
-    for m, s in sample.items():
-        stats, _ = hubble_statistics(s["dmu"], s["dmu_err"], s["flags"], s["z_cmb"], h0_assumed,
+    for m, s in sample["methods"].items():
+        stats, _ = hubble_statistics(s["dmu"].astype(float), s["dmu_err"].astype(float), s["flags"],
+                                     s["z_cmb"].astype(float), h0_assumed,
                                      min_cz=min_cz, clip_sigma=clip_sigma, max_iter=max_iter)
         stats["n_rows"] = int(n_rows)
         stats["n_measured"] = int(s["dmu"].size)
         summary["methods"][m] = stats
-    def flags_with_outliers(m, idx):
-        s = sample[m]
-        fl = s["flags"][idx].copy()
-        _flags.set_where(fl, _outliers(s["dmu"][idx], s["z_cmb"][idx], summary["methods"][m], min_cz, clip_sigma),
-                         Method.OUTLIER)
-        return fl
-
-    for a, b in itertools.combinations(list(sample), 2):
-        sa, sb = sample[a], sample[b]
-        _, ia, ib = np.intersect1d(sa["row"], sb["row"], assume_unique=True, return_indices=True)
-        summary["pairs"][f"{a}-{b}"] = pair_statistics(
-            sa["mu"][ia], sa["mu_err"][ia], flags_with_outliers(a, ia),
-            sb["mu"][ib], sb["mu_err"][ib], flags_with_outliers(b, ib),
-            clip_sigma=clip_sigma, max_iter=max_iter)
+    for name, p in sample["pairs"].items():
+        summary["pairs"][name] = pair_statistics(p["mu_a"], p["mu_a_err"], p["flags_a"],
+                                                 p["mu_b"], p["mu_b_err"], p["flags_b"],
+                                                 clip_sigma=clip_sigma, max_iter=max_iter)
     return summary
 
 
@@ -475,7 +477,7 @@ def crosscheck(columns: Mapping[str, Sequence], grid: MuGrid, *,
     counts of best_method. H0, q0, j0 are the grid's.
     """
     n = len(np.asarray(columns["z_cmb"]))
-    sample = concat_samples([(method_sample(columns, methods), n)])
+    sample = concat_samples([method_sample(columns, methods)])
     summary = sample_statistics(sample, n, grid.h0, min_cz=min_cz, clip_sigma=clip_sigma, max_iter=max_iter)
     out = galaxy_columns(columns, grid, summary, methods=methods, min_cz=min_cz, clip_sigma=clip_sigma,
                          best_ignore_flags=best_ignore_flags)
