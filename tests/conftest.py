@@ -58,3 +58,35 @@ def run_snakemake(workdir: Path, *args: str, timeout: int = 900) -> subprocess.C
 @pytest.fixture
 def workflow_copy(tmp_path):
     return copy_workflow(tmp_path)
+
+
+# --- comparing the products of two runs (determinism, recovery, SLURM vs local) ------------
+
+# Fields that legitimately differ between two runs (wall-clock time, checkout state).
+VOLATILE_KEYS = {"created_utc", "git_commit"}
+
+
+def drop_volatile(obj):
+    """``obj`` (parsed JSON) without the VOLATILE_KEYS, at any depth."""
+    if isinstance(obj, dict):
+        return {k: drop_volatile(v) for k, v in obj.items() if k not in VOLATILE_KEYS}
+    if isinstance(obj, list):
+        return [drop_volatile(v) for v in obj]
+    return obj
+
+
+def assert_same_table(a, b, what: str) -> None:
+    """Same columns, types, units (field metadata) and values; NaN equals NaN, nothing else is tolerated."""
+    import pyarrow as pa
+
+    assert a.column_names == b.column_names, what
+    assert a.num_rows == b.num_rows, what
+    for fa, fb in zip(a.schema, b.schema):
+        assert fa.type == fb.type, f"{what}: {fa.name} {fa.type} != {fb.type}"
+        assert fa.metadata == fb.metadata, f"{what}: field metadata of {fa.name}"
+    for name in a.column_names:
+        ca, cb = a.column(name), b.column(name)
+        if pa.types.is_floating(ca.type):
+            np.testing.assert_array_equal(ca.to_numpy(), cb.to_numpy(), err_msg=f"{what}: {name}")
+        else:
+            assert ca.to_pylist() == cb.to_pylist(), f"{what}: {name}"

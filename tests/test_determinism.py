@@ -23,48 +23,21 @@ import sys
 import textwrap
 from pathlib import Path
 
-import numpy as np
-import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from conftest import REPO, copy_workflow, run_snakemake
+from conftest import REPO, assert_same_table, copy_workflow, drop_volatile, run_snakemake
 from galdist import calibration as gcal
 from galdist import config as gconfig
 
 # 2000 rows in shards of 1000 (config/config.yaml): two shards, so shard order matters.
 DEMO_ARGS = ("--config", "demo={n_galaxies: 2000}")
 PROVENANCE_KEY = b"galdist.provenance"
-# Fields that legitimately differ between two runs (wall-clock time, checkout state).
-VOLATILE_KEYS = {"created_utc", "git_commit"}
 # Files that are not products: logs and benchmarks hold times, the timestamp file is Snakemake's.
 NOT_PRODUCTS = ("logs", "benchmarks")
 
 
 # --- product comparison (also used by test_recovery) ----------------------------------
-
-def _drop_volatile(obj):
-    if isinstance(obj, dict):
-        return {k: _drop_volatile(v) for k, v in obj.items() if k not in VOLATILE_KEYS}
-    if isinstance(obj, list):
-        return [_drop_volatile(v) for v in obj]
-    return obj
-
-
-def assert_same_table(a: pa.Table, b: pa.Table, what: str) -> None:
-    """Same columns, types, units (field metadata) and values; NaN equals NaN, nothing else is tolerated."""
-    assert a.column_names == b.column_names, what
-    assert a.num_rows == b.num_rows, what
-    for fa, fb in zip(a.schema, b.schema):
-        assert fa.type == fb.type, f"{what}: {fa.name} {fa.type} != {fb.type}"
-        assert fa.metadata == fb.metadata, f"{what}: field metadata of {fa.name}"
-    for name in a.column_names:
-        ca, cb = a.column(name), b.column(name)
-        if pa.types.is_floating(ca.type):
-            np.testing.assert_array_equal(ca.to_numpy(), cb.to_numpy(), err_msg=f"{what}: {name}")
-        else:
-            assert ca.to_pylist() == cb.to_pylist(), f"{what}: {name}"
-
 
 def provenance_of(path: Path) -> dict:
     meta = pq.read_schema(path).metadata or {}
@@ -78,10 +51,10 @@ def assert_same_products(run_a: Path, run_b: Path) -> None:
                       "distances.parquet")
     pa_, pb_ = provenance_of(run_a / "distances.parquet"), provenance_of(run_b / "distances.parquet")
     assert set(pa_) == set(pb_)
-    assert _drop_volatile(pa_) == _drop_volatile(pb_)
+    assert drop_volatile(pa_) == drop_volatile(pb_)
     sa = json.loads((run_a / "summary.json").read_text())
     sb = json.loads((run_b / "summary.json").read_text())
-    assert _drop_volatile(sa) == _drop_volatile(sb)
+    assert drop_volatile(sa) == drop_volatile(sb)
     assert sa["rows_in"] == sa["rows_out"] > 0
 
 

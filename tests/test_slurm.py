@@ -27,12 +27,10 @@ from concurrent.futures import ThreadPoolExecutor
 from datetime import datetime
 from pathlib import Path
 
-import numpy as np
-import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from conftest import copy_workflow, run_snakemake
+from conftest import assert_same_table, copy_workflow, drop_volatile, run_snakemake
 from slurm.cluster import (ClusterUnavailable, LocalSlurmCluster, ensure_executor_plugin, ensure_packages)
 
 pytestmark = [pytest.mark.slurm, pytest.mark.slow]
@@ -42,7 +40,6 @@ DEMO = ("--config", "demo={n_galaxies: 600}", "shard_rows=300")
 PROFILE = "workflow/profiles/slurm"  # relative to a copy of the workflow (conftest.copy_workflow)
 SLURM_TIMEOUT_S = 360  # the plugin can hang when it loses track of jobs: never wait forever
 # Fields that differ between two runs by nature (wall-clock time, checkout state).
-VOLATILE = {"created_utc", "git_commit"}
 TIMES: dict[str, float] = {}
 
 
@@ -125,36 +122,16 @@ def runs(tmp_path_factory, cluster, plugin_dir):
 
 # --- the products are the same ------------------------------------------------------------
 
-def _drop_volatile(obj):
-    if isinstance(obj, dict):
-        return {k: _drop_volatile(v) for k, v in obj.items() if k not in VOLATILE}
-    if isinstance(obj, list):
-        return [_drop_volatile(v) for v in obj]
-    return obj
-
-
-def _assert_same_table(a: pa.Table, b: pa.Table, what: str) -> None:
-    """Same columns, types, units (field metadata) and values; NaN equals NaN, nothing else tolerated."""
-    assert a.schema.remove_metadata().equals(b.schema.remove_metadata(), check_metadata=True), what
-    assert a.num_rows == b.num_rows, what
-    for name in a.column_names:
-        ca, cb = a.column(name), b.column(name)
-        if pa.types.is_floating(ca.type):
-            np.testing.assert_array_equal(ca.to_numpy(), cb.to_numpy(), err_msg=f"{what}: {name}")
-        else:
-            assert ca.to_pylist() == cb.to_pylist(), f"{what}: {name}"
-
-
 def test_slurm_products_equal_local_products(runs):
     local, slurm = runs["local"], runs["slurm"]
     a, b = pq.read_table(local / "distances.parquet"), pq.read_table(slurm / "distances.parquet")
     assert a.num_rows == 600
-    _assert_same_table(a, b, "distances.parquet")
+    assert_same_table(a, b, "distances.parquet")
     prov = [json.loads(pq.read_schema(p / "distances.parquet").metadata[b"galdist.provenance"]) for p in (local, slurm)]
-    assert _drop_volatile(prov[0]) == _drop_volatile(prov[1])
+    assert drop_volatile(prov[0]) == drop_volatile(prov[1])
     for name in ("summary.json", "ingest_summary.json", "crosscheck_statistics.json"):
         ja, jb = (json.loads((p / name).read_text()) for p in (local, slurm))
-        assert _drop_volatile(ja) == _drop_volatile(jb), name
+        assert drop_volatile(ja) == drop_volatile(jb), name
     plots = sorted(p.name for p in (slurm / "plots").glob("*.png"))
     assert plots == sorted(p.name for p in (local / "plots").glob("*.png")) and len(plots) == 5
 
@@ -165,7 +142,7 @@ def test_every_shard_file_equal(runs):
     assert files == sorted(p.relative_to(slurm) for p in (slurm / "shards").rglob("*.parquet"))
     assert len([f for f in files if f.parts[1] == "ingest"]) == 2  # two shards
     for f in files:
-        _assert_same_table(pq.read_table(local / f), pq.read_table(slurm / f), str(f))
+        assert_same_table(pq.read_table(local / f), pq.read_table(slurm / f), str(f))
 
 
 # --- the jobs really went through SLURM ---------------------------------------------------

@@ -20,7 +20,6 @@ from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.parquet as pq
 
 from . import crosscheck
 from . import flags as F
