@@ -28,6 +28,12 @@ try:
 except (gconfig.ConfigError, gingest.IngestError, gingest.CatalogError, CalibrationError) as exc:
     raise WorkflowError(f"galdist cannot start: {exc}") from None
 
+# the demo uses small shards; any other catalog the configured (default 10^6) size
+SCHEMA_SHARD_ROWS = 1_000_000
+SHARD_ROWS = (config["demo"]["shard_rows"]
+              if CATALOG_PATHS == [DEMO_CATALOG] and config["shard_rows"] == SCHEMA_SHARD_ROWS
+              else config["shard_rows"])
+
 RUN = f"results/{config['run']}"
 LOGS = f"{RUN}/logs"
 BENCH = f"{RUN}/benchmarks"

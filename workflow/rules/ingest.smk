@@ -14,7 +14,7 @@ checkpoint ingest:
         units=config["units"],
         bands=BANDS,
         methods=METHODS,
-        shard_rows=config["shard_rows"],
+        shard_rows=SHARD_ROWS,
     log:
         f"{LOGS}/ingest.log",
     benchmark:
