@@ -174,6 +174,8 @@ def guard_log(directory: Path) -> list[str]:
     return path.read_text(encoding="utf-8").splitlines() if path.exists() else []
 
 
+# The guard's own test: a child process that TRIES outbound connections, DNS and a URL
+# fetch, each of which the guard must refuse (nothing here reaches the network).
 PROBE = textwrap.dedent('''
     import socket, sys, threading, urllib.request
     results = {}
