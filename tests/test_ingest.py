@@ -228,6 +228,21 @@ def test_duplicate_ids_are_named(tmp_path):
     assert not (tmp_path / "shards").exists()  # nothing half-written is left behind
 
 
+def test_duplicate_ids_found_across_shards_and_batches(tmp_path):
+    # the hashes of every ID go to disk in buckets; a repeat far apart, in another
+    # shard and another read batch, must still be found, and nothing left on disk
+    cols = small_catalog(3000)
+    cols["galaxy_id"][2999] = cols["galaxy_id"][7]
+    with pytest.raises(ingest.IngestError, match=r"not unique: 1 IDs repeat \('T-0007' x2\)"):
+        run_ingest(tmp_path, [write_parquet(cols, tmp_path / "c.parquet")], shard_rows=500, batch_rows=128)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["c.parquet"]
+    cols["galaxy_id"][2999] = "T-unique"
+    table, summary = run_ingest(tmp_path, [write_parquet(cols, tmp_path / "c.parquet")], shard_rows=500,
+                                batch_rows=128)
+    assert summary["shards"] == 6 and table.num_rows == 3000
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["c.parquet", "shards", "summary.json"]
+
+
 def test_empty_id_is_structural(tmp_path):
     cols = small_catalog(4)
     cols["galaxy_id"][2] = ""

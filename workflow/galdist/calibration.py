@@ -15,11 +15,9 @@ import jsonschema
 import numpy as np
 import yaml
 
+from .errors import CalibrationError
+
 SCHEMA_PATH = Path(__file__).resolve().parent.parent / "schemas" / "calibration.schema.yaml"
-
-
-class CalibrationError(ValueError):
-    """A calibration file is malformed; the message names the file and the key."""
 
 
 @dataclass(frozen=True)

@@ -12,12 +12,10 @@ from pathlib import Path
 import jsonschema
 import yaml
 
+from .errors import ConfigError
+
 SCHEMA_DIR = Path(__file__).resolve().parent.parent / "schemas"
 CONFIG_SCHEMA = SCHEMA_DIR / "config.schema.yaml"
-
-
-class ConfigError(ValueError):
-    """The configuration cannot be used; the message names the key."""
 
 
 def _with_defaults(validator_class):

@@ -25,6 +25,7 @@ import itertools
 from collections.abc import Iterable, Mapping, Sequence
 
 import numpy as np
+import pyarrow as pa
 
 from . import flags as _flags
 from .flags import Method
@@ -165,47 +166,156 @@ def peculiar_velocity_log_ratio(mu, mu_err, z_cmb, z_cmb_err, h0: float, q0: flo
 
 
 # --------------------------------------------------------------------------- sample statistics
+#
+# The statistics run over a *sample*: records of (value, error, z, flags), one per
+# measured galaxy, given as any re-iterable of record arrays (a list of per-shard
+# arrays, or chunks read back from disk by ``io.RecordSpill``). Every statistic is
+# computed pass by pass over those chunks, the median exactly by a radix selection
+# on the float32 bit patterns, so memory is one chunk whatever the catalog's size.
 
-def _clip(values, usable, clip_sigma: float, max_iter: int):
+#: one sample record: dmu (or mu_a - mu_b), its expected error, z_cmb (NaN for a
+#: pair), and the method flags (for a pair, the OR of both methods' flags)
+RECORD = np.dtype([("value", "<f4"), ("error", "<f4"), ("z", "<f4"), ("flags", "<u4")])
+
+
+def records(value, error, z, flags) -> np.ndarray:
+    """Pack per-row arrays into sample records (float32: 1e-7 mag is far below any error)."""
+    out = np.empty(np.shape(value), dtype=RECORD)
+    out["value"], out["error"], out["z"], out["flags"] = value, error, z, flags
+    return out
+
+
+class _Rows:
+    """Which rows of a sample count: candidates have a finite value (and c z >= min_cz
+    unless min_cz is None); usable ones also a finite positive error and none of the
+    ``exclude`` flags; a clipping window (centre, half-width) keeps |value - centre| <= half."""
+
+    def __init__(self, exclude: int, min_cz: float | None):
+        self.exclude, self.min_cz = _flags.FLAG_DTYPE(exclude), min_cz
+
+    def candidate(self, rec) -> np.ndarray:
+        ok = np.isfinite(rec["value"])
+        if self.min_cz is not None:
+            ok &= C_KMS * np.nan_to_num(rec["z"].astype(float), nan=-np.inf) >= float(self.min_cz)
+        return ok
+
+    def usable(self, rec) -> np.ndarray:
+        e = rec["error"]
+        return self.candidate(rec) & np.isfinite(e) & (e > 0) & ((rec["flags"] & self.exclude) == 0)
+
+    def picker(self, window):
+        """A function of a chunk: its usable rows inside ``window`` (all usable rows for None)."""
+        if window is None:
+            return self.usable
+        centre, half = window
+        return lambda rec: self.usable(rec) & (np.abs(rec["value"].astype(float) - centre) <= half)
+
+
+def _moments(chunks, pick, other=None) -> tuple[int, float, float, int]:
+    """(n, mean, sum of squared deviations) of the picked values, merged chunk by chunk
+    (the pairwise update of Chan, Golub & LeVeque 1983), and how many rows ``other``
+    picks differently (0 when ``other`` is None)."""
+    n, mean, m2, changed = 0, 0.0, 0.0, 0
+    for rec in chunks:
+        sel = pick(rec)
+        if other is not None:
+            changed += int(np.count_nonzero(sel != other(rec)))
+        x = rec["value"][sel].astype(float)
+        if x.size == 0:
+            continue
+        k, mk = x.size, float(x.mean())
+        delta, total = mk - mean, n + x.size
+        m2 += float(np.sum((x - mk) ** 2)) + delta**2 * n * k / total
+        mean += delta * k / total
+        n = total
+    return n, mean, m2, changed
+
+
+def _sortable_keys(values) -> np.ndarray:
+    """uint32 keys that sort like the float32 values: positives get the sign bit set,
+    negatives have every bit flipped."""
+    u = np.ascontiguousarray(values, dtype=np.float32).view(np.uint32)
+    return np.where(u >> 31 == 1, ~u, u | np.uint32(0x80000000))
+
+
+def _key_value(key: int) -> float:
+    u = np.array([key], dtype=np.uint32)
+    u = u & np.uint32(0x7FFFFFFF) if key >> 31 else ~u
+    return float(u.view(np.float32)[0])
+
+
+def _median(chunks, pick, n: int) -> float:
+    """Exact median of the n picked values (mean of the middle two for even n, as
+    numpy.median): a radix selection in two passes, on the high then the low 16 bits
+    of the sortable keys, with 65536-bin histograms."""
+    if n == 0:
+        return np.nan
+    high = np.zeros(1 << 16, dtype=np.int64)
+    for rec in chunks:
+        high += np.bincount(_sortable_keys(rec["value"][pick(rec)]) >> 16, minlength=1 << 16)
+    cum = np.cumsum(high)
+    wanted = []  # (high 16 bits, rank within that bucket) of the two middle ranks
+    for rank in ((n - 1) // 2, n // 2):
+        bucket = int(np.searchsorted(cum, rank, side="right"))
+        wanted.append((bucket, rank - (int(cum[bucket - 1]) if bucket else 0)))
+    low = {bucket: np.zeros(1 << 16, dtype=np.int64) for bucket, _ in wanted}
+    for rec in chunks:
+        keys = _sortable_keys(rec["value"][pick(rec)])
+        for bucket, counts in low.items():
+            counts += np.bincount(keys[keys >> 16 == bucket] & 0xFFFF, minlength=1 << 16)
+    values = [_key_value(bucket << 16 | int(np.searchsorted(np.cumsum(low[bucket]), rank, side="right")))
+              for bucket, rank in wanted]
+    return 0.5 * (values[0] + values[1])
+
+
+def _clip(chunks, rows: _Rows, clip_sigma: float, max_iter: int):
     """Iterative clipping about the median at clip_sigma x the sample standard
     deviation (common practice); rejected points may re-enter. Returns the final
-    selection, centre, scale and number of iterations."""
-    sel = usable.copy()
+    window (None: every usable row), its row count, centre, scale and iterations."""
+    window = None
+    n, _, m2, _ = _moments(chunks, rows.picker(window))
     center = scale = np.nan
     it = 0
     for it in range(1, max_iter + 1):
-        if sel.sum() < 3:
+        if n < 3:
             break
-        center = float(np.median(values[sel]))
-        scale = float(np.std(values[sel], ddof=1))
-        new = usable & (np.abs(values - center) <= clip_sigma * scale)
-        if np.array_equal(new, sel):
+        center = _median(chunks, rows.picker(window), n)
+        scale = float(np.sqrt(m2 / (n - 1)))
+        new = (center, clip_sigma * scale)
+        n_new, _, m2_new, changed = _moments(chunks, rows.picker(new), rows.picker(window))
+        if changed == 0:
             break
-        sel = new
-    if sel.sum() >= 1:
-        center = float(np.median(values[sel]))
-        scale = float(np.std(values[sel], ddof=1)) if sel.sum() > 1 else np.nan
-    return sel, center, scale, it
+        window, n, m2 = new, n_new, m2_new
+    if n >= 1:
+        center = _median(chunks, rows.picker(window), n)
+        scale = float(np.sqrt(m2 / (n - 1))) if n > 1 else np.nan
+    return window, n, center, scale, it
 
 
-def _summary(values, errors, sel) -> dict:
-    """Median, weighted mean, scatter and chi2 of values[sel] with errors[sel]."""
-    n = int(sel.sum())
-    x, e = values[sel], errors[sel]
+def _summary(chunks, pick, n: int, median: float, std: float) -> dict:
+    """Median, weighted mean, scatter and chi2 of the picked values and their errors
+    (``median`` and ``std`` are the clipping's final ones, of the same rows)."""
     out = {"n_used": n}
     if n == 0:
         return out | dict.fromkeys(["median", "median_err", "wmean", "wmean_err",
                                     "wmean_err_formal", "std", "rms_expected_err",
                                     "excess_scatter", "chi2_nu"])
-    w = 1.0 / e**2
-    wmean = float(np.sum(w * x) / np.sum(w))
-    formal = float(1.0 / np.sqrt(np.sum(w)))
-    std = float(np.std(x, ddof=1)) if n > 1 else np.nan
-    chi2_nu = float(np.sum(w * (x - wmean) ** 2) / (n - 1)) if n > 1 else np.nan
-    rms_exp = float(np.sqrt(np.mean(e**2)))
+    sw = swx = se2 = 0.0
+    for rec in chunks:
+        sel = pick(rec)
+        x, e = rec["value"][sel].astype(float), rec["error"][sel].astype(float)
+        sw, swx, se2 = sw + np.sum(1.0 / e**2), swx + np.sum(x / e**2), se2 + np.sum(e**2)
+    wmean = float(swx / sw)
+    chi2 = 0.0
+    for rec in chunks:
+        sel = pick(rec)
+        chi2 += float(np.sum(((rec["value"][sel].astype(float) - wmean) / rec["error"][sel].astype(float)) ** 2))
+    formal = float(1.0 / np.sqrt(sw))
+    chi2_nu = chi2 / (n - 1) if n > 1 else np.nan
+    rms_exp = float(np.sqrt(se2 / n))
     inflate = np.sqrt(max(1.0, chi2_nu)) if np.isfinite(chi2_nu) else 1.0
     return out | {
-        "median": _f(np.median(x)),
+        "median": _f(median),
         # asymptotic error of a Gaussian sample's median: sqrt(pi/2) s / sqrt(n) (common practice)
         "median_err": _f(np.sqrt(np.pi / 2.0) * std / np.sqrt(n)) if n > 1 else None,
         "wmean": _f(wmean),
@@ -219,46 +329,45 @@ def _summary(values, errors, sel) -> dict:
     }
 
 
-def hubble_statistics(dmu, dmu_err, method_flags, z_cmb, h0_assumed: float, *,
-                      min_cz: float = 3000.0, clip_sigma: float = 3.5, max_iter: int = 20,
-                      exclude_flags=None):
-    """Zero point, implied H0 and scatter of one method against the Hubble flow.
+def _clip_sigma(value: float) -> float:
+    if not (np.isfinite(value) and value > 0):
+        raise ValueError(f"crosscheck.clip_sigma must be > 0, got {value}")
+    return float(value)
+
+
+def _count(chunks, pick) -> int:
+    return sum(int(np.count_nonzero(pick(rec))) for rec in chunks)
+
+
+def hubble_sample_statistics(chunks, h0_assumed: float, *, min_cz: float = 3000.0, clip_sigma: float = 3.5,
+                             max_iter: int = 20, exclude_flags=None) -> dict:
+    """Zero point, implied H0 and scatter of one method against the Hubble flow, over
+    a sample of ``RECORD`` chunks (value dmu, error sqrt(sigma_mu^2 + sigma_mu_z^2)).
 
     Sample: finite dmu with a positive error, c z_cmb >= ``min_cz`` and none of
     ``exclude_flags`` set (default: every Method bit except OUTLIER, which is
     recomputed here). Clipped iteratively at ``clip_sigma`` (see ``_clip``).
-    ``dmu_err`` is the expected error of dmu, sqrt(sigma_mu^2 + sigma_mu_z^2).
+    Outliers: every candidate (finite dmu, c z_cmb >= min_cz, flagged or not)
+    whose |dmu - centre| exceeds clip_sigma x the final clipped scatter.
 
     Implied H0: mu_method ~ 5 log10(c z / H0_true) + 25 and mu_z the same with
     H0_assumed, so dmu = 5 log10(H0_assumed / H0_true) and
     H0_true = H0_assumed 10^(-0.2 <dmu>) (exact at all z when only H0 differs,
     since d_L scales as 1/H0).
-
-    Returns (stats dict, outlier mask). The mask marks every row with finite
-    dmu and c z_cmb >= min_cz (flagged or not) whose |dmu - centre| exceeds
-    clip_sigma x the final clipped scatter.
     """
-    dmu = np.asarray(dmu, dtype=float)
-    err = np.asarray(dmu_err, dtype=float)
-    fl = np.asarray(method_flags, dtype=_flags.FLAG_DTYPE)
-    cz = C_KMS * np.asarray(z_cmb, dtype=float)
+    clip_sigma = _clip_sigma(clip_sigma)
     exclude = ((ALL_METHOD_BITS & ~int(Method.OUTLIER)) if exclude_flags is None
                else _bits(exclude_flags, "crosscheck.exclude_flags"))
-    if not (np.isfinite(clip_sigma) and clip_sigma > 0):
-        raise ValueError(f"crosscheck.clip_sigma must be > 0, got {clip_sigma}")
-    candidate = np.isfinite(dmu) & (np.nan_to_num(cz, nan=-np.inf) >= float(min_cz))
-    usable = candidate & np.isfinite(err) & (err > 0) & ((fl & _flags.FLAG_DTYPE(exclude)) == 0)
-    sel, center, scale, iters = _clip(dmu, usable, float(clip_sigma), int(max_iter))
-    if np.isfinite(scale):
-        outlier = candidate & (np.abs(dmu - center) > clip_sigma * scale)
-    else:
-        outlier = np.zeros(dmu.shape, dtype=bool)
-    stats = _summary(dmu, np.where(usable, err, 1.0), sel)
-    stats = {"n_rows": int(dmu.size), "n_candidates": int(candidate.sum()),
-             "n_usable": int(usable.sum()), "n_clipped": int(usable.sum() - sel.sum()),
-             "n_outliers": int(outlier.sum()), "clip_sigma": float(clip_sigma),
-             "clip_iterations": int(iters), "min_cz": float(min_cz),
-             "clip_center": _f(center), "clip_scale": _f(scale)} | stats
+    rows = _Rows(exclude, min_cz)
+    window, n, center, scale, iters = _clip(chunks, rows, clip_sigma, int(max_iter))
+    n_usable = _count(chunks, rows.usable)
+    stats = {"n_rows": sum(len(rec) for rec in chunks), "n_candidates": _count(chunks, rows.candidate),
+             "n_usable": n_usable, "n_clipped": n_usable - n,
+             "n_outliers": _count(chunks, lambda rec: _outliers(rec["value"], rec["z"], {
+                 "clip_center": _f(center), "clip_scale": _f(scale)}, min_cz, clip_sigma)),
+             "clip_sigma": clip_sigma, "clip_iterations": int(iters), "min_cz": float(min_cz),
+             "clip_center": _f(center), "clip_scale": _f(scale)}
+    stats |= _summary(chunks, rows.picker(window), n, center, scale)
     wm, wm_err = stats["wmean"], stats["wmean_err"]
     h0 = float(h0_assumed)
     stats["h0_assumed"] = h0
@@ -268,38 +377,55 @@ def hubble_statistics(dmu, dmu_err, method_flags, z_cmb, h0_assumed: float, *,
         h = h0 * 10.0 ** (-0.2 * wm)
         stats["h0_implied"] = _f(h)
         stats["h0_implied_err"] = _f(h * 0.2 * LN10 * wm_err) if wm_err is not None else None
-    return stats, outlier
+    return stats
+
+
+def hubble_statistics(dmu, dmu_err, method_flags, z_cmb, h0_assumed: float, *,
+                      min_cz: float = 3000.0, clip_sigma: float = 3.5, max_iter: int = 20,
+                      exclude_flags=None):
+    """``hubble_sample_statistics`` of per-row arrays; returns (stats, outlier mask)."""
+    sample = [records(dmu, dmu_err, z_cmb, method_flags)]
+    stats = hubble_sample_statistics(sample, h0_assumed, min_cz=min_cz, clip_sigma=clip_sigma,
+                                     max_iter=max_iter, exclude_flags=exclude_flags)
+    return stats, _outliers(sample[0]["value"], sample[0]["z"], stats, min_cz, clip_sigma)
+
+
+def pair_sample_statistics(chunks, *, clip_sigma: float = 3.5, max_iter: int = 20,
+                           exclude_flags=None) -> dict:
+    """Offset mu_a - mu_b and its scatter over a sample of ``RECORD`` chunks (value
+    mu_a - mu_b, error sqrt(sigma_a^2 + sigma_b^2), flags of both OR-ed).
+
+    Rows need a finite value and error and none of ``exclude_flags`` in either method
+    (default: every Method bit except OUTLIER and LOCAL_FLOW — a Hubble outlier or a
+    nearby galaxy still has a valid distance to compare). Clipped like the Hubble
+    statistics.
+    """
+    clip_sigma = _clip_sigma(clip_sigma)
+    exclude = (ALL_METHOD_BITS & ~int(Method.OUTLIER | Method.LOCAL_FLOW)
+               if exclude_flags is None else _bits(exclude_flags, "crosscheck.pair_exclude_flags"))
+    rows = _Rows(exclude, None)
+    window, n, center, scale, iters = _clip(chunks, rows, clip_sigma, int(max_iter))
+    n_usable = _count(chunks, rows.usable)
+    return {"n_both": _count(chunks, rows.candidate), "n_usable": n_usable, "n_clipped": n_usable - n,
+            "clip_sigma": clip_sigma, "clip_iterations": int(iters)} | _summary(
+        chunks, rows.picker(window), n, center, scale)
+
+
+def _pair_records(mu_a, mu_a_err, flags_a, mu_b, mu_b_err, flags_b) -> np.ndarray:
+    a, b = np.asarray(mu_a, dtype=float), np.asarray(mu_b, dtype=float)
+    err = np.sqrt(np.asarray(mu_a_err, dtype=float) ** 2 + np.asarray(mu_b_err, dtype=float) ** 2)
+    fl = np.asarray(flags_a, dtype=_flags.FLAG_DTYPE) | np.asarray(flags_b, dtype=_flags.FLAG_DTYPE)
+    return records(a - b, err, np.nan, fl)
 
 
 def pair_statistics(mu_a, mu_a_err, flags_a, mu_b, mu_b_err, flags_b, *,
                     clip_sigma: float = 3.5, max_iter: int = 20, exclude_flags=None) -> dict:
-    """Offset mu_a - mu_b and its scatter over galaxies measured by both methods.
-
-    Rows need finite values and errors in both and none of ``exclude_flags`` in
-    either (default: every Method bit except OUTLIER and LOCAL_FLOW — a Hubble
-    outlier or a nearby galaxy still has a valid distance to compare). Clipped
-    like ``hubble_statistics``; expected error sqrt(sigma_a^2 + sigma_b^2).
-    """
-    a, b = np.asarray(mu_a, dtype=float), np.asarray(mu_b, dtype=float)
-    ea, eb = np.asarray(mu_a_err, dtype=float), np.asarray(mu_b_err, dtype=float)
-    exclude = (ALL_METHOD_BITS & ~int(Method.OUTLIER | Method.LOCAL_FLOW)
-               if exclude_flags is None else _bits(exclude_flags, "crosscheck.pair_exclude_flags"))
-    if not (np.isfinite(clip_sigma) and clip_sigma > 0):
-        raise ValueError(f"crosscheck.clip_sigma must be > 0, got {clip_sigma}")
-    mask = _flags.FLAG_DTYPE(exclude)
-    diff = a - b
-    err = np.sqrt(ea**2 + eb**2)
-    both = np.isfinite(a) & np.isfinite(b)
-    usable = (both & np.isfinite(err) & (err > 0)
-              & ((np.asarray(flags_a, dtype=_flags.FLAG_DTYPE) & mask) == 0)
-              & ((np.asarray(flags_b, dtype=_flags.FLAG_DTYPE) & mask) == 0))
-    sel, center, scale, iters = _clip(diff, usable, float(clip_sigma), int(max_iter))
-    return {"n_both": int(both.sum()), "n_usable": int(usable.sum()),
-            "n_clipped": int(usable.sum() - sel.sum()), "clip_sigma": float(clip_sigma),
-            "clip_iterations": int(iters)} | _summary(diff, np.where(usable, err, 1.0), sel)
+    """``pair_sample_statistics`` of per-row arrays of the two methods."""
+    return pair_sample_statistics([_pair_records(mu_a, mu_a_err, flags_a, mu_b, mu_b_err, flags_b)],
+                                  clip_sigma=clip_sigma, max_iter=max_iter, exclude_flags=exclude_flags)
 
 
-def best_distance(methods: Mapping[str, tuple], *, ignore_flags=("LOCAL_FLOW",)) -> dict[str, np.ndarray]:
+def best_distance(methods: Mapping[str, tuple], *, ignore_flags=("LOCAL_FLOW",)) -> dict:
     """Inverse-variance mean of the usable methods per galaxy.
 
     ``methods`` maps a prefix to (mu, mu_err, flags). A method is usable for a
@@ -307,31 +433,41 @@ def best_distance(methods: Mapping[str, tuple], *, ignore_flags=("LOCAL_FLOW",))
     ``ignore_flags`` is set (default ignores only LOCAL_FLOW, whose meaning is
     that the distance itself is fine). Returns mu_best, mu_best_err
     (1/sqrt(sum w)) and best_method: the usable prefixes joined by '+' in the
-    order given, '' when none.
+    order given, '' when none, as a pyarrow string array (built per row from a
+    dictionary of the 2^k subsets, which is what keeps it cheap at survey scale).
     """
     keep = _flags.FLAG_DTYPE(ALL_METHOD_BITS & ~_bits(ignore_flags, "crosscheck.best_ignore_flags"))
-    sw = swx = None
-    label = None
-    for name, (mu, err, fl) in methods.items():
+    names = list(methods)
+    if not names:
+        raise ValueError("crosscheck: no method columns to combine")
+    sw = swx = code = None
+    for bit, (mu, err, fl) in enumerate(methods.values()):
         mu = np.asarray(mu, dtype=float)
         err = np.asarray(err, dtype=float)
         use = (np.isfinite(mu) & np.isfinite(err) & (err > 0)
                & ((np.asarray(fl, dtype=_flags.FLAG_DTYPE) & keep) == 0))
         w = np.where(use, 1.0 / np.where(use, err, 1.0) ** 2, 0.0)
         if sw is None:
-            sw, swx = np.zeros(mu.shape), np.zeros(mu.shape)
-            label = np.full(mu.shape, "", dtype=f"<U{sum(len(m) + 1 for m in methods)}")
+            sw, swx, code = np.zeros(mu.shape), np.zeros(mu.shape), np.zeros(mu.shape, dtype=np.int32)
         sw += w
         swx += np.where(use, w * np.where(use, mu, 0.0), 0.0)
-        joined = np.char.add(np.char.add(label, "+"), name)
-        label = np.where(use, np.where(label == "", name, joined), label)
-    if sw is None:
-        raise ValueError("crosscheck: no method columns to combine")
+        code |= use.astype(np.int32) << bit
     has = sw > 0
     with np.errstate(divide="ignore", invalid="ignore"):
         mu_best = np.where(has, swx / np.where(has, sw, 1.0), np.nan)
         mu_best_err = np.where(has, 1.0 / np.sqrt(np.where(has, sw, 1.0)), np.nan)
+    # the label of each subset of methods, indexed by its bit mask: built once, then
+    # looked up per row as a dictionary (a per-row Python string would cost ~2 us/row)
+    labels = pa.array(["+".join(n for i, n in enumerate(names) if c >> i & 1)
+                       for c in range(1 << len(names))], type=pa.string())
+    label = pa.DictionaryArray.from_arrays(pa.array(code.ravel()), labels).cast(pa.string())
     return {"mu_best": mu_best, "mu_best_err": mu_best_err, "best_method": label}
+
+
+def count_labels(labels: pa.Array) -> dict[str, int]:
+    """Counts of each ``best_method`` label ("none" for the empty one)."""
+    return {(str(v) or "none"): int(c) for v, c in
+            ((item["values"].as_py(), item["counts"].as_py()) for item in labels.value_counts())}
 
 
 # --------------------------------------------------------------------------- driver
@@ -342,10 +478,6 @@ def best_distance(methods: Mapping[str, tuple], *, ignore_flags=("LOCAL_FLOW",))
 # ``galaxy_columns`` then derives every per-galaxy column of a shard, outlier bits
 # included, from those statistics. ``crosscheck`` chains the three on one table.
 
-SAMPLE_KEYS = ("dmu", "dmu_err", "flags", "z_cmb")
-PAIR_KEYS = ("mu_a", "mu_a_err", "flags_a", "mu_b", "mu_b_err", "flags_b")
-
-
 def _method_flags(columns, m, z_flags) -> np.ndarray:
     """M_flags with LOCAL_FLOW inherited and any stale OUTLIER bit cleared."""
     fl = inherit_local_flow(columns[f"{m}_flags"], z_flags)
@@ -353,11 +485,10 @@ def _method_flags(columns, m, z_flags) -> np.ndarray:
 
 
 def method_sample(columns: Mapping[str, Sequence], methods: Sequence[str] = DEFAULT_METHODS) -> dict:
-    """What the sample statistics need from one shard, compactly (float32, measured rows only).
+    """What the sample statistics need from one shard: ``RECORD`` arrays of the measured rows.
 
-    Returns {"methods": {M: {dmu, dmu_err, flags, z_cmb}}, "pairs": {"A-B": {mu_a, mu_a_err,
-    flags_a, mu_b, mu_b_err, flags_b}}}; 16 bytes per measured row and method, so the
-    statistics of a 10^7-row catalog fit in a few hundred MB.
+    Returns {"methods": {M: records of dmu}, "pairs": {"A-B": records of mu_A - mu_B}},
+    16 bytes per measured row, for one method or for galaxies measured by both.
     """
     def col(name):
         return np.asarray(columns[name], dtype=float)
@@ -366,55 +497,47 @@ def method_sample(columns: Mapping[str, Sequence], methods: Sequence[str] = DEFA
     present = [m for m in methods if f"{m}_mu" in columns]
     out: dict = {"methods": {}, "pairs": {}}
     for m in present:
-        mu = col(f"{m}_mu")
-        keep = np.isfinite(mu)
+        keep = np.isfinite(col(f"{m}_mu"))
         dmu_err = np.sqrt(col(f"{m}_mu_err")[keep] ** 2 + col("mu_z_err")[keep] ** 2)
-        out["methods"][m] = {"dmu": delta_mu(mu[keep], col("mu_z")[keep]).astype(np.float32),
-                             "dmu_err": dmu_err.astype(np.float32),
-                             "flags": _method_flags(columns, m, z_flags)[keep],
-                             "z_cmb": col("z_cmb")[keep].astype(np.float32)}
+        out["methods"][m] = records(delta_mu(col(f"{m}_mu")[keep], col("mu_z")[keep]), dmu_err,
+                                    col("z_cmb")[keep], _method_flags(columns, m, z_flags)[keep])
     for a, b in itertools.combinations(present, 2):
         both = np.isfinite(col(f"{a}_mu")) & np.isfinite(col(f"{b}_mu"))
-        out["pairs"][f"{a}-{b}"] = {
-            "mu_a": col(f"{a}_mu")[both], "mu_a_err": col(f"{a}_mu_err")[both],
-            "flags_a": _method_flags(columns, a, z_flags)[both],
-            "mu_b": col(f"{b}_mu")[both], "mu_b_err": col(f"{b}_mu_err")[both],
-            "flags_b": _method_flags(columns, b, z_flags)[both]}
+        out["pairs"][f"{a}-{b}"] = _pair_records(
+            col(f"{a}_mu")[both], col(f"{a}_mu_err")[both], _method_flags(columns, a, z_flags)[both],
+            col(f"{b}_mu")[both], col(f"{b}_mu_err")[both], _method_flags(columns, b, z_flags)[both])
     return out
 
 
-def concat_samples(samples: Sequence[dict]) -> dict:
-    """Join the ``method_sample`` results of all shards."""
+def collect_samples(samples: Sequence[dict]) -> dict:
+    """The ``method_sample`` results of all shards, as one sample: per method and pair,
+    the list of its per-shard record arrays (the chunks the statistics pass over)."""
     out: dict = {"methods": {}, "pairs": {}}
     for part in samples:
-        for group, keys in (("methods", SAMPLE_KEYS), ("pairs", PAIR_KEYS)):
-            for name, arrays in part[group].items():
-                dest = out[group].setdefault(name, {k: [] for k in keys})
-                for k in keys:
-                    dest[k].append(arrays[k])
-    return {group: {name: {k: np.concatenate(v) for k, v in arrays.items()} for name, arrays in items.items()}
-            for group, items in out.items()}
+        for group, items in part.items():
+            for name, recs in items.items():
+                out[group].setdefault(name, []).append(recs)
+    return out
 
 
 def sample_statistics(sample: dict, n_rows: int, h0_assumed: float, *, min_cz: float = 3000.0,
                       clip_sigma: float = 3.5, max_iter: int = 20) -> dict:
-    """Per-method Hubble statistics and per-pair offsets from a (concatenated) sample.
+    """Per-method Hubble statistics and per-pair offsets of a sample.
 
-    The pair statistics ignore OUTLIER and LOCAL_FLOW (``pair_statistics``'s default):
-    a Hubble outlier or a nearby galaxy still has a valid distance to compare.
+    ``sample`` is shaped like ``collect_samples``'s result; each method or pair
+    maps to any re-iterable of ``RECORD`` arrays (a list, or chunks read from disk).
+    The pair statistics ignore OUTLIER and LOCAL_FLOW (``pair_sample_statistics``'s
+    default): a Hubble outlier or a nearby galaxy still has a valid distance to compare.
     """
     summary: dict = {"methods": {}, "pairs": {}}
-    for m, s in sample["methods"].items():
-        stats, _ = hubble_statistics(s["dmu"].astype(float), s["dmu_err"].astype(float), s["flags"],
-                                     s["z_cmb"].astype(float), h0_assumed,
-                                     min_cz=min_cz, clip_sigma=clip_sigma, max_iter=max_iter)
+    for m, chunks in sample["methods"].items():
+        stats = hubble_sample_statistics(chunks, h0_assumed, min_cz=min_cz, clip_sigma=clip_sigma,
+                                         max_iter=max_iter)
+        stats["n_measured"] = stats["n_rows"]
         stats["n_rows"] = int(n_rows)
-        stats["n_measured"] = int(s["dmu"].size)
         summary["methods"][m] = stats
-    for name, p in sample["pairs"].items():
-        summary["pairs"][name] = pair_statistics(p["mu_a"], p["mu_a_err"], p["flags_a"],
-                                                 p["mu_b"], p["mu_b_err"], p["flags_b"],
-                                                 clip_sigma=clip_sigma, max_iter=max_iter)
+    for name, chunks in sample["pairs"].items():
+        summary["pairs"][name] = pair_sample_statistics(chunks, clip_sigma=clip_sigma, max_iter=max_iter)
     return summary
 
 
@@ -462,7 +585,7 @@ def galaxy_columns(columns: Mapping[str, Sequence], grid: MuGrid, statistics: di
     else:
         n = z.shape[0]
         out |= {"mu_best": np.full(n, np.nan), "mu_best_err": np.full(n, np.nan),
-                "best_method": np.full(n, "", dtype="<U1")}
+                "best_method": pa.array([""] * n, type=pa.string())}
     return out
 
 
@@ -477,10 +600,9 @@ def crosscheck(columns: Mapping[str, Sequence], grid: MuGrid, *,
     counts of best_method. H0, q0, j0 are the grid's.
     """
     n = len(np.asarray(columns["z_cmb"]))
-    sample = concat_samples([method_sample(columns, methods)])
+    sample = collect_samples([method_sample(columns, methods)])
     summary = sample_statistics(sample, n, grid.h0, min_cz=min_cz, clip_sigma=clip_sigma, max_iter=max_iter)
     out = galaxy_columns(columns, grid, summary, methods=methods, min_cz=min_cz, clip_sigma=clip_sigma,
                          best_ignore_flags=best_ignore_flags)
-    labels, counts = np.unique(out["best_method"], return_counts=True)
-    summary["best"] = {(str(k) or "none"): int(c) for k, c in zip(labels, counts)}
+    summary["best"] = dict(sorted(count_labels(out["best_method"]).items()))
     return out, summary

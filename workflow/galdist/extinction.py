@@ -55,7 +55,6 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import astropy.units as u
-import dust_extinction.parameter_averages as _pa
 import numpy as np
 import yaml
 
@@ -66,8 +65,8 @@ __all__ = ["LAWS", "NORMALISATIONS", "ExtinctionCoefficients", "extinction_law",
            "blackbody_flambda", "relative_band_extinction", "law_coefficients",
            "table_coefficients", "apply_extinction", "colour_excess"]
 
-#: Law names accepted in configuration -> dust_extinction.parameter_averages classes.
-LAWS = {"F99": _pa.F99, "CCM89": _pa.CCM89, "O94": _pa.O94, "F04": _pa.F04, "G23": _pa.G23}
+#: Law names accepted in configuration: class names in dust_extinction.parameter_averages.
+LAWS = ("F99", "CCM89", "O94", "F04", "G23")
 NORMALISATIONS = ("bandpass", "law")
 
 #: hc/k in Angstrom Kelvin (CODATA 2018 exact constants).
@@ -132,9 +131,13 @@ class ExtinctionCoefficients(Mapping):
 
 def extinction_law(law: str = "F99", r_v: float = 3.1):
     """A dust_extinction model for ``law`` (one of LAWS) at ``r_v``, range-checked."""
-    cls = LAWS.get(str(law).upper())
-    if cls is None:
+    # imported here: dust_extinction (with scipy) takes ~0.7 s to import, and only the
+    # job that computes the band coefficients needs it, not the per-shard jobs
+    import dust_extinction.parameter_averages as laws
+
+    if str(law).upper() not in LAWS:
         raise ValueError(f"extinction.law: '{law}' is not allowed; use one of {', '.join(LAWS)}")
+    cls = getattr(laws, str(law).upper())
     lo, hi = cls.Rv_range
     if not (_is_number(r_v) and lo <= r_v <= hi):
         raise ValueError(f"extinction.r_v: {law} is defined for R_V in [{lo}, {hi}], got {r_v!r}")

@@ -11,10 +11,12 @@ from __future__ import annotations
 
 import re
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
-import speclite.filters as sf
-from astropy.table import Table
+
+if TYPE_CHECKING:
+    import speclite.filters as sf
 
 WAVE_COLUMNS = ("wavelength", "wave", "lambda", "wavelength_angstrom")
 THROUGHPUT_COLUMNS = ("throughput", "response", "transmission", "trans")
@@ -35,6 +37,11 @@ def _pick(names, wanted, what, path):
 
 def load_filter(spec: str, base_dir: str | Path | None = None) -> sf.FilterResponse:
     """A speclite ``FilterResponse`` from a speclite name or a local file path."""
+    # imported here: only the once-per-configuration jobs load filter curves, and
+    # speclite with astropy.table would add ~0.5 s to every per-shard job
+    import speclite.filters as sf
+    from astropy.table import Table
+
     path = Path(spec)
     if base_dir is not None and not path.is_absolute():
         path = Path(base_dir) / path

@@ -38,7 +38,6 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
-from astropy.table import Table
 
 from . import flags as fl
 from .io import atomic_path
@@ -101,6 +100,8 @@ def load_templates(path: str | Path | None = None) -> Templates:
     path = Path(path) if path is not None else DEFAULT_TEMPLATE_FILE
     if not path.exists():
         raise ValueError(f"kcorrect.templates: file {path} does not exist")
+    from astropy.table import Table  # here: only the grid-building job reads templates
+
     try:
         table = Table.read(path, format="ascii.csv" if path.suffix == ".csv" else None)
     except Exception as exc:

@@ -7,18 +7,7 @@ import logging
 import sys
 import time
 
-
-def _structural_errors() -> tuple[type, ...]:
-    from .calibration import CalibrationError
-    from .catalog import CatalogError
-    from .config import ConfigError
-    from .ingest import IngestError
-    from .io import CorruptFileError, StaleInputError
-
-    return (CalibrationError, CatalogError, ConfigError, IngestError, CorruptFileError, StaleInputError)
-
-
-STRUCTURAL = _structural_errors()
+from .errors import STRUCTURAL
 
 
 @contextlib.contextmanager

@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import json
+import logging
 import subprocess
 from collections import Counter
 from importlib import metadata as _metadata
@@ -24,6 +25,8 @@ import pyarrow as pa
 from . import crosscheck
 from . import flags as F
 from .io import AtomicParquetWriter, iter_shard, table_from_columns, write_parquet
+
+log = logging.getLogger(__name__)
 
 METHOD_PREFIX = {"tully_fisher": "tf", "sbf": "sbf"}
 FLAG_COLUMNS = ("quality_flags", "ext_flags", "kcorr_flags", "z_flags", "tf_flags", "sbf_flags")
@@ -140,10 +143,11 @@ def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, 
                     if c in cols:
                         for m in F.ALL[c]:
                             flag_counts[c][m.name] += int(F.has(cols[c], m).sum())
-                best.update(Counter(str(b) or "none" for b in cols["best_method"]))
+                best.update(crosscheck.count_labels(cols["best_method"]))
                 pick = rng.uniform(size=table.num_rows) < keep_fraction
                 samples.append(table.select([n for n in PLOT_COLUMNS if n in names]).filter(pa.array(pick)))
                 rows += table.num_rows
+                log.info("shard %d/%d: %d of %d rows written", index + 1, len(shards), rows, total_rows)
     except BaseException:
         if writer is not None:
             writer.__exit__(RuntimeError, None, None)

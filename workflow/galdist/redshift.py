@@ -24,7 +24,6 @@ from pathlib import Path
 import numpy as np
 from astropy import constants as _const
 from astropy import units as _u
-from astropy.cosmology import FlatLambdaCDM, realizations
 
 from . import flags as _flags
 from .ebv_maps import galactic_coordinates
@@ -52,6 +51,10 @@ def make_cosmology(name: str | None = None, H0: float = DEFAULT_H0, Om0: float =
     Raises ValueError naming the config key (redshift.cosmology.name / .H0 / .Om0)
     and what is allowed.
     """
+    # imported here: astropy.cosmology takes ~1 s to import, and only the job that
+    # builds the mu(z) grid needs it
+    from astropy.cosmology import FlatLambdaCDM, realizations
+
     allowed = tuple(realizations.available)
     if name is not None:
         if name not in allowed:
