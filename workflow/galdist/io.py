@@ -333,7 +333,8 @@ class RecordSpill:
     writes records to a file per key in a temporary directory beside ``near``; a
     ``reader`` yields them again in chunks of ``chunk_rows`` as often as it is
     iterated (plain reads: the page cache holds the data, not the process). The
-    directory is removed when the spill is closed::
+    directory, ``.<name of near>.spill``, is removed when the spill is closed, and a
+    left-over one (from a killed job) when the next spill for ``near`` opens::
 
         with RecordSpill(output_path) as spill:
             for part in parts:
@@ -344,7 +345,9 @@ class RecordSpill:
     def __init__(self, near: str | Path, chunk_rows: int = 1 << 20):
         near = Path(near)
         near.parent.mkdir(parents=True, exist_ok=True)
-        self._dir = Path(tempfile.mkdtemp(prefix=f".{near.name}.spill.", dir=near.parent))
+        self._dir = near.parent / f".{near.name}.spill"
+        shutil.rmtree(self._dir, ignore_errors=True)
+        self._dir.mkdir()
         self.chunk_rows = int(chunk_rows)
         self._files: dict[str, tuple[Path, np.dtype]] = {}
 
