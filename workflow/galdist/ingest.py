@@ -25,7 +25,8 @@ from .catalog import CatalogError, describe, detect_format, iter_batches
 from .columns import Column, OPTIONAL, all_columns, required_columns
 from .errors import IngestError
 from .io import field as arrow_field
-from .io import INTERMEDIATE_COMPRESSION, AtomicParquetWriter, Fingerprint, RecordSpill, sha256_of, write_json
+from .io import (INTERMEDIATE_COMPRESSION, AtomicParquetWriter, Fingerprint, RecordSpill, is_arrow_text,
+                 sha256_of, write_json)
 
 log = logging.getLogger(__name__)
 C_KMS = 299792.458
@@ -146,7 +147,7 @@ def _unit_factor(col: Column, unit: str) -> tuple[float, bool]:
 def _to_float(values, name: str, first_row: int) -> np.ndarray:
     """Numeric column as float64; text that is not a number is a structural error."""
     if isinstance(values, (pa.Array, pa.ChunkedArray)):
-        if pa.types.is_string(values.type) or pa.types.is_large_string(values.type):
+        if is_arrow_text(values.type):
             values = np.asarray(values.to_pylist(), dtype=object)
         else:
             return np.array(pc.cast(values, pa.float64()).to_numpy(zero_copy_only=False), dtype=float)
@@ -168,7 +169,7 @@ def _to_float(values, name: str, first_row: int) -> np.ndarray:
 def _to_text(values) -> np.ndarray:
     """Text column as an object array of stripped str (None where missing)."""
     if isinstance(values, (pa.Array, pa.ChunkedArray)):
-        if not (pa.types.is_string(values.type) or pa.types.is_large_string(values.type)):
+        if not is_arrow_text(values.type):
             values = pc.cast(values, pa.string())
         return pc.utf8_trim_whitespace(values).to_numpy(zero_copy_only=False).astype(object)
     s = pd.Series(np.asarray(values, dtype=object))

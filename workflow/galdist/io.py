@@ -29,6 +29,11 @@ PRODUCT_COMPRESSION = "zstd"  # smaller final product, still fast to read
 ROW_GROUP_ROWS = 256 * 1024  # ~2 MB per float column: large enough to compress well, small to stream
 
 
+def is_arrow_text(dtype: pa.DataType) -> bool:
+    """Arrow string or large string."""
+    return pa.types.is_string(dtype) or pa.types.is_large_string(dtype)
+
+
 def dictionary_columns(schema: pa.Schema) -> list[str]:
     """Columns worth Parquet dictionary encoding: text and the integer flag columns.
 
@@ -36,8 +41,8 @@ def dictionary_columns(schema: pa.Schema) -> list[str]:
     thrown away: on a 10^6-row, 83-column product, dictionary encoding on every column
     took 6.0 s and 431 MB, on these only 2.7 s and 369 MB (zstd, this machine).
     """
-    return [f.name for f in schema if pa.types.is_string(f.type) or pa.types.is_large_string(f.type)
-            or pa.types.is_dictionary(f.type) or (pa.types.is_integer(f.type) and f.name.endswith("flags"))]
+    return [f.name for f in schema if is_arrow_text(f.type) or pa.types.is_dictionary(f.type)
+            or (pa.types.is_integer(f.type) and f.name.endswith("flags"))]
 
 
 def _umask() -> int:
@@ -231,7 +236,7 @@ def read_columns(path: str | Path, columns: list[str] | None = None) -> dict:
     out = {}
     for name in table.column_names:
         col = table.column(name)
-        if pa.types.is_string(col.type) or pa.types.is_large_string(col.type):
+        if is_arrow_text(col.type):
             out[name] = np.asarray(col.to_pylist(), dtype=object)
         else:
             out[name] = col.to_numpy()
@@ -318,12 +323,9 @@ def iter_shard(shard_path: str | Path, stages: dict[str, str | Path], rows: int 
         for table in parts:
             for name in table.column_names:
                 col = table.column(name)
-                cols[name] = col.chunk(0) if _is_text(col.type) else col.to_numpy()
+                cols[name] = col.chunk(0) if is_arrow_text(col.type) else col.to_numpy()
         yield cols, units
 
-
-def _is_text(dtype: pa.DataType) -> bool:
-    return pa.types.is_string(dtype) or pa.types.is_large_string(dtype)
 
 
 class RecordSpill:
