@@ -16,8 +16,9 @@ For each catalog size N (default 1e5, 1e6, 1e7) this script
    deleting ``results/bench_<N>``, and times the wall clock;
 3. measures the I/O floor in this process: a bare ``pyarrow.parquet.read_table``
    of the catalog plus a write with the product's settings (zstd, 256 Ki-row
-   groups, dictionaries on text and flag columns only, fsync) of a table with the product's row count and column count (and string/number
-   column kinds), filled with the columns just read;
+   groups, dictionaries on text and flag columns only, fsync) of a table with the
+   product's row count, column count and string/number column kinds, filled with
+   the columns just read;
 4. parses every Snakemake ``benchmark:`` TSV under ``results/bench_<N>/benchmarks``:
    per rule, jobs, summed and largest seconds, rows/s = N / summed seconds, and
    the largest max_rss (MB).

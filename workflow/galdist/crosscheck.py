@@ -361,12 +361,11 @@ def hubble_sample_statistics(chunks, h0_assumed: float, *, min_cz: float = 3000.
     rows = _Rows(exclude, min_cz)
     window, n, center, scale, iters = _clip(chunks, rows, clip_sigma, int(max_iter))
     n_usable = _count(chunks, rows.usable)
+    clip = {"clip_center": _f(center), "clip_scale": _f(scale)}
     stats = {"n_rows": sum(len(rec) for rec in chunks), "n_candidates": _count(chunks, rows.candidate),
              "n_usable": n_usable, "n_clipped": n_usable - n,
-             "n_outliers": _count(chunks, lambda rec: _outliers(rec["value"], rec["z"], {
-                 "clip_center": _f(center), "clip_scale": _f(scale)}, min_cz, clip_sigma)),
-             "clip_sigma": clip_sigma, "clip_iterations": int(iters), "min_cz": float(min_cz),
-             "clip_center": _f(center), "clip_scale": _f(scale)}
+             "n_outliers": _count(chunks, lambda rec: _outliers(rec["value"], rec["z"], clip, min_cz, clip_sigma)),
+             "clip_sigma": clip_sigma, "clip_iterations": int(iters), "min_cz": float(min_cz)} | clip
     stats |= _summary(chunks, rows.picker(window), n, center, scale)
     wm, wm_err = stats["wmean"], stats["wmean_err"]
     h0 = float(h0_assumed)
