@@ -4,8 +4,9 @@ from snakemake.utils import min_version
 
 min_version("9.0")
 
-
-configfile: "config/config.yaml"
+# No `configfile:` directive: common.smk lays the user's config (--configfile, --config)
+# over config/config.yaml itself, so that a user's `bands` replaces the default bands
+# instead of being merged into them, and so it is found from any working directory.
 
 
 include: "workflow/rules/common.smk"

@@ -87,7 +87,7 @@ PER_SHARD_RULES = ("extinction", "kcorrect", "redshift", "tully_fisher", "sbf")
 PROFILE_RULES_DEFAULT = (*PER_SHARD_RULES, "crosscheck_statistics", "assemble", "ingest")
 # After a swap of the Tully-Fisher calibration only these rules may run (the target).
 SWAP_ALLOWED = {"tully_fisher", "crosscheck_statistics", "assemble", "plots", "all"}
-SWAP_CALIBRATION = "{calibration: config/calibrations/tf_ks_masters_2008.yaml, band: Ks}"
+SWAP_CALIBRATION = "{calibration: tf_ks_masters_2008, band: Ks}"
 
 TARGETS = {
     "marginal_factor": 4.0,  # (wall(N2) - wall(N1)) <= 4 (floor(N2) - floor(N1))
@@ -273,7 +273,7 @@ def noop_run(catalog: Path, run: str, shard_rows: int, cores: int, log_path: Pat
 
 
 CODE_GLOBS = ("Snakefile", "workflow/rules/*.smk", "workflow/galdist/*.py", "scripts/rules/*.py",
-              "config/*.yaml", "config/calibrations/*.yaml", "workflow/schemas/*.yaml")
+              "config/*.yaml", "workflow/galdist/data/calibrations/*.yaml", "workflow/schemas/*.yaml")
 
 
 def code_fingerprint() -> str:

@@ -39,7 +39,7 @@ def small_catalog(n: int = 40, seed: int = 1) -> dict:
 
 def copy_workflow(dest: Path) -> Path:
     """A copy of the workflow (code and config, no results) to run in isolation."""
-    for name in ("Snakefile", "workflow", "scripts", "config"):
+    for name in ("Snakefile", "workflow", "scripts", "config", "profiles"):
         src = REPO / name
         if src.is_dir():
             shutil.copytree(src, dest / name, ignore=shutil.ignore_patterns("__pycache__"))

@@ -322,7 +322,7 @@ def test_yaml_tags_are_refused_by_config_and_calibration_loaders(tmp_path):
     conf.write_text(f"run: x\nshard_rows: {PYTHON_TAG.format(marker=marker)}\n")
     with pytest.raises(gconfig.ConfigError, match="evil.yaml is not valid YAML"):
         gconfig.load(conf)
-    cal_text = (REPO / "config" / "calibrations" / "tf_i_tully_courtois_2012.yaml").read_text()
+    cal_text = (REPO / "workflow" / "galdist" / "data" / "calibrations" / "tf_i_tully_courtois_2012.yaml").read_text()
     cal = tmp_path / "evil_cal.yaml"
     cal.write_text(cal_text.replace("scatter: 0.41", f"scatter: {PYTHON_TAG.format(marker=marker)}"))
     assert cal.read_text() != cal_text
@@ -347,7 +347,7 @@ def test_paths_from_config_are_never_executed(workflow_copy, override):
 
 def test_calibration_paths_resolve_against_the_working_directory(tmp_path, monkeypatch):
     """README: paths are relative to the directory snakemake runs in (never searched, never run)."""
-    src = REPO / "config" / "calibrations" / "sbf_tonry1997_cousins_i.yaml"
+    src = REPO / "workflow" / "galdist" / "data" / "calibrations" / "sbf_tonry1997_cousins_i.yaml"
     (tmp_path / "cals").mkdir()
     (tmp_path / "cals" / "mine.yaml").write_text(src.read_text())
     monkeypatch.chdir(tmp_path)

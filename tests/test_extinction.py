@@ -16,7 +16,7 @@ from galdist.extinction import (LAWS, ExtinctionCoefficients, apply_extinction,
                                 law_coefficients, table_coefficients)
 from galdist.filters import load_filter
 
-TABLE = Path(__file__).resolve().parents[1] / "config" / "extinction" / "sf11_table6.yaml"
+TABLE = Path(__file__).resolve().parents[1] / "workflow" / "galdist" / "data" / "extinction" / "sf11_table6.yaml"
 
 # Schlafly & Finkbeiner 2011, ApJ 737, 103, Table 6, R_V = 3.1: A_X / E(B-V)_SFD
 # (secondary copy). They already include the 0.86 recalibration of the 1998 map.

@@ -540,7 +540,7 @@ def test_config_file_that_is_not_utf8_or_not_a_mapping(tmp_path):
 
 # --- calibration fuzzing ------------------------------------------------------------------
 
-CAL_DIR = REPO / "config" / "calibrations"
+CAL_DIR = REPO / "workflow" / "galdist" / "data" / "calibrations"
 CAL_FILES = sorted(CAL_DIR.glob("*.yaml"))
 CAL_SCHEMA = yaml.safe_load(gcal.SCHEMA_PATH.read_text())
 NUMBER_KEYS = ["pivot", "scatter", "zero_point_error", "magnitude_pivot"]
@@ -684,8 +684,8 @@ def _structural_catalog(kind: str, directory: Path) -> tuple[str, list[str]]:
         (directory / "cat.fits").write_bytes(data[:4000])
         return "cat.fits", ["catalog cat.fits"]
     if kind == "nan_in_calibration":
-        text = (REPO / "config" / "calibrations" / "tf_i_tully_courtois_2012.yaml").read_text()
-        (directory / "config" / "calibrations" / "tf_i_tully_courtois_2012.yaml").write_text(
+        text = (REPO / "workflow" / "galdist" / "data" / "calibrations" / "tf_i_tully_courtois_2012.yaml").read_text()
+        (directory / "workflow" / "galdist" / "data" / "calibrations" / "tf_i_tully_courtois_2012.yaml").write_text(
             text.replace("scatter: 0.41", "scatter: .nan"))
         pq.write_table(pa.table(cols), directory / "cat.parquet")
         return "cat.parquet", ["tf_i_tully_courtois_2012.yaml", "'scatter'"]

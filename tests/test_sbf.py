@@ -20,7 +20,7 @@ from galdist.sbf import (
     sbf_distance, system_offset,
 )
 
-CAL_DIR = Path(__file__).resolve().parent.parent / "config" / "calibrations"
+CAL_DIR = Path(__file__).resolve().parent.parent / "workflow" / "galdist" / "data" / "calibrations"
 TONRY = CAL_DIR / "sbf_tonry1997_cousins_i.yaml"
 BLAKESLEE = CAL_DIR / "sbf_blakeslee2009_acs_z850.yaml"
 JENSEN = CAL_DIR / "sbf_jensen2015_wfc3_f110w.yaml"

@@ -2,7 +2,7 @@
 
 A real SLURM cluster (Debian's munge, slurmctld and slurmd; tests/slurm/cluster.py) is
 started for this module, the demo survey runs through it with the cluster profile
-(workflow/profiles/slurm) and several jobs at once, and its products must equal those
+(profiles/slurm) and several jobs at once, and its products must equal those
 of a local run of the same configuration in another copy of the workflow. The jobs
 must really have gone through SLURM: the controller saw every one of them, ran some
 side by side, and gave them the resources the profile asks for.
@@ -37,7 +37,7 @@ pytestmark = [pytest.mark.slurm, pytest.mark.slow]
 
 # 600 invented galaxies in shards of 300: two shards, so per-shard jobs run side by side.
 DEMO = ("--config", "demo={n_galaxies: 600}", "shard_rows=300")
-PROFILE = "workflow/profiles/slurm"  # relative to a copy of the workflow (conftest.copy_workflow)
+PROFILE = "profiles/slurm"  # relative to a copy of the workflow (conftest.copy_workflow)
 SLURM_TIMEOUT_S = 360  # the plugin can hang when it loses track of jobs: never wait forever
 # Fields that differ between two runs by nature (wall-clock time, checkout state).
 TIMES: dict[str, float] = {}

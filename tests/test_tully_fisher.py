@@ -21,7 +21,7 @@ from galdist.tully_fisher import (OUTPUT_COLUMNS, TFSettings, convert_system, de
                                   resolution_correction, tully_fisher_distance,
                                   turbulence_correction)
 
-CAL_DIR = Path(__file__).resolve().parent.parent / "config" / "calibrations"
+CAL_DIR = Path(__file__).resolve().parent.parent / "workflow" / "galdist" / "data" / "calibrations"
 
 
 @pytest.fixture(scope="module")

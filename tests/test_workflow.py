@@ -93,10 +93,10 @@ def _jobs(dry_run_output: str) -> dict:
 
 
 @pytest.mark.parametrize("method,override,expected", [
-    ("tully_fisher", "tully_fisher={calibration: config/calibrations/tf_ks_masters_2008.yaml, band: Ks}",
+    ("tully_fisher", "tully_fisher={calibration: tf_ks_masters_2008, band: Ks}",
      {"tully_fisher": 3}),
     ("tully_fisher", "tully_fisher={min_inclination_deg: 50}", {"tully_fisher": 3}),
-    ("sbf", "sbf={calibration: config/calibrations/sbf_tonry1997_cousins_i.yaml, mc_draws: 20}", {"sbf": 3}),
+    ("sbf", "sbf={calibration: sbf_tonry1997_cousins_i, mc_draws: 20}", {"sbf": 3}),
 ])
 def test_calibration_change_reruns_only_that_method(demo_run, method, override, expected):
     result = run_snakemake(demo_run, *DEMO, override, "-n")
@@ -107,7 +107,7 @@ def test_calibration_change_reruns_only_that_method(demo_run, method, override, 
 
 
 def test_other_calibration_writes_beside_not_over(demo_run):
-    override = "tully_fisher={calibration: config/calibrations/tf_ks_masters_2008.yaml, band: Ks}"
+    override = "tully_fisher={calibration: tf_ks_masters_2008, band: Ks}"
     result = run_snakemake(demo_run, *DEMO, override, "-n")
     assert "shards/tully_fisher/tf_ks_masters_2008/part-00000.parquet" in result.stdout + result.stderr
 

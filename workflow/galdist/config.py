@@ -12,10 +12,29 @@ from pathlib import Path
 import jsonschema
 import yaml
 
+from . import shipped
 from .errors import ConfigError
 
 SCHEMA_DIR = Path(__file__).resolve().parent.parent / "schemas"
 CONFIG_SCHEMA = SCHEMA_DIR / "config.schema.yaml"
+#: The workflow's default configuration (the demo run); a user's config is laid over it.
+DEFAULT_CONFIG = shipped.WORKFLOW_ROOT / "config" / "config.yaml"
+#: Keys whose value in a user's config replaces the default whole instead of being
+#: merged into it: a catalog with only g and i must not inherit the default V, I, Ks.
+REPLACED_KEYS = ("bands", "columns", "units", "catalog", "extinction.table_keys")
+
+
+def layered(user: dict, defaults: dict, _prefix: str = "") -> dict:
+    """``user`` laid over ``defaults``: sections merge key by key, except
+    ``REPLACED_KEYS`` and non-mapping values, which the user's value replaces."""
+    out = copy.deepcopy(defaults)
+    for key, value in user.items():
+        dotted = f"{_prefix}{key}"
+        if isinstance(value, dict) and isinstance(out.get(key), dict) and dotted not in REPLACED_KEYS:
+            out[key] = layered(value, out[key], f"{dotted}.")
+        else:
+            out[key] = copy.deepcopy(value)
+    return out
 
 
 def _with_defaults(validator_class):
@@ -183,6 +202,11 @@ def extra_required_columns(config: dict) -> list[str]:
     return extra
 
 
+def extinction_table_file(config: dict) -> Path:
+    """The coefficient table: a shipped one by bare name, else the user's path."""
+    return shipped.find("extinction", config["extinction"]["table"])
+
+
 def extinction_map_files(config: dict) -> list[str]:
     ext = config["extinction"]
     return {"catalog": [], "healpix": [ext["map_file"]],
@@ -216,8 +240,11 @@ def check_stages(config: dict) -> dict:
             problems.append(f"config key 'extinction': map file not found: {f} (galdist never downloads maps; "
                             "see the README on pointing at your own map)")
     if ext["coefficients"] == "table":
-        if not Path(ext["table"]).exists():
-            problems.append(f"config key 'extinction.table': file not found: {ext['table']}")
+        try:
+            if not extinction_table_file(config).is_file():
+                problems.append(f"config key 'extinction.table': file not found: {ext['table']}")
+        except FileNotFoundError as exc:
+            problems.append(f"config key 'extinction.table': {exc}")
         missing = sorted(bands - set(ext["table_keys"]))
         if missing:
             problems.append(f"config key 'extinction.table_keys': give the table key of band(s) "
@@ -232,9 +259,14 @@ def check_stages(config: dict) -> dict:
     expected = {"tully_fisher": "tully_fisher", "sbf": "sbf"}
     for method in config["methods"]:
         section = config[method]
-        path = section["calibration"]
-        if not Path(path).exists():
-            problems.append(f"config key '{method}.calibration': file not found: {path}")
+        try:
+            path = shipped.find("calibrations", section["calibration"])
+        except FileNotFoundError as exc:
+            problems.append(f"config key '{method}.calibration': {exc}")
+            continue
+        if not path.is_file():
+            problems.append(f"config key '{method}.calibration': file not found: {path} (a path is relative "
+                            "to the directory galdist runs in; a bare name is a shipped calibration)")
             continue
         cal = load_calibration(path)
         if cal.method != expected[method]:

@@ -15,6 +15,9 @@ from galdist.calibration import CalibrationError
 DEMO_CATALOG = "results/demo-input/corvid_reach_survey.parquet"
 
 try:
+    _user = dict(config)
+    config.clear()
+    config.update(gconfig.layered(_user, gconfig.load(gconfig.DEFAULT_CONFIG)))
     gconfig.validate(config)
     CATALOG_PATHS, CATALOG_FORMAT = gconfig.catalog_spec(config)
     gconfig.check_inputs_exist(CATALOG_PATHS, buildable={DEMO_CATALOG})
@@ -34,7 +37,7 @@ SHARD_ROWS = (config["demo"]["shard_rows"]
               if CATALOG_PATHS == [DEMO_CATALOG] and config["shard_rows"] == SCHEMA_SHARD_ROWS
               else config["shard_rows"])
 
-RUN = f"results/{config['run']}"
+RUN = f"{config['output_dir']}/{config['run']}"
 LOGS = f"{RUN}/logs"
 BENCH = f"{RUN}/benchmarks"
 SHARDS = f"{RUN}/shards"
@@ -42,6 +45,10 @@ GRIDS = f"{RUN}/grids"
 EXTINCTION_MAPS = gconfig.extinction_map_files(config)
 SBF_CAL = CALIBRATIONS["sbf"].name if "sbf" in CALIBRATIONS else None
 TF_CAL = CALIBRATIONS["tully_fisher"].name if "tully_fisher" in CALIBRATIONS else None
+# resolved files: a bare name in config is a calibration or table shipped with galdist
+CALIBRATION_FILES = {m: cal.path for m, cal in CALIBRATIONS.items()}
+EXTINCTION_TABLE = (str(gconfig.extinction_table_file(config))
+                    if config["extinction"]["coefficients"] == "table" else None)
 
 
 def shard_path(wildcards):

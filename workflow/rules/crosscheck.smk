@@ -37,7 +37,7 @@ rule assemble:
         ingest_summary=rules.ingest.output.summary,
         statistics=rules.crosscheck_statistics.output[0],
         grid=rules.mu_grid.output[0],
-        calibrations=[config[m]["calibration"] for m in METHODS],
+        calibrations=list(CALIBRATION_FILES.values()),
         **{stage: per_shard(pattern) for stage, pattern in STAGE_SHARDS.items()},
     output:
         distances=f"{RUN}/distances.parquet",
@@ -46,7 +46,7 @@ rule assemble:
     params:
         crosscheck=config["crosscheck"],
         methods=METHODS,
-        calibrations={m: config[m]["calibration"] for m in METHODS},
+        calibrations=CALIBRATION_FILES,
     log:
         f"{LOGS}/assemble.log",
     benchmark:
@@ -66,7 +66,7 @@ rule plots:
         },
     params:
         methods=METHODS,
-        calibrations={m: config[m]["calibration"] for m in METHODS},
+        calibrations=CALIBRATION_FILES,
         min_cz=config["crosscheck"]["min_cz_kms"],
     log:
         f"{LOGS}/plots.log",

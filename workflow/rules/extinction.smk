@@ -3,7 +3,7 @@
 
 rule extinction_coefficients:
     input:
-        table=lambda w: [config["extinction"]["table"]] if config["extinction"]["coefficients"] == "table" else [],
+        table=EXTINCTION_TABLE or [],
     output:
         f"{GRIDS}/extinction_coefficients.json",
     params:

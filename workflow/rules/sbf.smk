@@ -5,7 +5,7 @@
 rule sbf:
     input:
         shard=shard_path,
-        calibration=config["sbf"]["calibration"],
+        calibration=CALIBRATION_FILES.get("sbf"),
         coefficients=rules.extinction_coefficients.output[0],
         extinction=rules.extinction.output[0],
         kcorrect=rules.kcorrect.output[0],

@@ -5,7 +5,7 @@
 rule tully_fisher:
     input:
         shard=shard_path,
-        calibration=config["tully_fisher"]["calibration"],
+        calibration=CALIBRATION_FILES.get("tully_fisher"),
         coefficients=rules.extinction_coefficients.output[0],
         extinction=rules.extinction.output[0],
         kcorrect=rules.kcorrect.output[0],
