@@ -6,7 +6,7 @@ with logged(snakemake.log[0], "K-correction grids") as log:
     cfg, bands = snakemake.params.kcorrect, snakemake.params.bands
     templates = kcorrect.load_templates(cfg["templates"])
     grid = kcorrect.build_grids(templates, filters.load_bands(bands), cfg["colour_pair"],
-                                {b: v["ab_minus_vega"] if v["system"] == "Vega" else 0.0 for b, v in bands.items()},
+                                {b: v["ab_minus_vega"] for b, v in bands.items() if v["system"] == "Vega" and v["ab_minus_vega"] is not None},
                                 z_max=cfg["z_max"], dz=cfg["dz"])
     log.info("templates %s; %d redshifts", ", ".join(grid.names), grid.z.size)
     grid.to_file(snakemake.output[0])

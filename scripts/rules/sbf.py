@@ -2,7 +2,7 @@
 import dataclasses
 import json
 
-from galdist import calibration, extinction, io, sbf, uncertainty
+from galdist import calibration, extinction, io, passbands, sbf, uncertainty
 from galdist.logs import logged
 
 with logged(snakemake.log[0], f"SBF, shard {snakemake.wildcards.shard}"):
@@ -17,7 +17,7 @@ with logged(snakemake.log[0], f"SBF, shard {snakemake.wildcards.shard}"):
         {"extinction": ["ebv_used", "ebv_used_err", "ext_flags"],
          "kcorrect": [f"K_{band}", f"K_{blue}", f"K_{red}", "kcorr_flags"]})
     settings = sbf.SBFSettings.from_config(
-        cfg, ignore=("calibration", "band", "color_bands", "mc_max_rows"),
+        cfg, ignore=sbf.WORKFLOW_KEYS,
         mag_offset=sbf.system_offset(bands[band]["system"], cal.system, bands[band]["ab_minus_vega"]),
         color_offset=sbf.color_system_offset(bands[blue]["system"], bands[blue]["ab_minus_vega"],
                                              bands[red]["system"], bands[red]["ab_minus_vega"], cal.system))
@@ -29,6 +29,7 @@ with logged(snakemake.log[0], f"SBF, shard {snakemake.wildcards.shard}"):
     out = uncertainty.monte_carlo_on_subsample(
         lambda rows, mc: sbf.sbf_distance(rows, cal, settings if mc else no_mc),
         inputs, "sbf_mu", "sbf_mu_err_mc", cfg["mc_max_rows"])
+    passbands.flag_override(out["sbf_flags"], "sbf", cal, cfg, bands)
     units = {k: "mag" for k in out if k.endswith(("_mu", "_mu_err", "_mu_err_mc", "color_0", "mag_0", "abs_mag"))}
     io.write_stage_columns(out, snakemake.output[0], fp, units | {"sbf_d_mpc": "Mpc", "sbf_d_err_mpc": "Mpc"},
                            {"galdist.calibration.sha256": cal.sha256, "galdist.calibration.name": cal.name})

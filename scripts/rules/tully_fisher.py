@@ -2,7 +2,7 @@
 import dataclasses
 import json
 
-from galdist import calibration, extinction, io, tully_fisher, uncertainty
+from galdist import calibration, extinction, io, passbands, tully_fisher, uncertainty
 from galdist.logs import logged
 
 with logged(snakemake.log[0], f"Tully-Fisher, shard {snakemake.wildcards.shard}"):
@@ -18,7 +18,7 @@ with logged(snakemake.log[0], f"Tully-Fisher, shard {snakemake.wildcards.shard}"
                              {"extinction": ["ebv_used_err", f"A_{band}", "ext_flags"],
                               "kcorrect": [f"K_{band}", "kcorr_flags"]})
     settings = dataclasses.replace(
-        tully_fisher.TFSettings.from_config(cfg, ignore=("calibration", "band", "mc_max_rows")),
+        tully_fisher.TFSettings.from_config(cfg, ignore=tully_fisher.WORKFLOW_KEYS),
         input_system=bands[band]["system"], ab_minus_vega=bands[band]["ab_minus_vega"])
     no_mc = dataclasses.replace(settings, mc_draws=0)
     inputs = {"mag": cols[f"mag_{band}"], "mag_err": cols[f"mag_{band}_err"],
@@ -30,6 +30,7 @@ with logged(snakemake.log[0], f"Tully-Fisher, shard {snakemake.wildcards.shard}"
     out = uncertainty.monte_carlo_on_subsample(
         lambda rows, mc: tully_fisher.tully_fisher_distance(rows, cal, settings if mc else no_mc),
         inputs, "tf_mu", "tf_mu_err_mc", cfg["mc_max_rows"])
+    passbands.flag_override(out["tf_flags"], "tully_fisher", cal, cfg, bands)
     units = {"tf_inclination_deg": "deg", "tf_w_z": "km / s", "tf_w_r": "km / s", "tf_d_mpc": "Mpc",
              "tf_d_err_mpc": "Mpc"} | {k: "mag" for k in ("tf_a_int", "tf_mag_corr", "tf_abs_mag", "tf_mu",
                                                           "tf_mu_err", "tf_mu_err_mc")}

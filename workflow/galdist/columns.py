@@ -58,20 +58,22 @@ def band_columns(label: str) -> list[Column]:
             _c(f"mag_{label}_err", "mag", f"error of mag_{label}")]
 
 
-def required_columns(bands: list[str], methods: list[str], extra: list[str] = ()) -> list[Column]:
-    """Columns the catalog must have for these bands and methods."""
+def required_columns(bands: list[str], methods: list[str], extra=()) -> list[Column]:
+    """Columns the catalog must have: the base ones, the methods' inputs, and ``extra``
+    (optional or band columns that the configured stages make required). A band's
+    magnitudes are required only where a stage uses them (``config.extra_required_columns``)."""
+    cols = list(BASE)
+    for m in methods:
+        cols += METHOD_COLUMNS[m]
+    pool = {c.name: c for c in OPTIONAL + [bc for b in bands for bc in band_columns(b)]}
+    return cols + [pool[name] for name in extra if pool[name] not in cols]
+
+
+def all_columns(bands: list[str], methods: list[str]) -> list[Column]:
+    """Every canonical column a shard carries (absent ones are NaN): base, bands, methods, optional."""
     cols = list(BASE)
     for b in bands:
         cols += band_columns(b)
     for m in methods:
         cols += METHOD_COLUMNS[m]
-    by_name = {c.name: c for c in OPTIONAL}
-    cols += [by_name[name] for name in extra]
-    return cols
-
-
-def all_columns(bands: list[str], methods: list[str]) -> list[Column]:
-    """Every canonical column a shard carries: required ones, then the optional ones."""
-    cols = required_columns(bands, methods)
-    names = {c.name for c in cols}
-    return cols + [c for c in OPTIONAL if c.name not in names]
+    return cols + OPTIONAL

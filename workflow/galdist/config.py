@@ -194,11 +194,24 @@ def load(path: str | Path) -> dict:
     return data
 
 
-def extra_required_columns(config: dict) -> list[str]:
-    """Optional canonical columns that the configured stages make required."""
-    extra = []
+def extra_required_columns(config: dict) -> dict[str, str]:
+    """Optional and band columns that the configured stages make required: column -> why.
+
+    A band's magnitudes are needed where a stage reads them (the Tully-Fisher band, the
+    K-correction colour); a band used only as a filter curve (the SBF band and colour
+    bands, bands no stage uses) needs no magnitude column.
+    """
+    extra = {}
     if config["extinction"]["source"] == "catalog":
-        extra.append("ebv")
+        extra["ebv"] = "extinction.source is catalog; or use a map (extinction.source healpix or zea)"
+    users = {}
+    if "tully_fisher" in config["methods"]:
+        users.setdefault(config["tully_fisher"]["band"], []).append("tully_fisher.band")
+    for label in config["kcorrect"]["colour_pair"] or []:
+        users.setdefault(label, []).append("kcorrect.colour_pair")
+    for label, keys in users.items():
+        for name in (f"mag_{label}", f"mag_{label}_err"):
+            extra[name] = f"band {label} is named in config {' and '.join(keys)}"
     return extra
 
 

@@ -134,6 +134,9 @@ class Method(_Documented):
                   "dmu and v_pec are not meaningful there; the distance itself is fine")
     EXTRAPOLATED = (7, "distance computed outside the calibrated range because config allows it",
                     "use only with the caution the calibration's reference gives")
+    PASSBAND_OVERRIDE = (8, "the calibration's passband differs from the data's; config "
+                            "accept_passband_mismatch let the run go on",
+                         "expect a zero-point offset of the size of the colour term between the passbands")
 
 
 ALL = {"quality_flags": Quality, "ext_flags": Ext, "kcorr_flags": KCorr,

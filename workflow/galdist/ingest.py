@@ -58,7 +58,7 @@ class IngestPlan:
 
 
 def plan(paths: list[str], fmt: str, mapping: dict, units: dict, bands: list[str],
-         methods: list[str], extra_required: list[str] = ()) -> IngestPlan:
+         methods: list[str], extra_required=()) -> IngestPlan:
     """Check the catalog's structure without reading its rows; raise on any problem.
 
     ``mapping`` is config ``columns`` (canonical -> user column), ``units`` config
@@ -87,7 +87,7 @@ def plan(paths: list[str], fmt: str, mapping: dict, units: dict, bands: list[str
                 if any(col.name == r.name for r in required):
                     how = (f"map it with config 'columns: {{{col.name}: <your column>}}'"
                            if col.name not in mapping else f"config 'columns.{col.name}' names '{src}', which the file lacks")
-                    why = _needed_by(col.name, bands, methods)
+                    why = _needed_by(col.name, methods, extra_required)
                     problems.append(f"missing column '{src}' for canonical '{col.name}' ({why}); {how}")
                 continue
             kind = declared[src].kind
@@ -108,13 +108,13 @@ def plan(paths: list[str], fmt: str, mapping: dict, units: dict, bands: list[str
     return IngestPlan(list(paths), fmts[0], list(bands), list(methods), source_of, unit_of, shard_cols)
 
 
-def _needed_by(name: str, bands, methods) -> str:
+def _needed_by(name: str, methods, extra_required) -> str:
     from .columns import METHOD_COLUMNS
     for m in methods:
         if any(c.name == name for c in METHOD_COLUMNS[m]):
             return f"needed by method {m}; or drop {m} from config 'methods'"
-    if name.startswith("mag_"):
-        return "a configured band in config 'bands'"
+    if isinstance(extra_required, dict) and name in extra_required:
+        return extra_required[name]
     return "always needed"
 
 

@@ -74,6 +74,8 @@ INPUTS = {
     "ext_flags": (False, "extinction flags (Ext); NO_EBV/HIGH_EXTINCTION -> HIGH_EXTINCTION"),
     "kcorr_flags": (False, "K-correction flags (KCorr); any bit -> KCORR_PROBLEM"),
 }
+#: Keys of the ``sbf:`` config section that the workflow handles, not SBFSettings.
+WORKFLOW_KEYS = ("calibration", "band", "color_bands", "mc_max_rows", "accept_passband_mismatch")
 _FLAG_INPUTS = ("quality_flags", "ext_flags", "kcorr_flags")
 _K_INPUTS = ("K_mag", "K_blue", "K_red")
 

@@ -72,6 +72,9 @@ OUTPUT_COLUMNS = ("tf_inclination_deg", "tf_w_z", "tf_w_r", "tf_logw_i", "tf_a_i
                   "tf_mag_corr", "tf_abs_mag", "tf_mu", "tf_mu_err", "tf_mu_err_mc",
                   "tf_d_mpc", "tf_d_err_mpc", "tf_malmquist_applied", "tf_flags")
 
+#: Keys of the ``tully_fisher:`` config section that the workflow handles, not TFSettings.
+WORKFLOW_KEYS = ("calibration", "band", "mc_max_rows", "accept_passband_mismatch")
+
 _REQUIRED_INPUTS = ("mag", "w50", "axis_ratio", "z_helio")
 _OPTIONAL_INPUTS = ("mag_err", "w50_err", "axis_ratio_err", "a_gal", "a_gal_err", "k_corr",
                     "k_corr_err", "w50_resolution", "hi_flux", "hi_flux_err",
@@ -310,6 +313,13 @@ def _check_calibration(cal: Calibration, s: TFSettings) -> None:
         if missing:
             raise ValueError(f"tully_fisher.{' and tully_fisher.'.join(missing)} must be set for the "
                              f"baryonic calibration {cal.name}")
+
+
+def check_setup(cal: Calibration, s: TFSettings) -> None:
+    """Raise ValueError now for anything the distance step would refuse later (the
+    calibration's form and predictor, baryonic inputs, internal-extinction gamma)."""
+    _check_calibration(cal, s)
+    _gamma(cal, s)
 
 
 def _gamma(cal: Calibration, s: TFSettings) -> tuple[float, float]:

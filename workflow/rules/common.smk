@@ -1,6 +1,6 @@
 # Shared set-up: validate the configuration, the calibrations and the catalog's
-# structure before any job runs, and name every path the rules use. Nothing here
-# reads catalog rows.
+# structure (and a sample of its rows) before any job runs, and name every path the
+# rules use.
 import sys
 from pathlib import Path
 
@@ -9,27 +9,27 @@ sys.path.insert(0, str(Path(workflow.basedir) / "workflow"))
 from snakemake.exceptions import WorkflowError
 
 from galdist import config as gconfig
-from galdist import ingest as gingest
-from galdist.calibration import CalibrationError
+from galdist import preflight
 
 DEMO_CATALOG = "results/demo-input/corvid_reach_survey.parquet"
 
+# the user's config (--configfile, --config) laid over config/config.yaml, then every
+# check that can run before a job (galdist.preflight, the same as `galdist check`)
+# (a job started on a cluster node parses this file again: it skips the row sample)
+_checked = preflight.check(dict(config), buildable=frozenset({DEMO_CATALOG}),
+                           sample_rows=workflow.is_main_process)
+config.clear()
+config.update(_checked.config)
 try:
-    _user = dict(config)
-    config.clear()
-    config.update(gconfig.layered(_user, gconfig.load(gconfig.DEFAULT_CONFIG)))
-    gconfig.validate(config)
-    CATALOG_PATHS, CATALOG_FORMAT = gconfig.catalog_spec(config)
-    gconfig.check_inputs_exist(CATALOG_PATHS, buildable={DEMO_CATALOG})
-    gconfig.check_bands(config)
-    CALIBRATIONS = gconfig.check_stages(config)
-    BANDS = list(config["bands"])
-    METHODS = list(config["methods"])
-    if Path(CATALOG_PATHS[0]).exists():
-        INGEST_PLAN = gingest.plan(CATALOG_PATHS, CATALOG_FORMAT, config["columns"], config["units"],
-                                   BANDS, METHODS, gconfig.extra_required_columns(config))
-except (gconfig.ConfigError, gingest.IngestError, gingest.CatalogError, CalibrationError) as exc:
-    raise WorkflowError(f"galdist cannot start: {exc}") from None
+    _checked.raise_on_error()
+except gconfig.ConfigError as exc:
+    raise WorkflowError(f"galdist cannot start: fix these and run again:\n{exc}") from None
+for _warning in (f for f in _checked.findings if f.level == "warning"):
+    print(f"galdist: warning [{_warning.check}] {_warning.message}", file=sys.stderr)
+CATALOG_PATHS, CATALOG_FORMAT = gconfig.catalog_spec(config)
+CALIBRATIONS = _checked.calibrations
+BANDS = list(config["bands"])
+METHODS = list(config["methods"])
 
 # the demo uses small shards; any other catalog the configured (default 10^6) size
 SCHEMA_SHARD_ROWS = 1_000_000
