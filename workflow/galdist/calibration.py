@@ -15,6 +15,7 @@ import jsonschema
 import numpy as np
 import yaml
 
+from . import shipped
 from .errors import CalibrationError
 
 SCHEMA_PATH = Path(__file__).resolve().parent.parent / "schemas" / "calibration.schema.yaml"
@@ -78,9 +79,13 @@ def _fail(path, message):
     raise CalibrationError(f"calibration file {path}: {message}")
 
 
-def load_calibration(path: str | Path) -> Calibration:
-    """Read, validate and return one calibration file."""
-    path = Path(path)
+def load_calibration(spec: str | Path) -> Calibration:
+    """Read, validate and return one calibration: a shipped one by bare name
+    (``tf_i_tully_courtois_2012``) or the user's file by path."""
+    try:
+        path = shipped.find("calibrations", str(spec))
+    except FileNotFoundError as exc:
+        raise CalibrationError(str(exc)) from None
     try:
         text = path.read_text(encoding="utf-8")
     except OSError as exc:

@@ -35,8 +35,8 @@ def settings_from_config(path=None) -> DemoSettings:
     """Demo settings following a galdist config (default config/config.yaml)."""
     from . import config as cfg
 
-    path = Path(path) if path else Path(__file__).resolve().parents[2] / "config" / "config.yaml"
-    return DemoSettings(config=cfg.validate(cfg.load(path)))
+    defaults = cfg.load(cfg.DEFAULT_CONFIG)
+    return DemoSettings(config=cfg.validate(cfg.layered(cfg.load(path), defaults) if path else defaults))
 
 
 def _positions(rng, n):
