@@ -264,6 +264,64 @@ def test_collected_sample_statistics_do_not_depend_on_sharding(grid):
     assert whole["pairs"]["tf-sbf"]["median"] == pytest.approx(-0.05, abs=0.02)
 
 
+def _tf_only_columns(grid, n=400, seed=5):
+    """Per-row columns of a Tully-Fisher-only shard (no sbf_* column at all)."""
+    rng = np.random.default_rng(seed)
+    z = rng.uniform(0.012, 0.05, n)
+    mu_z = grid.mu(z)
+    return {"z_cmb": z, "z_cmb_err": np.full(n, 1e-4), "mu_z": mu_z, "mu_z_err": np.full(n, 0.02),
+            "z_flags": flags.new(n), "tf_mu": mu_z + 0.2 + rng.normal(0, 0.3, n),
+            "tf_mu_err": np.full(n, 0.3), "tf_flags": flags.new(n)}
+
+
+def test_one_method_statistics_from_a_spill(grid, tmp_path):
+    # the rule script reads the sample back from a RecordSpill, which holds no "pairs"
+    # group when only one method ran: that used to stop the run with KeyError: 'pairs'
+    from galdist.io import RecordSpill
+
+    cols = _tf_only_columns(grid)
+    n = len(cols["z_cmb"])
+    with RecordSpill(tmp_path / "stats.json") as spill:
+        for i in range(0, n, 150):
+            spill.extend(method_sample({k: v[i:i + 150] for k, v in cols.items()}, ["tf"]))
+        assert "pairs" not in spill.nested()
+        stats = sample_statistics(spill.nested(), n, 70.0, methods=["tf"])
+    assert list(stats["methods"]) == ["tf"] and stats["pairs"] == {}
+    tf = stats["methods"]["tf"]
+    assert tf["n_rows"] == tf["n_measured"] == n and tf["n_used"] >= n - 5
+    assert tf["wmean"] == pytest.approx(0.2, abs=4 * tf["wmean_err"])
+    json.dumps(stats, allow_nan=False)
+
+
+def test_statistics_entries_follow_the_configured_methods(grid):
+    # a configured method that measured nothing still gets its (empty) entry, and the
+    # pair gets one when both are configured; the sample alone decides without ``methods``
+    cols = _tf_only_columns(grid, n=50)
+    sample = collect_samples([method_sample(cols, ["tf", "sbf"])])
+    assert set(sample["methods"]) == {"tf"} and sample["pairs"] == {}
+    stats = sample_statistics(sample, 50, 70.0, methods=["tf", "sbf"])
+    assert list(stats["methods"]) == ["tf", "sbf"] and list(stats["pairs"]) == ["tf-sbf"]
+    assert stats["methods"]["sbf"]["n_used"] == 0 and stats["methods"]["sbf"]["h0_implied"] is None
+    assert stats["pairs"]["tf-sbf"]["n_both"] == 0 and stats["pairs"]["tf-sbf"]["median"] is None
+    assert sample_statistics(sample, 50, 70.0)["pairs"] == {}
+    assert sample_statistics({}, 0, 70.0) == {"methods": {}, "pairs": {}}
+    json.dumps(stats, allow_nan=False)
+
+
+def test_best_distance_with_one_method(grid):
+    cols = _tf_only_columns(grid, n=6)
+    cols["tf_mu"][1] = np.nan
+    flags.set_where(cols["tf_flags"], np.arange(6) == 2, Method.LOW_INCLINATION)
+    flags.set_where(cols["z_flags"], np.arange(6) == 3, Redshift.LOCAL_FLOW)
+    out, summary = crosscheck(cols, grid, methods=["tf"])
+    assert out["best_method"].to_pylist() == ["tf", "", "", "tf", "tf", "tf"]
+    use = np.array([True, False, False, True, True, True])
+    np.testing.assert_allclose(out["mu_best"][use], cols["tf_mu"][use], rtol=1e-14)
+    np.testing.assert_allclose(out["mu_best_err"][use], cols["tf_mu_err"][use], rtol=1e-14)
+    assert np.isnan(out["mu_best"][~use]).all() and np.isnan(out["mu_best_err"][~use]).all()
+    assert summary["best"] == {"none": 2, "tf": 4} and summary["pairs"] == {}
+    assert not any(k.startswith("sbf_") for k in out)
+
 def test_best_distance_inverse_variance():
     mu_tf = np.array([33.0, 33.0, 33.0, np.nan, 33.0])
     mu_sbf = np.array([33.2, 33.2, np.nan, np.nan, 33.2])

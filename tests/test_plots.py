@@ -136,3 +136,28 @@ def test_plots_of_empty_frame_without_columns_or_calibration(tmp_path, grid):
     for p in paths.values():
         data = open(p, "rb").read()
         assert data[:8] == PNG_MAGIC and len(data) > 2000
+
+
+@pytest.mark.parametrize("methods,relation", [(["tf"], ["tf_relation"]), (["sbf"], ["sbf_relation"]),
+                                              (["tf", "sbf"], ["tf_relation", "sbf_relation"])])
+def test_one_method_run_draws_only_its_plots(tmp_path, grid, calibrations, methods, relation):
+    other = {"tf", "sbf"} - set(methods)
+    df = _frame(grid).drop(columns=[c for c in COLUMNS if c.split("_")[0] in other])
+    tf_cal, sbf_cal = calibrations
+    out = tmp_path / "plots"
+    paths = plots.write_all(df, out, grid, methods=methods, tf_calibration=tf_cal,
+                            sbf_calibration=sbf_cal)
+    expected = ["hubble_diagram", *relation, "dmu_histograms", "vpec_sky"]
+    assert list(paths) == plots.plot_names(methods) == expected
+    assert sorted(p.name for p in out.iterdir()) == sorted(f"{n}.png" for n in expected)
+    _assert_pngs(out, expected)
+    # one panel per method that ran, none for the absent one
+    n_draw = {m: int(np.isfinite(df[f"{m}_mu"]).sum()) for m in methods}
+    assert plots.draw("vpec_sky", df, tmp_path / "sky.png", grid, methods=methods) == sum(n_draw.values())
+
+
+def test_plot_names_without_methods_and_unknown_plot(tmp_path, grid):
+    assert plots.plot_names([]) == []
+    assert plots.plot_names(["fp"]) == ["hubble_diagram", "dmu_histograms", "vpec_sky"]
+    with pytest.raises(ValueError, match="unknown plot 'fp_relation'"):
+        plots.draw("fp_relation", pd.DataFrame({"z_cmb": []}), tmp_path / "x.png", grid)

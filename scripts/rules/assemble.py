@@ -22,6 +22,7 @@ with logged(snakemake.log[0], "assemble") as log:
     if counts["rows"] != ingest_summary["rows_in"]:
         raise RuntimeError(f"row count changed: {ingest_summary['rows_in']} in, {counts['rows']} out")
     summary = {"rows_in": ingest_summary["rows_in"], "rows_out": counts["rows"],
+               "methods": list(snakemake.params.methods),
                "flag_counts": counts["flag_counts"], "best_method": counts["best_method"],
                "statistics": stats, "cosmology": info["config"]["redshift"]["cosmology"],
                "calibrations": {m: c["reference"] for m, c in info["calibrations"].items()},

@@ -6,6 +6,7 @@ from galdist.product import METHOD_PREFIX
 with logged(snakemake.log[0], "cross-check statistics") as log:
     cfg, methods = snakemake.params.crosscheck, snakemake.params.methods
     grid = redshift.MuGrid.load(snakemake.input.grid)
+    prefixes = [METHOD_PREFIX[m] for m in methods]
     n_rows, n_shards = 0, len(snakemake.input.redshift)
     # the sample goes to disk shard by shard, so memory does not grow with the catalog
     with io.RecordSpill(snakemake.output[0]) as spill:
@@ -14,10 +15,11 @@ with logged(snakemake.log[0], "cross-check statistics") as log:
             cols, _ = io.read_shard(shard, ["z_cmb", "z_cmb_err", "mu_z", "mu_z_err", "z_flags"], stages,
                                     {m: [f"{METHOD_PREFIX[m]}_{c}" for c in ("mu", "mu_err", "flags")]
                                      for m in methods})
-            spill.extend(crosscheck.method_sample(cols, [METHOD_PREFIX[m] for m in methods]))
+            spill.extend(crosscheck.method_sample(cols, prefixes))
             n_rows += len(cols["z_cmb"])
             log.info("shard %d/%d sampled (%d rows so far)", i + 1, n_shards, n_rows)
         stats = crosscheck.sample_statistics(spill.nested(), n_rows, grid.h0, min_cz=cfg["min_cz_kms"],
-                                             clip_sigma=cfg["clip_sigma"], max_iter=cfg["max_iter"])
+                                             clip_sigma=cfg["clip_sigma"], max_iter=cfg["max_iter"],
+                                             methods=prefixes)
     log.info("statistics over %d rows: %s", n_rows, stats)
     io.write_json(stats, snakemake.output[0])

@@ -520,23 +520,35 @@ def collect_samples(samples: Sequence[dict]) -> dict:
 
 
 def sample_statistics(sample: dict, n_rows: int, h0_assumed: float, *, min_cz: float = 3000.0,
-                      clip_sigma: float = 3.5, max_iter: int = 20) -> dict:
+                      clip_sigma: float = 3.5, max_iter: int = 20,
+                      methods: Sequence[str] | None = None) -> dict:
     """Per-method Hubble statistics and per-pair offsets of a sample.
 
     ``sample`` is shaped like ``collect_samples``'s result; each method or pair
-    maps to any re-iterable of ``RECORD`` arrays (a list, or chunks read from disk).
+    maps to any re-iterable of ``RECORD`` arrays (a list, or chunks read from disk);
+    a missing group or name is an empty sample. ``methods`` (prefixes) fixes which
+    methods get statistics, and so which pairs: every one of them gets an entry,
+    measured or not, and "pairs" is an empty mapping when fewer than two ran
+    (default: the methods and pairs the sample holds).
     The pair statistics ignore OUTLIER and LOCAL_FLOW (``pair_sample_statistics``'s
     default): a Hubble outlier or a nearby galaxy still has a valid distance to compare.
     """
+    have_methods, have_pairs = sample.get("methods", {}), sample.get("pairs", {})
+    if methods is None:
+        names, pairs = list(have_methods), list(have_pairs)
+    else:
+        names = list(methods)
+        pairs = [f"{a}-{b}" for a, b in itertools.combinations(names, 2)]
     summary: dict = {"methods": {}, "pairs": {}}
-    for m, chunks in sample["methods"].items():
-        stats = hubble_sample_statistics(chunks, h0_assumed, min_cz=min_cz, clip_sigma=clip_sigma,
-                                         max_iter=max_iter)
+    for m in names:
+        stats = hubble_sample_statistics(have_methods.get(m, []), h0_assumed, min_cz=min_cz,
+                                         clip_sigma=clip_sigma, max_iter=max_iter)
         stats["n_measured"] = stats["n_rows"]
         stats["n_rows"] = int(n_rows)
         summary["methods"][m] = stats
-    for name, chunks in sample["pairs"].items():
-        summary["pairs"][name] = pair_sample_statistics(chunks, clip_sigma=clip_sigma, max_iter=max_iter)
+    for name in pairs:
+        summary["pairs"][name] = pair_sample_statistics(have_pairs.get(name, []), clip_sigma=clip_sigma,
+                                                        max_iter=max_iter)
     return summary
 
 

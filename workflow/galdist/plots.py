@@ -272,15 +272,43 @@ def vpec_sky(df, path, methods: Sequence[str] = ("tf", "sbf"), column: str = "vp
     return total
 
 
+#: the calibration-relation plot of each method prefix, "<prefix>_relation", drawn only
+#: for a method that ran
+RELATION_PLOTS = {"tf": tf_relation, "sbf": sbf_relation}
+
+
+def plot_names(methods: Sequence[str] = ("tf", "sbf")) -> list[str]:
+    """The plots of a run with these method prefixes: the Hubble diagram, one relation
+    plot per method that has one, the dmu histograms and the sky map (one panel per
+    method); none when no method ran (every plot would be empty)."""
+    if not methods:
+        return []
+    return ["hubble_diagram", *(f"{m}_relation" for m in methods if m in RELATION_PLOTS),
+            "dmu_histograms", "vpec_sky"]
+
+
+def draw(name: str, df, path, grid, *, methods: Sequence[str] = ("tf", "sbf"),
+         calibrations: dict | None = None, min_cz: float = 3000.0) -> int:
+    """Draw the plot called ``name`` (one of ``plot_names``) to ``path``; ``calibrations``
+    maps a method prefix to its calibration. Returns the number of galaxies drawn."""
+    prefix = name.removesuffix("_relation")
+    if name == "hubble_diagram":
+        return hubble_diagram(df, path, grid, methods)
+    if name.endswith("_relation") and prefix in RELATION_PLOTS:
+        return RELATION_PLOTS[prefix](df, path, (calibrations or {}).get(prefix))
+    if name == "dmu_histograms":
+        return dmu_histograms(df, path, methods, min_cz)
+    if name == "vpec_sky":
+        return vpec_sky(df, path, methods)
+    raise ValueError(f"unknown plot {name!r}; known: {', '.join(plot_names(list(RELATION_PLOTS)))}")
+
+
 def write_all(df, out_dir, grid, *, methods: Sequence[str] = ("tf", "sbf"), tf_calibration=None,
               sbf_calibration=None, min_cz: float = 3000.0) -> dict[str, str]:
-    """All plots into ``out_dir``; returns {plot name: path}."""
+    """The plots of ``plot_names(methods)`` into ``out_dir``; returns {plot name: path}."""
     out = Path(out_dir)
-    paths = {k: str(out / f"{k}.png") for k in
-             ("hubble_diagram", "tf_relation", "sbf_relation", "dmu_histograms", "vpec_sky")}
-    hubble_diagram(df, paths["hubble_diagram"], grid, methods)
-    tf_relation(df, paths["tf_relation"], tf_calibration)
-    sbf_relation(df, paths["sbf_relation"], sbf_calibration)
-    dmu_histograms(df, paths["dmu_histograms"], methods, min_cz)
-    vpec_sky(df, paths["vpec_sky"], methods)
+    cals = {"tf": tf_calibration, "sbf": sbf_calibration}
+    paths = {k: str(out / f"{k}.png") for k in plot_names(methods)}
+    for name, path in paths.items():
+        draw(name, df, path, grid, methods=methods, calibrations=cals, min_cz=min_cz)
     return paths

@@ -10,7 +10,11 @@ STAGE_SHARDS = {
     "kcorrect": f"{SHARDS}/kcorrect/part-{{shard}}.parquet",
     "redshift": f"{SHARDS}/redshift/part-{{shard}}.parquet",
 } | {m: METHOD_SHARDS[m] for m in METHODS}
-PLOTS = ["hubble_diagram", "tf_relation", "sbf_relation", "dmu_histograms", "vpec_sky"]
+# the plots follow the configured methods: a relation plot only for a method that ran,
+# one panel per method in the others, none without a method (galdist.plots.plot_names;
+# the plots script stops if the two lists ever disagree)
+RELATION_PLOTS = {"tully_fisher": "tf_relation", "sbf": "sbf_relation"}
+PLOTS = ["hubble_diagram", *(RELATION_PLOTS[m] for m in METHODS), "dmu_histograms", "vpec_sky"] if METHODS else []
 
 
 rule crosscheck_statistics:

@@ -1,0 +1,112 @@
+"""End-to-end runs with one distance method: a Tully-Fisher-only HI survey (no SBF
+columns in the catalog) and an SBF-only early-type sample (no TF columns).
+
+Every input row must reach distances.parquet in input order, the absent method must
+leave no columns, jobs, statistics or plots behind, summary.json must say plainly that
+no method pair ran (an empty ``pairs`` mapping), and mu_best must be the one method's
+distance wherever that method is usable.
+"""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+from conftest import copy_workflow, run_snakemake, small_catalog
+from galdist import flags
+from galdist.columns import METHOD_COLUMNS
+
+pytestmark = pytest.mark.slow
+
+N_ROWS = 300
+PREFIX = {"tully_fisher": "tf", "sbf": "sbf"}
+OTHER = {"tully_fisher": "sbf", "sbf": "tully_fisher"}
+
+
+def _catalog(method: str) -> pa.Table:
+    """small_catalog without the other method's columns, rows shuffled so that input
+    order is not the sorted order of galaxy_id."""
+    cols = small_catalog(N_ROWS, seed=11)
+    for c in METHOD_COLUMNS[OTHER[method]]:
+        del cols[c.name]
+    order = np.random.default_rng(4).permutation(N_ROWS)
+    return pa.table({k: np.asarray(v)[order] for k, v in cols.items()})
+
+
+@pytest.fixture(scope="module", params=["tully_fisher", "sbf"])
+def single_run(request, tmp_path_factory):
+    method = request.param
+    wf = copy_workflow(tmp_path_factory.mktemp(f"only-{method}"))
+    catalog = _catalog(method)
+    pq.write_table(catalog, wf / "cat.parquet")
+    result = run_snakemake(wf, "--config", "catalog=cat.parquet", "run=single", f"methods=[{method}]",
+                           "shard_rows=100")
+    assert result.returncode == 0, result.stderr[-4000:]
+    return method, wf / "results" / "single", catalog
+
+
+def test_every_row_in_input_order_without_the_other_method(single_run):
+    method, run, catalog = single_run
+    product = pq.read_table(run / "distances.parquet")
+    assert product.column("galaxy_id").to_pylist() == catalog.column("galaxy_id").to_pylist()
+    p, other = PREFIX[method], PREFIX[OTHER[method]]
+    names = product.column_names
+    assert not [n for n in names if n.startswith(f"{other}_")]
+    assert not {c.name for c in METHOD_COLUMNS[OTHER[method]]} & set(names)
+    for c in ("mu", "mu_err", "flags", "dmu", "vpec", "vpec_lr"):
+        assert f"{p}_{c}" in names, c
+    assert np.isfinite(product.column(f"{p}_mu").to_numpy(zero_copy_only=False)).sum() > 0
+    # no job of the absent method ran
+    assert not (run / "shards" / OTHER[method]).exists()
+    assert len(list((run / "shards" / method).glob("*/part-*.parquet"))) == 3
+
+
+def test_mu_best_is_the_one_method(single_run):
+    method, run, _ = single_run
+    p = PREFIX[method]
+    t = pq.read_table(run / "distances.parquet").to_pandas()
+    mu, err, fl = t[f"{p}_mu"].to_numpy(), t[f"{p}_mu_err"].to_numpy(), t[f"{p}_flags"].to_numpy()
+    usable = (np.isfinite(mu) & np.isfinite(err) & (err > 0)
+              & ((fl & ~np.uint32(flags.Method.LOCAL_FLOW)) == 0))
+    assert 0 < usable.sum() < len(t)
+    assert (t["best_method"].to_numpy() == np.where(usable, p, "")).all()
+    # (sum w mu) / (sum w) of one term: equal to rounding
+    np.testing.assert_allclose(t["mu_best"].to_numpy()[usable], mu[usable], rtol=1e-14)
+    np.testing.assert_allclose(t["mu_best_err"].to_numpy()[usable], err[usable], rtol=1e-14)
+    assert np.isnan(t["mu_best"].to_numpy()[~usable]).all()
+    summary = json.loads((run / "summary.json").read_text())
+    assert summary["best_method"] == {"none": int((~usable).sum()), p: int(usable.sum())}
+
+
+def test_summary_has_the_one_method_and_no_pairs(single_run):
+    method, run, _ = single_run
+    p = PREFIX[method]
+    summary = json.loads((run / "summary.json").read_text())
+    assert summary["rows_in"] == summary["rows_out"] == N_ROWS
+    assert summary["methods"] == [method]
+    stats = summary["statistics"]
+    assert stats["pairs"] == {}
+    assert list(stats["methods"]) == [p]
+    s = stats["methods"][p]
+    product = pq.read_table(run / "distances.parquet", columns=[f"{p}_mu", f"{p}_flags"])
+    assert s["n_rows"] == N_ROWS
+    assert s["n_measured"] == int(np.isfinite(product.column(f"{p}_mu").to_numpy(zero_copy_only=False)).sum())
+    assert s["n_used"] > 10 and np.isfinite(s["wmean"]) and s["h0_implied"] > 0
+    outliers = flags.has(product.column(f"{p}_flags").to_numpy(), flags.Method.OUTLIER)
+    assert summary["flag_counts"][f"{p}_flags"]["OUTLIER"] == int(outliers.sum()) == s["n_outliers"]
+    assert f"{PREFIX[OTHER[method]]}_flags" not in summary["flag_counts"]
+    assert list(summary["calibrations"]) == [method]
+
+
+def test_plots_are_those_of_the_method(single_run):
+    method, run, _ = single_run
+    expected = {"hubble_diagram", f"{PREFIX[method]}_relation", "dmu_histograms", "vpec_sky"}
+    pngs = list((run / "plots").iterdir())
+    assert {p.name for p in pngs} == {f"{n}.png" for n in expected}
+    for png in pngs:
+        data = png.read_bytes()
+        assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 10_000, png.name
