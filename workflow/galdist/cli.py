@@ -385,6 +385,8 @@ def _int(x) -> str:
 
 
 def _reference(ref) -> str:
+    if isinstance(ref, str):
+        return ref
     if not isinstance(ref, dict):
         return ""
     parts = [str(ref[k]) for k in ("authors", "year", "journal") if ref.get(k)]
@@ -409,6 +411,8 @@ def cmd_summary(args) -> int:
     pm = "±" if _can_print("±Δ") else "+-"
     _say(f"run {path.parent}")
     _say(f"  rows                {_int(s.get('rows_in'))} in, {_int(s.get('rows_out'))} out")
+    if isinstance(s.get("methods"), list):
+        _say(f"  methods             {', '.join(map(str, s['methods'])) or DASH}")
     best = s.get("best_method")
     if isinstance(best, dict) and best:
         _say("  best distance       " + ", ".join(f"{k} {v}" for k, v in best.items()))
@@ -426,7 +430,8 @@ def cmd_summary(args) -> int:
         st = st if isinstance(st, dict) else {}
         method = method_of.get(m, m)
         ref = _reference(_get(s, "calibrations", method))
-        _say(f"\n{method}" + (f" ({m}_* columns)" if method != m else "") + (f": {ref}" if ref else ""))
+        _say(f"\n{method}" + (f" ({m}_* columns)" if method != m else ""))
+        _say(f"  calibration         {ref or DASH}")
         _say(f"  galaxies used       {_int(st.get('n_used'))}  (of {_int(st.get('n_rows'))} rows: "
              f"{_int(st.get('n_measured'))} measured, {_int(st.get('n_usable'))} usable, "
              f"{_int(st.get('n_clipped'))} clipped, {_int(st.get('n_outliers'))} outliers)")
@@ -540,6 +545,9 @@ def main(argv=None) -> int:
         return exc.code
     except _ERRORS as exc:
         print(f"galdist {args.verb}: {exc}", file=sys.stderr)
+        return 1
+    except BrokenPipeError:  # output piped into e.g. head
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return 1
 
 

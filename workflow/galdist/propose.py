@@ -238,7 +238,11 @@ def propose(catalog: str, run: str | None = None, output_dir: str = "galdist-res
                 m, role = e[0], e[1]
                 m = Match(role, m.rank, f"'{name}' reads as the error of {m.role}", m.colour, m.sbf_band)
         if m is None:
-            ignored.append(name)
+            if _LOG.match(norm(name)):
+                p.unused.append(f"{name}: a logarithm (log width? log a/b?): not mapped, galdist reads linear "
+                                "w50 (km/s) and b/a")
+            else:
+                ignored.append(name)
             continue
         found.setdefault(role, []).append((m.rank, name, m))
     values = {name: numbers(sample[name]) for name in names if name in sample}
@@ -270,7 +274,7 @@ def propose(catalog: str, run: str | None = None, output_dir: str = "galdist-res
             ("width_definition", "w20", f"the width column '{chosen['w50'][0]}' is named as a W20"))
     else:
         chosen.pop("w20", None)
-    p.unused += [f"{name}: not recognised" for name in ignored]
+    p.unused += [f"{name}: not recognised, not read" for name in ignored]
 
     # 2. values: units and sanity of what the names suggest
     def vals(role):
@@ -541,7 +545,7 @@ def render(p: Proposal) -> str:
     else:
         out.append("columns: {}")
     for note in p.unused:
-        out.append(f"#   not used: {note}")
+        out.append(f"#   note: {note}")
     out += ["", "# unit of YOUR column where it is not the canonical one (deg, km/s, b/a, mag);",
             "# guessed from the sample values"]
     units = {k: e for k, e in p.units.items() if e.value is not None}
