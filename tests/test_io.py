@@ -21,9 +21,10 @@ def _write(path, table, row_group):
 def test_iter_shard_walks_files_with_different_row_groups_in_step(tmp_path):
     n = 1000
     ids = pa.array([f"G{i:04d}" for i in range(n)])
-    fp = io.fingerprint(ids.to_numpy(zero_copy_only=False))
+    shard_table = pa.table({"galaxy_id": ids, "x": np.arange(n, dtype=float)})
+    fp = io.fingerprint(shard_table)
     shard = tmp_path / "shard.parquet"
-    pq.write_table(pa.table({"galaxy_id": ids, "x": np.arange(n, dtype=float)}).replace_schema_metadata(
+    pq.write_table(shard_table.replace_schema_metadata(
         {io.FINGERPRINT_KEY: fp.encode()}), shard, row_group_size=97)
     stage = tmp_path / "stage.parquet"
     pq.write_table(pa.table({"y": -np.arange(n, dtype=float)}).replace_schema_metadata(

@@ -1,5 +1,4 @@
 """Rule script: stream every shard's stages into distances.parquet and write summary.json."""
-import json
 from pathlib import Path
 
 from galdist import calibration, io, product, redshift
@@ -9,11 +8,11 @@ with logged(snakemake.log[0], "assemble") as log:
     inp, cfg = snakemake.input, snakemake.params.crosscheck
     stages = ["extinction", "kcorrect", "redshift", *snakemake.params.methods]
     shards = [{"shard": s} | {st: inp[st][i] for st in stages} for i, s in enumerate(inp.shards)]
-    with open(inp.statistics) as fh:
-        stats = json.load(fh)
-    with open(inp.ingest_summary) as fh:
-        ingest_summary = json.load(fh)
+    stats, ingest_summary = io.read_json(inp.statistics), io.read_json(inp.ingest_summary)
     cals = {m: calibration.load_calibration(p) for m, p in snakemake.params.calibrations.items()}
+    for m, cal in cals.items():  # provenance must describe the calibration the distances came from
+        io.check_stamps(inp[m], "galdist.calibration.sha256", cal.sha256,
+                        f"computed with another version of calibration {cal.path}")
     info = product.provenance(snakemake.config, cals, ingest_summary, Path(snakemake.scriptdir).parents[1])
     counts = product.assemble(shards, snakemake.output.distances, snakemake.output.plot_sample,
                               redshift.MuGrid.load(inp.grid), stats, snakemake.params.methods, info,

@@ -1,5 +1,4 @@
 """Rule script: E(B-V) and A_<band> for one shard."""
-import json
 
 from galdist import ebv_maps, extinction, io
 from galdist.logs import logged
@@ -7,8 +6,7 @@ from galdist.logs import logged
 with logged(snakemake.log[0], f"extinction, shard {snakemake.wildcards.shard}") as log:
     cfg = snakemake.params.extinction
     cols, fp = io.read_shard(snakemake.input.shard, ["ra", "dec", "ebv", "ebv_err"])
-    with open(snakemake.input.coefficients) as fh:
-        coeffs = extinction.ExtinctionCoefficients.from_dict(json.load(fh))
+    coeffs = extinction.ExtinctionCoefficients.from_dict(io.read_json(snakemake.input.coefficients))
     ebv, ebv_err, outside = cols["ebv"], cols["ebv_err"], None
     if cfg["source"] == "healpix":
         sky = ebv_maps.HealpixMap.from_fits(cfg["map_file"], column=cfg["map_column"])

@@ -1,6 +1,5 @@
 """Rule script: SBF distances for one shard with one calibration."""
 import dataclasses
-import json
 
 from galdist import calibration, extinction, io, passbands, sbf, uncertainty
 from galdist.logs import logged
@@ -9,8 +8,7 @@ with logged(snakemake.log[0], f"SBF, shard {snakemake.wildcards.shard}"):
     cfg, bands = snakemake.params.sbf, snakemake.params.bands
     cal = calibration.load_calibration(snakemake.input.calibration)
     band, (blue, red) = cfg["band"], cfg["color_bands"]
-    with open(snakemake.input.coefficients) as fh:
-        r = extinction.ExtinctionCoefficients.from_dict(json.load(fh)).per_true_ebv()
+    r = extinction.ExtinctionCoefficients.from_dict(io.read_json(snakemake.input.coefficients)).per_true_ebv()
     cols, fp = io.read_shard(
         snakemake.input.shard, ["sbf_mag", "sbf_mag_err", "sbf_color", "sbf_color_err", "quality_flags"],
         {"extinction": snakemake.input.extinction, "kcorrect": snakemake.input.kcorrect},

@@ -1,6 +1,5 @@
 """Rule script: Tully-Fisher distances for one shard with one calibration."""
 import dataclasses
-import json
 
 from galdist import calibration, extinction, io, passbands, tully_fisher, uncertainty
 from galdist.logs import logged
@@ -9,8 +8,7 @@ with logged(snakemake.log[0], f"Tully-Fisher, shard {snakemake.wildcards.shard}"
     cfg, bands = snakemake.params.tully_fisher, snakemake.params.bands
     band = cfg["band"]
     cal = calibration.load_calibration(snakemake.input.calibration)
-    with open(snakemake.input.coefficients) as fh:
-        r_band = extinction.ExtinctionCoefficients.from_dict(json.load(fh)).per_true_ebv()[band]
+    r_band = extinction.ExtinctionCoefficients.from_dict(io.read_json(snakemake.input.coefficients)).per_true_ebv()[band]
     names = [f"mag_{band}", f"mag_{band}_err", "w50", "w50_err", "axis_ratio", "axis_ratio_err", "z_helio",
              "hi_flux", "w50_resolution", "quality_flags"]
     cols, fp = io.read_shard(snakemake.input.shard, names,

@@ -3,18 +3,20 @@
 Every file galdist writes goes to a temporary name in the same directory and is
 renamed into place, so no reader ever sees half a file. Per-shard stage outputs
 are narrow (only the columns a stage adds) and carry the shard's fingerprint, a
-hash of its galaxy_id column, which the assemble step checks before joining by
+hash of the shard's whole content, which every reader checks before joining by
 position.
 """
 
 from __future__ import annotations
 
 import contextlib
+import glob
 import hashlib
 import json
 import os
 import shutil
 import tempfile
+import zipfile
 from pathlib import Path
 
 import numpy as np
@@ -60,6 +62,9 @@ def _umask() -> int:
 
 def _atomic_target(path: Path, suffix: str = ".tmp"):
     path.parent.mkdir(parents=True, exist_ok=True)
+    # one job writes a given output: temporaries a killed earlier attempt left are its own
+    for stale in path.parent.glob(f".{glob.escape(path.name)}.*{suffix}"):
+        stale.unlink(missing_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=suffix, dir=path.parent)
     # mkstemp creates the file owner-only (0600); the renamed file gets the mode any
     # other new file would have
@@ -144,6 +149,29 @@ def write_json(data, path: str | Path) -> None:
         tmp.unlink(missing_ok=True)
 
 
+def read_json(path: str | Path):
+    """A JSON file galdist wrote; a damaged one is named, with the fix."""
+    try:
+        return json.loads(Path(path).read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise
+    except (OSError, ValueError) as exc:
+        raise CorruptFileError(f"{path}: not a readable JSON file ({type(exc).__name__}: {exc}); "
+                               "delete it and run the same command again to rebuild it") from exc
+
+
+@contextlib.contextmanager
+def reading_grid(path: str | Path):
+    """Wrap the read of a grid file galdist wrote (``.npz``): a damaged one is named, with the fix."""
+    try:
+        yield
+    except FileNotFoundError:
+        raise
+    except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile) as exc:
+        raise CorruptFileError(f"{path}: not a readable grid file ({type(exc).__name__}: {exc}); "
+                               "delete it and run the same command again to rebuild it") from exc
+
+
 def _json_default(obj):
     if isinstance(obj, np.integer):
         return int(obj)
@@ -155,27 +183,43 @@ def _json_default(obj):
 
 
 class Fingerprint:
-    """Incremental hash of a galaxy_id column, fed batch by batch in row order."""
+    """Incremental hash of a shard's content: every column, in row order, fed batch by
+    batch (one hash per column, so how the rows were split into batches does not matter).
+
+    A stage file stamped with it can only be joined to the very shard it was computed
+    from: the same IDs with one changed redshift give another fingerprint.
+    """
 
     def __init__(self):
-        self._h = hashlib.blake2b(digest_size=16)
+        self._cols: dict[str, "hashlib.blake2b"] = {}
 
-    def update(self, galaxy_ids) -> np.ndarray:
-        """Add a batch; returns the per-row 64-bit hashes (reused for duplicate checks)."""
-        import pandas as pd  # here: only ingest hashes; the per-shard jobs need not import pandas
+    def update(self, table: pa.Table) -> np.ndarray | None:
+        """Add a batch; returns the per-row 64-bit hashes of its galaxy_id (reused by
+        ingest's duplicate-ID check), or None if it has no galaxy_id."""
+        import pandas as pd  # here: only ingest and assembly hash; shard jobs need not import pandas
 
-        rows = pd.util.hash_array(np.asarray(galaxy_ids, dtype=object))
-        self._h.update(rows.tobytes())
-        return rows
+        ids = None
+        for name in table.column_names:
+            col = table.column(name)
+            if is_arrow_text(col.type):
+                data = pd.util.hash_array(np.asarray(col.to_numpy(zero_copy_only=False), dtype=object))
+                ids = data if name == "galaxy_id" else ids
+            else:
+                data = np.ascontiguousarray(col.to_numpy(zero_copy_only=False))
+            self._cols.setdefault(name, hashlib.blake2b(name.encode(), digest_size=16)).update(data.tobytes())
+        return ids
 
     def hexdigest(self) -> str:
-        return self._h.hexdigest()
+        h = hashlib.blake2b(digest_size=16)
+        for name in sorted(self._cols):
+            h.update(self._cols[name].digest())
+        return h.hexdigest()
 
 
-def fingerprint(galaxy_ids) -> str:
-    """A hash of a shard's galaxy_id column, in order."""
+def fingerprint(table: pa.Table) -> str:
+    """The content fingerprint of a whole shard table."""
     f = Fingerprint()
-    f.update(galaxy_ids)
+    f.update(table)
     return f.hexdigest()
 
 
@@ -227,6 +271,21 @@ def read_fingerprint(path: str | Path) -> str:
     return meta.get(FINGERPRINT_KEY, b"").decode()
 
 
+def check_stamps(paths, key: str, expected: str, what: str) -> None:
+    """Every file in ``paths`` must carry ``expected`` under metadata ``key``;
+    otherwise StaleInputError names them all (up to five) and the fix."""
+    stale = []
+    for path in paths:
+        with _reading(path):
+            meta = pq.read_metadata(path).metadata or {}
+        if meta.get(key.encode(), b"").decode() != expected:
+            stale.append(str(path))
+    if stale:
+        shown = ", ".join(stale[:5]) + (f" and {len(stale) - 5} more" if len(stale) > 5 else "")
+        raise StaleInputError(f"{len(stale)} file(s) were {what}: {shown}. Delete them and run the same "
+                              "command again: they are rebuilt from the current inputs")
+
+
 def read_columns(path: str | Path, columns: list[str] | None = None) -> dict:
     """Read columns of a Parquet file into a dict of numpy arrays (strings as object)."""
     if columns is not None:
@@ -265,12 +324,10 @@ def read_shard(shard_path: str | Path, columns: list[str] | None = None,
     Returns (columns, fingerprint).
     """
     fp = read_fingerprint(shard_path)
+    stages = stages or {}
+    check_stamps(stages.values(), FINGERPRINT_KEY.decode(), fp, f"computed from another version of shard {shard_path}")
     out = read_columns(shard_path, columns)
-    for name, path in (stages or {}).items():
-        got = read_fingerprint(path)
-        if got != fp:
-            raise StaleInputError(f"{path} ({name}) was written for another version of shard "
-                                  f"{shard_path}; delete it and re-run")
+    for name, path in stages.items():
         out.update(read_columns(path, (stage_columns or {}).get(name)))
     return out, fp
 
@@ -309,10 +366,7 @@ def iter_shard(shard_path: str | Path, stages: dict[str, str | Path], rows: int 
     """
     fp = read_fingerprint(shard_path)
     paths = {"shard": shard_path, **stages}
-    for name, path in stages.items():
-        if read_fingerprint(path) != fp:
-            raise StaleInputError(f"{path} ({name}) was written for another version of shard "
-                                  f"{shard_path}; delete it and re-run")
+    check_stamps(stages.values(), FINGERPRINT_KEY.decode(), fp, f"computed from another version of shard {shard_path}")
     units = {}
     for path in paths.values():
         units.update({f.name: f.metadata[b"unit"].decode() for f in pq.read_schema(path)

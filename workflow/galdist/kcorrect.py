@@ -40,7 +40,7 @@ from pathlib import Path
 import numpy as np
 
 from . import flags as fl
-from .io import atomic_path
+from .io import atomic_path, reading_grid
 from .filters import band_average
 from .flags import KCorr
 
@@ -256,7 +256,7 @@ class KGrid:
 
     @classmethod
     def from_file(cls, path: str | Path) -> KGrid:
-        with np.load(path, allow_pickle=False) as d:
+        with reading_grid(path), np.load(path, allow_pickle=False) as d:
             bands = [str(b) for b in d["bands"]]
             colour = d["colour"] if d["colour"].size else None
             pair = tuple(str(c) for c in d["colour_pair"]) or None

@@ -88,7 +88,7 @@ def provenance(config: dict, calibrations: dict, ingest_summary: dict, repo: Pat
             versions[name] = None
     return {
         "config": config,
-        "calibrations": {m: {"path": c.path, "name": c.name, "sha256": c.sha256, "text": c.text,
+        "calibrations": {m: {"as_configured": config.get(m, {}).get("calibration", c.path), "name": c.name, "sha256": c.sha256, "text": c.text,
                              "reference": c.citation()} for m, c in calibrations.items()},
         "inputs": ingest_summary.get("inputs", []),
         "packages": versions,

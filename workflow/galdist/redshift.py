@@ -28,7 +28,7 @@ from astropy import units as _u
 from . import flags as _flags
 from .ebv_maps import galactic_coordinates
 from .distance import mpc_from_mu
-from .io import atomic_path
+from .io import atomic_path, reading_grid
 from .uncertainty import quadrature
 
 C_KMS = _const.c.to_value(_u.km / _u.s)  # 299792.458 km/s (exact, SI definition)
@@ -153,7 +153,7 @@ class MuGrid:
     @classmethod
     def load(cls, path: str | Path) -> "MuGrid":
         """Read a grid written by ``save``."""
-        with np.load(path, allow_pickle=False) as data:
+        with reading_grid(path), np.load(path, allow_pickle=False) as data:
             meta = json.loads(str(data["meta"]))
             h0, q0, j0 = meta.pop("h0"), meta.pop("q0"), meta.pop("j0")
             return cls(z=data["z"].copy(), mu_values=data["mu"].copy(),

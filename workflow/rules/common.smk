@@ -9,7 +9,8 @@ sys.path.insert(0, str(Path(workflow.basedir) / "workflow"))
 from snakemake.exceptions import WorkflowError
 
 from galdist import config as gconfig
-from galdist import preflight
+from galdist import integrity, preflight
+from galdist import kcorrect as gkcorrect
 
 DEMO_CATALOG = "results/demo-input/corvid_reach_survey.parquet"
 
@@ -45,10 +46,33 @@ GRIDS = f"{RUN}/grids"
 EXTINCTION_MAPS = gconfig.extinction_map_files(config)
 SBF_CAL = CALIBRATIONS["sbf"].name if "sbf" in CALIBRATIONS else None
 TF_CAL = CALIBRATIONS["tully_fisher"].name if "tully_fisher" in CALIBRATIONS else None
+# Content, not modification times: the digest of every external input is a parameter of
+# the rules that read it, so a changed file re-runs them even with an older time stamp.
+_DIGEST_CACHE = f"{config['output_dir']}/.galdist-digests.json"
+
+
+def content_digest(paths):
+    return integrity.content_digest([p for p in paths if p], _DIGEST_CACHE)
+
+
+CATALOG_DIGEST = ("built by the workflow" if CATALOG_PATHS == [DEMO_CATALOG]
+                  else content_digest(CATALOG_PATHS))
+TEMPLATES_DIGEST = content_digest([config["kcorrect"]["templates"] or gkcorrect.DEFAULT_TEMPLATE_FILE])
+MAPS_DIGEST = content_digest(EXTINCTION_MAPS)
+FILTERS_DIGEST = content_digest([b["filter"] for b in config["bands"].values() if Path(b["filter"]).is_file()])
+# a missing, truncated or replaced ingest shard: forget the ingest, so it runs again
+if workflow.is_main_process:
+    _damage = integrity.ingest_damage(f"{SHARDS}/ingest", f"{RUN}/ingest_summary.json")
+    if _damage:
+        print(f"galdist: {_damage}: ingest will run again", file=sys.stderr)
+        Path(f"{RUN}/ingest_summary.json").unlink()
+
 # resolved files: a bare name in config is a calibration or table shipped with galdist
 CALIBRATION_FILES = {m: cal.path for m, cal in CALIBRATIONS.items()}
 EXTINCTION_TABLE = (str(gconfig.extinction_table_file(config))
                     if config["extinction"]["coefficients"] == "table" else None)
+CALIBRATION_DIGESTS = {m: cal.sha256 for m, cal in CALIBRATIONS.items()}
+TABLE_DIGEST = content_digest([EXTINCTION_TABLE])
 
 
 def shard_path(wildcards):

@@ -44,13 +44,16 @@ rule assemble:
         calibrations=list(CALIBRATION_FILES.values()),
         **{stage: per_shard(pattern) for stage, pattern in STAGE_SHARDS.items()},
     output:
-        distances=f"{RUN}/distances.parquet",
-        summary=f"{RUN}/summary.json",
-        plot_sample=f"{RUN}/plot_sample.parquet",
+        # update(): Snakemake keeps the old product until the new one replaces it (and puts
+        # it back if the job fails), instead of deleting it when the job starts
+        distances=update(f"{RUN}/distances.parquet"),
+        summary=update(f"{RUN}/summary.json"),
+        plot_sample=update(f"{RUN}/plot_sample.parquet"),
     params:
         crosscheck=config["crosscheck"],
         methods=METHODS,
         calibrations=CALIBRATION_FILES,
+        content=CALIBRATION_DIGESTS,
     log:
         f"{LOGS}/assemble.log",
     benchmark:
@@ -71,6 +74,7 @@ rule plots:
     params:
         methods=METHODS,
         calibrations=CALIBRATION_FILES,
+        content=CALIBRATION_DIGESTS,
         min_cz=config["crosscheck"]["min_cz_kms"],
     log:
         f"{LOGS}/plots.log",

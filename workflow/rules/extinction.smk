@@ -9,6 +9,7 @@ rule extinction_coefficients:
     params:
         extinction=config["extinction"],
         bands=config["bands"],
+        content=[TABLE_DIGEST, FILTERS_DIGEST],
     log:
         f"{LOGS}/extinction_coefficients.log",
     benchmark:
@@ -26,6 +27,7 @@ rule extinction:
         f"{SHARDS}/extinction/part-{{shard}}.parquet",
     params:
         extinction=config["extinction"],
+        content=MAPS_DIGEST,
     log:
         f"{LOGS}/extinction/part-{{shard}}.log",
     benchmark:

@@ -9,6 +9,7 @@ checkpoint ingest:
         shards=directory(f"{SHARDS}/ingest"),
         summary=f"{RUN}/ingest_summary.json",
     params:
+        content=CATALOG_DIGEST,  # re-run on a changed catalog whatever its time stamp
         fmt=CATALOG_FORMAT,
         columns=config["columns"],
         units=config["units"],

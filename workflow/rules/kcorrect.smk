@@ -9,6 +9,7 @@ rule kcorrect_grid:
     params:
         kcorrect=config["kcorrect"],
         bands=config["bands"],
+        content=[TEMPLATES_DIGEST, FILTERS_DIGEST],
     log:
         f"{LOGS}/kcorrect_grid.log",
     benchmark:

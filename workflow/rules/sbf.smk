@@ -16,6 +16,7 @@ if "sbf" in METHODS:
             f"{SHARDS}/sbf/{SBF_CAL}/part-{{shard}}.parquet",
         params:
             sbf=config["sbf"],
+            content=CALIBRATION_DIGESTS["sbf"],  # an edited calibration re-runs, whatever its time stamp
             bands=config["bands"],
         log:
             f"{LOGS}/sbf/{SBF_CAL}/part-{{shard}}.log",

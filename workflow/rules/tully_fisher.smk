@@ -16,6 +16,7 @@ if "tully_fisher" in METHODS:
             f"{SHARDS}/tully_fisher/{TF_CAL}/part-{{shard}}.parquet",
         params:
             tully_fisher=config["tully_fisher"],
+            content=CALIBRATION_DIGESTS["tully_fisher"],  # an edited calibration re-runs, whatever its time stamp
             bands=config["bands"],
         log:
             f"{LOGS}/tully_fisher/{TF_CAL}/part-{{shard}}.log",
