@@ -189,6 +189,18 @@ def test_init_leaves_todos_that_check_refuses(tmp_path):
     assert "✗" in out and "tully_fisher.calibration" in out and "extinction.map_file" in out
 
 
+def test_init_takes_a_w20_width_and_says_so(tmp_path):
+    c = small_catalog(50, seed=6)
+    pd.DataFrame({"id": c["galaxy_id"], "ra": c["ra"], "dec": c["dec"], "z": c["z_helio"], "e_z": c["z_helio_err"],
+                  "W20": c["w50"] + 20, "e_W20": c["w50_err"], "ba": c["axis_ratio"], "e_ba": c["axis_ratio_err"],
+                  "Ks": c["mag_Ks"], "e_Ks": c["mag_Ks_err"]}).to_csv(tmp_path / "w20.csv", index=False)
+    p = propose.propose(str(tmp_path / "w20.csv"))
+    assert p.columns["w50"].value == "W20" and p.columns["w50_err"].value == "e_W20"
+    cfg = yaml.safe_load(propose.render(p))
+    assert cfg["tully_fisher"] == {"calibration": "tf_ks_masters_2008", "band": "Ks", "width_definition": "w20"}
+    assert cfg["kcorrect"]["colour_pair"] is None  # one band: no colour
+
+
 @pytest.mark.parametrize("name, role", [
     ("objname", "galaxy_id"), ("PGC", "galaxy_id"), ("_RAJ2000", "ra"), ("DEJ2000", "dec"), ("decl", "dec"),
     ("vhel", "z_helio"), ("V_helio", "z_helio"), ("cz", "z_helio"), ("W50", "w50"), ("wHI", "w50"),

@@ -284,6 +284,7 @@ def cmd_run(args) -> int:
 
     config_path = Path(args.config).resolve()
     workdir = Path.cwd()
+    profile = profile_dir(args.profile)
     user = gconfig.load(config_path)
     output_dir = user.get("output_dir") or DEFAULT_OUTPUT_DIR
     override = None if "output_dir" in user else DEFAULT_OUTPUT_DIR
@@ -298,7 +299,7 @@ def cmd_run(args) -> int:
         print_findings(problems)
     _say(f"[galdist] preflight passed ({sum(f.level == 'ok' for f in result.findings)} checks)")
     run_dir = workdir / output_dir / result.config["run"]
-    cmd = snakemake_command(config_path, workdir, profile_dir(args.profile), cores=args.cores,
+    cmd = snakemake_command(config_path, workdir, profile, cores=args.cores,
                             output_dir=override, targets=args.target or ())
     env = dict(os.environ)
     if args.dry_run:

@@ -33,7 +33,7 @@ ALIASES = {
                   "obj_id", "id", "pgc", "pgc_id", "pgcid", "pgc_no", "designation", "source_id"],
     "ra": ["ra", "raj2000", "ra_j2000", "ra2000", "ra_deg", "radeg", "ra_icrs", "alpha", "alpha_j2000"],
     "dec": ["dec", "dej2000", "de_j2000", "decj2000", "dec_j2000", "dec2000", "decl", "delta", "dec_deg",
-            "decdeg", "de", "dec_icrs", "delta_j2000"],
+            "decdeg", "de_deg", "dedeg", "de", "dec_icrs", "delta_j2000"],
     "z_helio": ["z_helio", "zhelio", "z_hel", "zhel", "z", "redshift", "z_spec", "zspec", "cz", "cz_helio",
                 "czhel", "cz_hel", "vhel", "v_hel", "v_helio", "vhelio", "velocity", "vh", "vel", "vsys", "v_sys"],
     "ebv": ["ebv", "e_b_v", "ebmv", "e_bv", "eb_v", "ebv_sfd", "sfd_ebv", "ebv_sfd98", "ebv_sf11", "ebv_mw",
@@ -49,7 +49,7 @@ ALIASES = {
                      "hubble_type", "gal_type", "galtype"],
 }
 #: canonical columns that have an error column, and its name
-ERROR_OF = {"z_helio": "z_helio_err", "ebv": "ebv_err", "w50": "w50_err", "w20": "w50_err",
+ERROR_OF = {"z_helio": "z_helio_err", "ebv": "ebv_err", "w50": "w50_err", "w20": "w20_err",
             "axis_ratio": "axis_ratio_err", "sbf_mag": "sbf_mag_err", "sbf_color": "sbf_color_err"}
 TEXT_ROLES = ("galaxy_id", "galaxy_class")
 
@@ -134,9 +134,9 @@ def match_name(name: str) -> Match | None:
 
 def match_error(name: str) -> tuple[Match, str] | None:
     """(match of the base, the error's canonical name) for a column named like an error."""
-    stripped = [(_ERR_PREFIX.sub("", name.strip(), count=1), "prefix"), (_ERR_SUFFIX.sub("", name.strip()), "suffix")]
-    for base, _ in stripped:
-        if not base or base == name.strip():
+    name = name.strip()
+    for base in (_ERR_PREFIX.sub("", name, count=1), _ERR_SUFFIX.sub("", name)):
+        if not base or base == name:
             continue
         m = match_name(base)
         if m is None:
@@ -268,12 +268,15 @@ def propose(catalog: str, run: str | None = None, output_dir: str = "galdist-res
                 chosen["galaxy_id"] = (name, Match("galaxy_id", 99, f"'{name}' is the first text column with "
                                                                      "unique values in the sample"))
                 break
-    if "w50" not in chosen and "w20" in chosen:
+    if "w50" not in chosen and "w20" in chosen:  # only a W20: it is the width, and config says so
         chosen["w50"] = chosen.pop("w20")
+        if "w20_err" in chosen:
+            chosen["w50_err"] = chosen.pop("w20_err")
         p.sections.setdefault("tully_fisher", []).append(
             ("width_definition", "w20", f"the width column '{chosen['w50'][0]}' is named as a W20"))
-    else:
-        chosen.pop("w20", None)
+    for role in ("w20", "w20_err"):
+        if role in chosen:
+            p.unused.append(f"{chosen.pop(role)[0]}: a W20 width; the W50 column is used")
     p.unused += [f"{name}: not recognised, not read" for name in ignored]
 
     # 2. values: units and sanity of what the names suggest
