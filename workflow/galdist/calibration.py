@@ -16,7 +16,7 @@ import numpy as np
 import yaml
 
 from . import shipped
-from .errors import CalibrationError
+from .errors import CalibrationError, ConfigError
 
 SCHEMA_PATH = Path(__file__).resolve().parent.parent / "schemas" / "calibration.schema.yaml"
 
@@ -86,6 +86,8 @@ def load_calibration(spec: str | Path) -> Calibration:
         path = shipped.find("calibrations", str(spec))
     except FileNotFoundError as exc:
         raise CalibrationError(str(exc)) from None
+    if path.exists() and not path.is_file():
+        _fail(path, "is not a regular file")
     try:
         text = path.read_text(encoding="utf-8")
     except OSError as exc:
@@ -96,13 +98,17 @@ def load_calibration(spec: str | Path) -> Calibration:
         data = yaml.safe_load(text)
     except yaml.YAMLError as exc:
         _fail(path, f"is not valid YAML: {exc}")
+    from .config import check_size, non_finite  # size first: both walk the expanded structure
+    try:
+        check_size(data, f"calibration file {path}")
+    except ConfigError as exc:
+        _fail(path, str(exc).split(": ", 1)[1])
     schema = yaml.safe_load(SCHEMA_PATH.read_text(encoding="utf-8"))
     errors = sorted(jsonschema.Draft202012Validator(schema).iter_errors(data), key=lambda e: list(e.path))
     if errors:
         e = errors[0]
         key = ".".join(str(p) for p in e.path) or "(top level)"
         _fail(path, f"key '{key}': {e.message}")
-    from .config import non_finite  # NaN passes every minimum/maximum test of the schema
     for key, value in non_finite(data):
         _fail(path, f"key '{key}': {value} is not a finite number")
     coeffs = np.asarray(data["coefficients"], dtype=float)

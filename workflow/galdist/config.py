@@ -102,15 +102,17 @@ def _coerce(instance, schema):
     if isinstance(instance, list) and isinstance(schema.get("items"), dict):
         return [_coerce(v, schema["items"]) for v in instance]
     if isinstance(instance, str):
-        kind = schema.get("type")
-        try:
-            if kind == "integer":
-                return int(instance)
-            if kind == "number":
-                return float(instance)
-        except ValueError:
-            return instance
-        if kind == "boolean" and instance.lower() in ("true", "false"):
+        kinds = schema.get("type")
+        kinds = set(kinds) if isinstance(kinds, list) else {kinds}
+        if "null" in kinds and instance.lower() in ("null", "none", "~"):
+            return None
+        for kind, convert in (("integer", int), ("number", float)):
+            if kind in kinds:
+                try:
+                    return convert(instance)
+                except ValueError:
+                    pass
+        if "boolean" in kinds and instance.lower() in ("true", "false"):
             return instance.lower() == "true"
     return instance
 
@@ -120,6 +122,7 @@ def validate(config: dict, schema_path: Path = CONFIG_SCHEMA) -> dict:
 
     Raises ConfigError with every problem found, one per line.
     """
+    check_size(config, "configuration")
     schema = yaml.safe_load(schema_path.read_text(encoding="utf-8"))
     _coerce(config, schema)
     errors = sorted(_Validator(schema).iter_errors(config), key=lambda e: (_key(e), e.validator))
@@ -130,6 +133,34 @@ def validate(config: dict, schema_path: Path = CONFIG_SCHEMA) -> dict:
     if lines:
         raise ConfigError("invalid configuration:\n  - " + "\n  - ".join(sorted(lines)))
     return config
+
+
+#: More values than any real configuration or calibration holds: a YAML file whose
+#: aliases expand past this (the "billion laughs" pattern) is refused unread.
+MAX_VALUES = 100_000
+
+
+def check_size(data, what: str, limit: int = MAX_VALUES) -> None:
+    """Refuse ``data`` whose values, with YAML aliases expanded, number more than ``limit``.
+
+    Counted with each shared (aliased) node's size computed once, so the count of a
+    maliciously nested file costs as little as the file itself.
+    """
+    sizes: dict[int, int] = {}
+
+    def size(node) -> int:
+        if not isinstance(node, (dict, list)):
+            return 1
+        if id(node) not in sizes:
+            sizes[id(node)] = 0  # a self-referencing node counts once (YAML allows it)
+            children = node.values() if isinstance(node, dict) else node
+            sizes[id(node)] = 1 + sum(min(size(c), limit + 1) for c in children)
+        return sizes[id(node)]
+
+    n = size(data)
+    if n > limit:
+        raise ConfigError(f"{what}: YAML aliases expand to more than {limit} values; write the values out "
+                          "plainly (anchors and aliases that multiply are refused)")
 
 
 def non_finite(data, path: str = ""):
@@ -161,8 +192,12 @@ def check_inputs_exist(paths: list[str], buildable: set[str] = frozenset()) -> N
     if missing:
         raise ConfigError(
             "config key 'catalog': input file not found: " + ", ".join(missing)
-            + " (paths are relative to the directory snakemake runs in; "
+            + " (paths are relative to the directory galdist runs in; "
               "no catalog is ever downloaded)")
+    odd = [p for p in paths if Path(p).exists() and not (Path(p).is_file() or Path(p).is_dir())]
+    if odd:
+        raise ConfigError("config key 'catalog': not a regular file or a folder: " + ", ".join(odd)
+                          + " (a pipe, device or socket cannot be a catalog)")
 
 
 def check_bands(config: dict) -> None:
@@ -171,6 +206,10 @@ def check_bands(config: dict) -> None:
 
     problems = []
     for label, band in config["bands"].items():
+        spec = Path(band["filter"])
+        if spec.exists() and not spec.is_file():
+            problems.append(f"config key 'bands.{label}.filter': {spec} is not a regular file")
+            continue
         try:
             load_filter(band["filter"])
         except FilterError as exc:
@@ -180,7 +219,9 @@ def check_bands(config: dict) -> None:
 
 
 def load(path: str | Path) -> dict:
-    """Read a config file with safe YAML."""
+    """Read a config file with safe YAML (a regular file, its aliases bounded)."""
+    if Path(path).exists() and not Path(path).is_file():
+        raise ConfigError(f"config file {path} is not a regular file")
     try:
         data = yaml.safe_load(Path(path).read_text(encoding="utf-8"))
     except yaml.YAMLError as exc:
@@ -191,6 +232,7 @@ def load(path: str | Path) -> dict:
         raise ConfigError(f"config file {path} cannot be read ({exc.strerror})") from exc
     if not isinstance(data, dict):
         raise ConfigError(f"config file {path} must hold a mapping of keys")
+    check_size(data, f"config file {path}")
     return data
 
 
@@ -226,6 +268,36 @@ def extinction_map_files(config: dict) -> list[str]:
             "zea": [ext["map_north"], ext["map_south"]]}[ext["source"]]
 
 
+def _stage_settings(config: dict) -> list[str]:
+    """Settings the stages would refuse inside a job, checked now. The slow-to-import
+    checks (extinction law, named cosmology, template library) run only where the
+    setting differs from the schema default, which is valid by construction."""
+    from . import extinction, kcorrect
+
+    problems = []
+    ext, kc, cosmo = config["extinction"], config["kcorrect"], config["redshift"]["cosmology"]
+
+    def attempt(fn, *args):
+        try:
+            fn(*args)
+        except (ValueError, FileNotFoundError) as exc:
+            problems.append(f"config: {exc}")
+
+    attempt(kcorrect.grid_redshifts, 0.0, kc["z_max"], kc["dz"])
+    if ext["coefficients"] == "law" and ext["r_v"] != 3.1:
+        attempt(extinction.extinction_law, ext["law"], ext["r_v"])
+    if ext["coefficients"] == "table" and set(config["bands"]) <= set(ext["table_keys"]):
+        attempt(lambda: extinction.table_coefficients(extinction_table_file(config),
+                                                      {b: ext["table_keys"][b] for b in config["bands"]}))
+    if cosmo["name"] is not None:
+        from .redshift import make_cosmology
+        attempt(make_cosmology, cosmo["name"], cosmo["H0"], cosmo["Om0"])
+    if kc["templates"] is not None or kc["default_template"] != "exp_tau5gyr":
+        if kc["templates"] is None or Path(kc["templates"]).is_file():
+            attempt(lambda: kcorrect.load_templates(kc["templates"]).index(kc["default_template"]))
+    return problems
+
+
 def check_stages(config: dict) -> dict:
     """Cross-key checks the schema cannot express; returns the loaded calibrations by method.
 
@@ -252,21 +324,24 @@ def check_stages(config: dict) -> dict:
         if f and not Path(f).exists():
             problems.append(f"config key 'extinction': map file not found: {f} (galdist never downloads maps; "
                             "see the README on pointing at your own map)")
+        elif f and not Path(f).is_file():
+            problems.append(f"config key 'extinction': map {f} is not a regular file")
     if ext["coefficients"] == "table":
         try:
             if not extinction_table_file(config).is_file():
-                problems.append(f"config key 'extinction.table': file not found: {ext['table']}")
+                problems.append(f"config key 'extinction.table': no regular file at {ext['table']}")
         except FileNotFoundError as exc:
             problems.append(f"config key 'extinction.table': {exc}")
         missing = sorted(bands - set(ext["table_keys"]))
         if missing:
             problems.append(f"config key 'extinction.table_keys': give the table key of band(s) "
                             f"{', '.join(missing)} (e.g. {{V: landolt-V}})")
+    problems += _stage_settings(config)
     kc = config["kcorrect"]
     for label in kc["colour_pair"] or []:
         need_band("kcorrect.colour_pair", label)
-    if kc["templates"] and not Path(kc["templates"]).exists():
-        problems.append(f"config key 'kcorrect.templates': file not found: {kc['templates']}")
+    if kc["templates"] and not Path(kc["templates"]).is_file():
+        problems.append(f"config key 'kcorrect.templates': no regular file at {kc['templates']}")
 
     calibrations = {}
     expected = {"tully_fisher": "tully_fisher", "sbf": "sbf"}
@@ -278,7 +353,7 @@ def check_stages(config: dict) -> dict:
             problems.append(f"config key '{method}.calibration': {exc}")
             continue
         if not path.is_file():
-            problems.append(f"config key '{method}.calibration': file not found: {path} (a path is relative "
+            problems.append(f"config key '{method}.calibration': no regular file at {path} (a path is relative "
                             "to the directory galdist runs in; a bare name is a shipped calibration)")
             continue
         cal = load_calibration(path)

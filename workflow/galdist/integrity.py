@@ -77,10 +77,10 @@ def content_digest(paths, cache_path: str | Path | None = None) -> str:
 
 def ingest_damage(shard_dir: str | Path, summary_path: str | Path) -> str | None:
     """Why the ingest shards no longer match what ingest recorded, or None if they do
-    (or if ingest has not run: nothing to compare)."""
+    (or if ingest has not run yet)."""
     shard_dir, summary_path = Path(shard_dir), Path(summary_path)
     if not summary_path.is_file():
-        return None
+        return f"{summary_path} is missing" if shard_dir.is_dir() else None
     try:
         recorded = json.loads(summary_path.read_text(encoding="utf-8"))["shard_files"]
     except (OSError, ValueError, KeyError, TypeError):
@@ -101,3 +101,13 @@ def ingest_damage(shard_dir: str | Path, summary_path: str | Path) -> str | None
     if extra:
         return f"{shard_dir} holds shards ingest did not write ({', '.join(sorted(extra)[:3])})"
     return None
+
+
+def mark_for_rerun(outputs) -> None:
+    """Make Snakemake re-run the job of ``outputs`` by back-dating them (and a folder's
+    time-stamp file) to 1970: then its inputs are newer. Used only after a content
+    check has found the outputs damaged."""
+    for out in map(Path, outputs):
+        for path in (out, out / ".snakemake_timestamp") if out.is_dir() else (out,):
+            if path.exists():
+                os.utime(path, (0, 0), follow_symlinks=False)

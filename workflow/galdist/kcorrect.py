@@ -265,6 +265,17 @@ class KGrid:
                        colour_pair=pair, meta=json.loads(str(d["meta_json"])))
 
 
+def grid_redshifts(z_min: float, z_max: float, dz: float) -> np.ndarray:
+    """The K(z) grid's redshifts; ValueError naming the config key if dz does not divide the span."""
+    if not (np.isfinite(z_min) and np.isfinite(z_max) and z_min > -1 and z_max > z_min):
+        raise ValueError(f"kcorrect.z_max: need -1 < z_min < z_max (got {z_min}, {z_max})")
+    n = (z_max - z_min) / dz
+    if not (dz > 0 and abs(n - round(n)) < 1e-6 and round(n) >= 1):
+        raise ValueError(f"kcorrect.dz: must be > 0 and divide z_max - z_min (got dz = {dz}, "
+                         f"z_max - z_min = {z_max - z_min})")
+    return np.linspace(z_min, z_max, int(round(n)) + 1)
+
+
 def build_grids(templates: Templates, filters: dict, colour_pair: tuple[str, str] | None = None,
                 ab_minus_vega: dict | None = None, z_min: float = 0.0, z_max: float = 0.5,
                 dz: float = 0.001) -> KGrid:
@@ -277,12 +288,7 @@ def build_grids(templates: Templates, filters: dict, colour_pair: tuple[str, str
     The colour must be strictly monotonic along the template sequence at every
     grid redshift (else ValueError: the pair cannot rank the templates).
     """
-    if not (np.isfinite(z_min) and np.isfinite(z_max) and z_min > -1 and z_max > z_min):
-        raise ValueError(f"kcorrect.z_max: need -1 < z_min < z_max (got {z_min}, {z_max})")
-    n = (z_max - z_min) / dz
-    if not (dz > 0 and abs(n - round(n)) < 1e-6 and round(n) >= 1):
-        raise ValueError(f"kcorrect.dz: must be > 0 and divide z_max - z_min (got {dz})")
-    z = np.linspace(z_min, z_max, int(round(n)) + 1)
+    z = grid_redshifts(z_min, z_max, dz)
     offsets = dict(ab_minus_vega or {})
     if colour_pair is not None:
         colour_pair = tuple(colour_pair)

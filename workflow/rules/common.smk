@@ -60,12 +60,14 @@ CATALOG_DIGEST = ("built by the workflow" if CATALOG_PATHS == [DEMO_CATALOG]
 TEMPLATES_DIGEST = content_digest([config["kcorrect"]["templates"] or gkcorrect.DEFAULT_TEMPLATE_FILE])
 MAPS_DIGEST = content_digest(EXTINCTION_MAPS)
 FILTERS_DIGEST = content_digest([b["filter"] for b in config["bands"].values() if Path(b["filter"]).is_file()])
-# a missing, truncated or replaced ingest shard: forget the ingest, so it runs again
+# a missing, truncated or replaced ingest shard: ingest runs again, and everything after
+# it. Snakemake alone would not notice a file missing inside the checkpoint's folder;
+# galdist's content check decides, and back-dates ingest's own outputs to tell it.
 if workflow.is_main_process:
     _damage = integrity.ingest_damage(f"{SHARDS}/ingest", f"{RUN}/ingest_summary.json")
     if _damage:
         print(f"galdist: {_damage}: ingest will run again", file=sys.stderr)
-        Path(f"{RUN}/ingest_summary.json").unlink()
+        integrity.mark_for_rerun([f"{RUN}/ingest_summary.json", f"{SHARDS}/ingest"])
 
 # resolved files: a bare name in config is a calibration or table shipped with galdist
 CALIBRATION_FILES = {m: cal.path for m, cal in CALIBRATIONS.items()}
