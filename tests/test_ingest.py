@@ -246,7 +246,7 @@ def test_duplicate_ids_found_across_shards_and_batches(tmp_path):
 def test_empty_id_is_structural(tmp_path):
     cols = small_catalog(4)
     cols["galaxy_id"][2] = ""
-    with pytest.raises(ingest.IngestError, match=r"empty in 1 rows \(first data rows: 3\)"):
+    with pytest.raises(ingest.IngestError, match=r"c.parquet: .*empty in 1 rows \(first data rows: 3;"):
         run_ingest(tmp_path, [write_parquet(cols, tmp_path / "c.parquet")])
 
 

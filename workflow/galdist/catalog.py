@@ -3,6 +3,11 @@
 Parquet (a file or a directory dataset), FITS binary tables, CSV and ECSV are read
 in row batches; the whole catalog is never in memory. VOTable is XML and is parsed
 whole by astropy: keep it for small catalogs. Nothing here touches the network.
+
+A Parquet directory is a list of files (``source_files``), each described and read on
+its own; files and folders whose name starts with "." or "_" (``.staging/``,
+``_temporary/``, ``_SUCCESS``) are not part of it. Missing values arrive as NaN or as
+nulls of a pyarrow array: FITS TNULL and masked VOTable integers included.
 """
 
 from __future__ import annotations
@@ -27,7 +32,8 @@ _SUFFIXES = {".parquet": "parquet", ".pq": "parquet", ".fits": "fits", ".fit": "
 
 @dataclass(frozen=True)
 class SourceColumn:
-    """A column as the file declares it: kind is 'numeric', 'text' or 'unknown' (CSV)."""
+    """A column as the file declares it: kind is 'numeric', 'text', 'unknown' (CSV),
+    'boolean', 'vector (...)' (several values per row), or another type's description."""
 
     name: str
     kind: str
@@ -51,21 +57,67 @@ def detect_format(path: str | Path, declared: str = "auto") -> str:
     return fmt
 
 
+def _hidden(relative: Path) -> bool:
+    """A path under a dataset directory that is not part of it (a leading '.' or '_')."""
+    return any(part.startswith((".", "_")) for part in relative.parts)
+
+
 def _parquet_files(path: Path) -> list[Path]:
     if path.is_dir():
-        files = sorted(p for p in path.rglob("*.parquet") if not p.name.startswith("."))
+        files = sorted(p for p in path.rglob("*.parquet") if p.is_file() and not _hidden(p.relative_to(path)))
         if not files:
-            raise CatalogError(f"catalog {path}: directory holds no .parquet files")
+            raise CatalogError(f"catalog {path}: directory holds no .parquet files (files and folders "
+                               "whose name starts with '.' or '_' are ignored)")
         return files
     return [path]
 
 
+def source_files(path: str | Path, fmt: str) -> list[Path]:
+    """The files a catalog path stands for: itself, or every Parquet file of a directory."""
+    path = Path(path)
+    return _parquet_files(path) if fmt == "parquet" else [path]
+
+
 def _arrow_kind(t: pa.DataType) -> str:
+    if pa.types.is_dictionary(t):
+        return _arrow_kind(t.value_type)
     if pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t) or pa.types.is_null(t):
         return "numeric"
     if pa.types.is_string(t) or pa.types.is_large_string(t):
         return "text"
+    if pa.types.is_boolean(t):
+        return "boolean"
+    if pa.types.is_list(t) or pa.types.is_large_list(t) or pa.types.is_fixed_size_list(t):
+        return f"vector (Parquet type {t})"
     return str(t)
+
+
+def _fits_kind(col) -> str:
+    """'text', 'numeric', 'boolean', 'vector (...)' or a description, from TFORM (and TDIM)."""
+    code, repeat = col.format.format, col.format.repeat
+    if code == "A":
+        return "text"
+    if code == "L":
+        return "boolean"
+    if code in "BIJKED" and (repeat == 1 and not col.dim):
+        return "numeric"
+    if code in "BIJKED":
+        return f"vector ({repeat} values per row, FITS format '{col.format}')"
+    names = {"C": "complex", "M": "complex", "X": "bit array", "P": "variable-length array",
+             "Q": "variable-length array"}
+    return f"{names.get(code, 'FITS type')} (FITS format '{col.format}')"
+
+
+def _votable_kind(f) -> str:
+    if f.datatype in ("char", "unicodeChar"):
+        return "text"
+    if f.datatype == "boolean":
+        return "boolean"
+    if f.arraysize not in (None, "1"):
+        return f"vector (VOTable arraysize {f.arraysize})"
+    if f.datatype in ("floatComplex", "doubleComplex"):
+        return f"complex (VOTable datatype {f.datatype})"
+    return "numeric"
 
 
 def _ecsv_header(path: Path) -> tuple[dict, int]:
@@ -94,11 +146,24 @@ def _numpy_kind(dtype: np.dtype) -> str:
 
 
 def describe(path: str | Path, fmt: str) -> dict[str, SourceColumn]:
-    """The columns a file declares, without reading its rows (VOTable excepted)."""
+    """The columns a file declares, without reading its rows (VOTable excepted).
+
+    For a Parquet directory: the columns every file declares, each with its unit where
+    all files agree on it (``ingest.plan`` checks the files one by one).
+    """
     path = Path(path)
+    if fmt == "parquet" and path.is_dir():
+        described = [describe(f, fmt) for f in _parquet_files(path)]
+        common = {}
+        for name, col in described[0].items():
+            seen = [d.get(name) for d in described]
+            if all(c is not None and c.kind == col.kind for c in seen):
+                unit = col.unit if all(c.unit == col.unit for c in seen) else None
+                common[name] = SourceColumn(name, col.kind, unit)
+        return common
     try:
         if fmt == "parquet":
-            schema = pq.read_schema(_parquet_files(path)[0])
+            schema = pq.read_schema(path)
             return {f.name: SourceColumn(f.name, _arrow_kind(f.type),
                                          (f.metadata or {}).get(b"unit", b"").decode() or None)
                     for f in schema}
@@ -106,8 +171,7 @@ def describe(path: str | Path, fmt: str) -> dict[str, SourceColumn]:
             from astropy.io import fits
             with fits.open(path, memmap=True) as hdul:
                 hdu = _first_table(hdul, path)
-                return {c.name: SourceColumn(c.name, "text" if "A" in c.format else "numeric", c.unit or None)
-                        for c in hdu.columns}
+                return {c.name: SourceColumn(c.name, _fits_kind(c), c.unit or None) for c in hdu.columns}
         if fmt == "csv":
             reader = pacsv.open_csv(path, read_options=pacsv.ReadOptions(block_size=1 << 16))
             names = reader.schema.names
@@ -116,7 +180,7 @@ def describe(path: str | Path, fmt: str) -> dict[str, SourceColumn]:
             header, _ = _ecsv_header(path)
             cols = {}
             for c in header.get("datatype", []):
-                kind = "text" if c.get("datatype") == "string" else "numeric"
+                kind = {"string": "text", "bool": "boolean"}.get(c.get("datatype"), "numeric")
                 if c.get("subtype"):  # JSON-encoded objects or arrays (astropy's object columns)
                     fix = ".astype(str)" if kind == "text" else " as a plain number column"
                     kind = (f"ECSV subtype {c['subtype']!r} (JSON-encoded values; write it as "
@@ -126,8 +190,7 @@ def describe(path: str | Path, fmt: str) -> dict[str, SourceColumn]:
         if fmt == "votable":
             from astropy.io.votable import parse_single_table
             table = parse_single_table(str(path))
-            return {f.name: SourceColumn(f.name, "text" if f.datatype in ("char", "unicodeChar") else "numeric",
-                                         str(f.unit) if f.unit is not None else None)
+            return {f.name: SourceColumn(f.name, _votable_kind(f), str(f.unit) if f.unit is not None else None)
                     for f in table.fields}
     except CatalogError:
         raise
@@ -156,6 +219,53 @@ def _native(arr: np.ndarray) -> np.ndarray:
     return arr
 
 
+def _fits_values(part, col, path: Path, first_row: int):
+    """One FITS column of a row slice: scaled values; TNULL (integers) and NaN are missing;
+    text decoded as UTF-8 (FITS asks for ASCII, which UTF-8 contains)."""
+    values = part.field(col.name)
+    if col.format.format == "A":
+        return _fits_text(np.asarray(values), col.name, path, first_row)
+    if col.null is not None and col.format.format in "BIJK":
+        raw = np.rec.recarray.field(part, col.name)  # the stored integers, before TSCAL/TZERO
+        try:
+            missing = raw == int(col.null)
+        except (TypeError, ValueError):
+            raise CatalogError(f"catalog {path}: column '{col.name}' has TNULL {col.null!r}, not an integer; "
+                               "fix the header (TNULL of a binary table is an integer)") from None
+        if missing.any():
+            return pa.array(_native(values), mask=np.asarray(missing, dtype=bool))
+    return _native(values)
+
+
+def _fits_text(values: np.ndarray, name: str, path: Path, first_row: int) -> np.ndarray:
+    if values.dtype.kind != "S":
+        return _native(values)
+    try:
+        text = values.astype(str)  # ASCII: the common case, vectorised
+    except UnicodeDecodeError:
+        decoded = []
+        for i, b in enumerate(values.tolist()):
+            try:
+                decoded.append(b.decode("utf-8").strip())
+            except UnicodeDecodeError:
+                raise CatalogError(f"catalog {path}: column '{name}' row {first_row + i + 1} holds bytes that "
+                                   f"are not UTF-8 text ({b[:40]!r}); re-write the column as ASCII or "
+                                   "UTF-8") from None
+        text = np.array(decoded, dtype=object)
+    return np.char.strip(text).astype(object) if text.dtype.kind == "U" else text
+
+
+def _votable_values(column):
+    """A VOTable column of a row slice; masked numbers are missing (NaN or null), masked text is ''."""
+    data = np.asarray(np.ma.getdata(column))
+    mask = np.ma.getmaskarray(column)
+    if data.ndim == 1 and data.dtype.kind in "iub" and mask.any():
+        return pa.array(_native(data), mask=mask)
+    if data.dtype.kind == "f":
+        return _native(np.ma.filled(column, np.nan))
+    return _native(np.ma.filled(column))
+
+
 def iter_batches(path: str | Path, fmt: str, columns: list[str], batch_rows: int) -> Iterator[dict]:
     """Yield dicts column -> array (numpy or pyarrow) of at most ``batch_rows`` rows, in file order."""
     path = Path(path)
@@ -172,9 +282,10 @@ def iter_batches(path: str | Path, fmt: str, columns: list[str], batch_rows: int
             with fits.open(path, memmap=True) as hdul:
                 hdu = _first_table(hdul, path)
                 n = hdu.header["NAXIS2"]
+                described = [(c, hdu.columns[c]) for c in columns]
                 for start in range(0, n, batch_rows):
-                    stop = min(n, start + batch_rows)
-                    yield {c: _native(hdu.data.field(c)[start:stop]) for c in columns}
+                    part = hdu.data[start:min(n, start + batch_rows)]  # a view: only these rows are scaled
+                    yield {c: _fits_values(part, col, path, start) for c, col in described}
         elif fmt in ("csv", "ecsv"):
             read, parse = pacsv.ReadOptions(block_size=1 << 24), pacsv.ParseOptions()
             if fmt == "ecsv":
@@ -196,8 +307,7 @@ def iter_batches(path: str | Path, fmt: str, columns: list[str], batch_rows: int
             table = parse_single_table(str(path)).to_table()
             for start in range(0, len(table), batch_rows):
                 part = table[start:start + batch_rows]
-                yield {c: _native(np.ma.filled(part[c], np.nan) if part[c].dtype.kind == "f"
-                                  else np.ma.filled(part[c])) for c in columns}
+                yield {c: _votable_values(part[c]) for c in columns}
         else:
             raise CatalogError(f"catalog {path}: unknown format '{fmt}'")
     except CatalogError:

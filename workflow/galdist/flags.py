@@ -58,29 +58,37 @@ class Quality(_Documented):
                         "fix the coordinates; extinction and the CMB frame need them")
     REDSHIFT_INVALID = (1, "z_helio missing, non-finite, < 0 or > 1",
                         "check the redshift; no redshift distance or K-correction is possible")
-    REDSHIFT_ERR_INVALID = (2, "z_helio_err missing, non-finite or negative",
+    REDSHIFT_ERR_INVALID = (2, "z_helio_err missing, non-finite, negative or > 1",
                             "supply an error; mu_z error then omits the measurement term")
     MAG_INVALID = (3, "a band magnitude is infinite, outside [-10, 40], or missing while its error is given",
                    "the methods using that band get no distance for this row")
-    MAG_ERR_INVALID = (4, "a magnitude error is negative, infinite, or missing while the magnitude is given",
+    MAG_ERR_INVALID = (4, "a magnitude error is negative, > 10 mag, infinite, or missing while the magnitude "
+                          "is given",
                        "supply errors; distance errors omit that term")
-    WIDTH_INVALID = (5, "w50 <= 0, > 2000 km/s, infinite, or missing while other TF inputs are given",
+    WIDTH_INVALID = (5, "w50 < 1 km/s (narrower than thermal broadening of cold HI), > 2000 km/s, infinite, "
+                        "or missing while other TF inputs are given",
                      "no Tully-Fisher distance for this row")
-    WIDTH_ERR_INVALID = (6, "w50_err negative, infinite, or missing while other TF inputs are given",
+    WIDTH_ERR_INVALID = (6, "w50_err negative, > 2000 km/s, infinite, or missing while other TF inputs are "
+                            "given",
                          "supply an error; TF error omits the width term")
-    AXIS_RATIO_INVALID = (7, "axis_ratio outside (0, 1], infinite, or missing while other TF inputs are given",
+    AXIS_RATIO_INVALID = (7, "axis_ratio outside [0.01, 1] (no observed disc is thinner than 0.01), infinite, "
+                             "or missing while other TF inputs are given",
                           "no inclination, hence no Tully-Fisher distance")
-    AXIS_RATIO_ERR_INVALID = (8, "axis_ratio_err negative, infinite, or missing while other TF inputs are given",
+    AXIS_RATIO_ERR_INVALID = (8, "axis_ratio_err negative, > 1, infinite, or missing while other TF inputs are "
+                                 "given",
                               "supply an error; TF error omits the inclination term")
     SBF_MAG_INVALID = (9, "sbf_mag outside [-10, 50], infinite, or missing while other SBF inputs are given",
                        "no SBF distance for this row")
     SBF_COLOR_INVALID = (10, "sbf_color outside [-2, 5], infinite, or missing while other SBF inputs are given",
                          "no SBF distance for this row")
-    SBF_ERR_INVALID = (11, "sbf_mag_err or sbf_color_err negative, infinite, or missing while other SBF inputs are given",
+    SBF_ERR_INVALID = (11, "sbf_mag_err or sbf_color_err negative, > 10 mag, infinite, or missing while other "
+                           "SBF inputs are given",
                        "supply errors; SBF error omits that term")
-    EBV_INVALID = (12, "catalog ebv negative or infinite, or ebv_err negative, infinite or missing while ebv is given",
+    EBV_INVALID = (12, "catalog ebv negative, > 10 mag (A_V ~ 31 mag: no usable correction) or infinite, or "
+                       "ebv_err negative, > 10 mag, infinite or missing while ebv is given",
                    "no Galactic extinction correction from the catalog for this row")
-    OPTIONAL_INVALID = (13, "an optional numeric column (hi_flux, w50_resolution) is negative or infinite",
+    OPTIONAL_INVALID = (13, "an optional numeric column (hi_flux, w50_resolution) is negative, infinite or "
+                            "absurdly large (hi_flux > 1e7 Jy km/s, w50_resolution > 500 km/s)",
                         "the step that needs it is skipped for this row")
 
 

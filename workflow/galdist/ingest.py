@@ -21,7 +21,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from . import flags as F
-from .catalog import CatalogError, describe, detect_format, iter_batches
+from .catalog import CatalogError, describe, detect_format, iter_batches, source_files
 from .columns import Column, OPTIONAL, all_columns, required_columns
 from .errors import IngestError
 from .io import field as arrow_field
@@ -31,13 +31,36 @@ from .io import (INTERMEDIATE_COMPRESSION, AtomicParquetWriter, Fingerprint, Rec
 log = logging.getLogger(__name__)
 C_KMS = 299792.458
 
+# Bounds of a usable input value (canonical units). Outside them a value is absurd, not
+# merely unusual: it is flagged and set to NaN like a missing one. Common practice
+# unless a source is named; the flag texts in galdist.flags.Quality say the same.
 MAG_RANGE = (-10.0, 40.0)
+MAG_ERR_MAX = 10.0  # mag: an error of 10 mag carries no information about the magnitude
 SBF_MAG_RANGE = (-10.0, 50.0)
 SBF_COLOR_RANGE = (-2.0, 5.0)
-W50_MAX = 2000.0
+SBF_ERR_MAX = 10.0  # mag
+Z_ERR_MAX = 1.0  # larger than the whole allowed range of z_helio
+W50_MIN = 1.0  # km/s: narrower than the thermal FWHM of cold (100 K) HI, 2.1 km/s (kinetic theory)
+W50_MAX = 2000.0  # km/s
+W50_ERR_MAX = W50_MAX  # km/s: an error wider than the widest line
+AXIS_RATIO_MIN = 0.01  # no observed disc is that thin (the flattest edge-on discs reach b/a ~ 0.05, from memory)
+AXIS_RATIO_ERR_MAX = 1.0  # larger than the whole range of b/a
+EBV_MAX = 10.0  # mag: A_V ~ 31 mag; no extinction correction of that size is usable
+HI_FLUX_MAX = 1e7  # Jy km/s: ~10x the Large Magellanic Cloud, the brightest HI source in the sky (~1e6, from memory)
+W50_RESOLUTION_MAX = 500.0  # km/s: 10x coarser than any HI survey's channels (tens of km/s at most)
 # words that mean "no value" in a numeric text column (pyarrow's CSV null words, lower case)
 MISSING_WORDS = ["nan", "-nan", "null", "none", "na", "n/a", "#n/a", "#n/a n/a", "#na", "-", "-1.#ind",
                  "-1.#qnan", "1.#ind", "1.#qnan"]
+
+
+@dataclass(frozen=True)
+class SourceFile:
+    """One file to read (a file of a Parquet directory too), with its own units and types."""
+
+    path: str
+    catalog: str  # the catalog path it belongs to, as configured
+    units: dict[str, str]  # canonical -> unit of this file's column (config ``units`` first)
+    kinds: dict[str, str]  # canonical -> kind the file declares (catalog.SourceColumn.kind)
 
 
 @dataclass
@@ -49,12 +72,21 @@ class IngestPlan:
     bands: list[str]
     methods: list[str]
     source_of: dict[str, str]  # canonical -> source column present in the files
-    units: dict[str, str]  # canonical -> unit of the source column
+    units: dict[str, str]  # canonical -> unit of the source column, where every file has the same
     columns: list[Column] = field(default_factory=list)  # all shard columns
+    files: list[SourceFile] = field(default_factory=list)  # in reading order, each with its own units
+
+    def __post_init__(self):
+        if not self.files:  # a plan made by hand: every file in the plan's units
+            self.files = [SourceFile(str(f), str(path), dict(self.units), {})
+                          for path in self.paths for f in source_files(path, self.fmt)]
 
     @property
     def numeric(self) -> list[str]:
         return [c.name for c in self.columns if not c.is_text]
+
+
+MAX_LISTED = 20  # problems listed in one structural error
 
 
 def plan(paths: list[str], fmt: str, mapping: dict, units: dict, bands: list[str],
@@ -62,7 +94,9 @@ def plan(paths: list[str], fmt: str, mapping: dict, units: dict, bands: list[str
     """Check the catalog's structure without reading its rows; raise on any problem.
 
     ``mapping`` is config ``columns`` (canonical -> user column), ``units`` config
-    ``units`` (canonical -> unit of the user's column).
+    ``units`` (canonical -> unit of the user's column, for every file). Every file,
+    each file of a Parquet directory included, is checked on its own; a unit the file
+    declares applies to that file where config gives none.
     """
     known = {c.name for c in all_columns(bands, ["tully_fisher", "sbf"])}
     unknown = sorted(set(mapping) - known)
@@ -72,40 +106,102 @@ def plan(paths: list[str], fmt: str, mapping: dict, units: dict, bands: list[str
     unknown = sorted(set(units) - known)
     if unknown:
         raise IngestError(f"config key 'units': unknown canonical name(s) {', '.join(unknown)}")
-    required = required_columns(bands, methods, list(extra_required))
+    by_name = {c.name: c for c in all_columns(bands, ["tully_fisher", "sbf"])}
+    for name, unit in units.items():
+        _check_unit(by_name[name], unit)
+    required = {c.name for c in required_columns(bands, methods, list(extra_required))}
     shard_cols = all_columns(bands, methods)
-    source_of, unit_of = {}, {}
-    fmts = []
-    for path in paths:
-        f = detect_format(path, fmt)
-        fmts.append(f)
-        declared = describe(path, f)
-        problems = []
-        for col in shard_cols:
-            src = mapping.get(col.name, col.name)
-            if src not in declared:
-                if any(col.name == r.name for r in required):
-                    how = (f"map it with config 'columns: {{{col.name}: <your column>}}'"
-                           if col.name not in mapping else f"config 'columns.{col.name}' names '{src}', which the file lacks")
-                    why = _needed_by(col.name, methods, extra_required)
-                    problems.append(f"missing column '{src}' for canonical '{col.name}' ({why}); {how}")
-                continue
-            kind = declared[src].kind
-            if col.is_text and kind not in ("text", "numeric", "unknown"):
-                problems.append(f"column '{src}' ({col.name}) has type {kind}; it must be text")
-            if not col.is_text and kind not in ("numeric", "unknown"):
-                problems.append(f"column '{src}' ({col.name}) has type {kind}; it must be numeric "
-                                f"(fix the file or map another column in config 'columns.{col.name}')")
-            source_of[col.name] = src
-            unit = units.get(col.name) or declared[src].unit
-            if unit:
-                _check_unit(col, unit)
-                unit_of[col.name] = unit
-        if problems:
-            raise IngestError(f"catalog {path}:\n  - " + "\n  - ".join(problems))
+    fmts = [detect_format(path, fmt) for path in paths]
     if len(set(fmts)) > 1:
         raise IngestError(f"config key 'catalog': all files must share one format (got {', '.join(fmts)})")
-    return IngestPlan(list(paths), fmts[0], list(bands), list(methods), source_of, unit_of, shard_cols)
+    files: list[SourceFile] = []
+    problems: list[tuple[str, str]] = []  # (file, problem)
+    first_with: dict[str, str] = {}  # canonical -> first file that has its column
+    for path, f in zip(paths, fmts):
+        for one in source_files(path, f):
+            spec, present, found = _plan_file(str(one), str(path), f, shard_cols, required, mapping, units,
+                                              methods, extra_required)
+            problems += [(str(one), p) for p in found]
+            files.append((spec, present))
+            for name in present:
+                first_with.setdefault(name, str(one))
+    # a column read from one file must be in every file: its rows elsewhere would be empty
+    for spec, present in files:
+        for name, first in first_with.items():
+            if name not in present and name not in required:
+                src = mapping.get(name, name)
+                problems.append((spec.path, f"missing column '{src}' for canonical '{name}', which {first} "
+                                            "has; every file of a catalog needs the same columns: add it "
+                                            "(empty values are fine) or remove it from the other files"))
+    if problems:
+        raise IngestError(_problem_message(problems))
+    files = [spec for spec, _ in files]
+    source_of = {name: mapping.get(name, name) for name in first_with}
+    common = {name: files[0].units[name] for name in source_of if name in files[0].units
+              and all(spec.units.get(name) == files[0].units[name] for spec in files)}
+    return IngestPlan(list(paths), fmts[0], list(bands), list(methods), source_of, common, shard_cols, files)
+
+
+def _plan_file(path: str, catalog: str, fmt: str, shard_cols: list[Column], required: set, mapping: dict,
+               units: dict, methods, extra_required) -> tuple[SourceFile, set, list[str]]:
+    """One file's columns, kinds and units; the canonical names it has; the problems in its header."""
+    declared = describe(path, fmt)
+    problems, kinds, unit_of = [], {}, {}
+    present = {col.name for col in shard_cols if mapping.get(col.name, col.name) in declared}
+    for col in shard_cols:
+        src = mapping.get(col.name, col.name)
+        if src not in declared:
+            if col.name in required:
+                how = (f"map it with config 'columns: {{{col.name}: <your column>}}'"
+                       if col.name not in mapping else f"config 'columns.{col.name}' names '{src}', which the file lacks")
+                why = _needed_by(col.name, methods, extra_required)
+                problems.append(f"missing column '{src}' for canonical '{col.name}' ({why}); {how}")
+            continue
+        kind = declared[src].kind
+        wrong = _kind_problem(col, src, kind)
+        if wrong:
+            problems.append(wrong)
+            continue
+        kinds[col.name] = kind
+        if col.name in units:
+            unit_of[col.name] = units[col.name]
+        elif declared[src].unit and not col.is_text:
+            unit = declared[src].unit
+            try:
+                _unit_factor(col, unit)
+            except (ValueError, u.UnitsError) as exc:
+                problems.append(f"column '{src}' ({col.name}) declares unit '{unit}': {exc}; if the values are "
+                                f"in another unit, say so in config 'units: {{{col.name}: <unit>}}' (it "
+                                "overrides the file's)")
+                continue
+            unit_of[col.name] = unit
+    return SourceFile(path, catalog, unit_of, kinds), present, problems
+
+
+def _kind_problem(col: Column, src: str, kind: str) -> str | None:
+    """Why a declared column type cannot feed canonical ``col`` (None: it can)."""
+    fix = f"fix the file or map another column in config 'columns.{col.name}'"
+    if kind in ("numeric", "unknown") or (kind == "text" and col.is_text):
+        return None
+    if kind.startswith("vector"):
+        return (f"column '{src}' ({col.name}) is a {kind}; a canonical column takes one value per row: "
+                f"write the element you mean as a column of its own and map it in config 'columns.{col.name}'")
+    if kind == "boolean":
+        return f"column '{src}' ({col.name}) is boolean (true/false); it must be {_wanted(col)}: {fix}"
+    return f"column '{src}' ({col.name}) has type {kind}; it must be {_wanted(col)} ({fix})"
+
+
+def _wanted(col: Column) -> str:
+    return "text" if col.is_text else "numeric"
+
+
+def _problem_message(problems: list[tuple[str, str]]) -> str:
+    """One structural error, a line per problem, each naming its file (pre-flight shows
+    the lines without the heading)."""
+    shown = [f"catalog {f}: {p}" for f, p in problems[:MAX_LISTED]]
+    if len(problems) > MAX_LISTED:
+        shown.append(f"... and {len(problems) - MAX_LISTED} more")
+    return "catalog structure:\n  - " + "\n  - ".join(shown)
 
 
 def _needed_by(name: str, methods, extra_required) -> str:
@@ -125,11 +221,24 @@ def _check_unit(col: Column, unit: str) -> None:
         raise IngestError(f"config key 'units.{col.name}': {exc}") from exc
 
 
+def _parse_unit(unit: str) -> u.UnitBase:
+    """A unit string as astropy writes it, or as FITS, VOTable or CDS files spell it."""
+    try:
+        return u.Unit(unit)
+    except ValueError as first:
+        for style in ("fits", "vounit", "cds"):
+            try:
+                return u.Unit(unit, format=style)
+            except ValueError:
+                continue
+        raise first
+
+
 def _unit_factor(col: Column, unit: str) -> tuple[float, bool]:
     """(factor, is_velocity): multiply the source value by factor to get the canonical unit."""
     if col.is_text:
         return 1.0, False
-    src = u.Unit(unit)
+    src = _parse_unit(unit)
     if col.name in ("z_helio", "z_helio_err") and src.is_equivalent(u.km / u.s):
         return src.to(u.km / u.s) / C_KMS, True
     target = u.Unit(col.unit) if col.unit else u.dimensionless_unscaled
@@ -144,15 +253,23 @@ def _unit_factor(col: Column, unit: str) -> tuple[float, bool]:
 
 # --- per-batch conversion -------------------------------------------------------------
 
-def _to_float(values, name: str, first_row: int) -> np.ndarray:
-    """Numeric column as float64; text that is not a number is a structural error."""
+def _to_float(values, name: str, first_row: int, where: str = "") -> np.ndarray:
+    """Numeric column as float64 (nulls NaN); text that is not a number, or true/false,
+    is a structural error."""
     if isinstance(values, (pa.Array, pa.ChunkedArray)):
-        if is_arrow_text(values.type):
+        if pa.types.is_dictionary(values.type):
+            values = pc.cast(values, values.type.value_type)
+        if pa.types.is_boolean(values.type):
+            values = np.zeros(0, dtype=bool)  # refused below, whatever the rows hold
+        elif is_arrow_text(values.type):
             values = np.asarray(values.to_pylist(), dtype=object)
         else:
             return np.array(pc.cast(values, pa.float64()).to_numpy(zero_copy_only=False), dtype=float)
     arr = np.asarray(values)
-    if arr.dtype.kind in "iufb":
+    if arr.dtype.kind == "b":
+        raise IngestError(f"{where}column '{name}' is boolean (true/false) but must be numeric; fix the file "
+                          "or map another column in config 'columns'")
+    if arr.dtype.kind in "iuf":
         return arr.astype(float)  # a copy: later steps write NaN into it
     s = pd.Series(arr, dtype=object)
     num = pd.to_numeric(s, errors="coerce").to_numpy(dtype=float, na_value=np.nan)
@@ -161,23 +278,30 @@ def _to_float(values, name: str, first_row: int) -> np.ndarray:
     if bad.any():
         idx = np.flatnonzero(bad)[:5]
         shown = ", ".join(f"row {first_row + i + 1}: {text.iloc[i][:40]!r}" for i in idx)
-        raise IngestError(f"column '{name}' must be numeric but holds text ({int(bad.sum())} rows in this "
+        raise IngestError(f"{where}column '{name}' must be numeric but holds text ({int(bad.sum())} rows in this "
                           f"batch; first: {shown}). Fix the file or map another column in config 'columns'.")
     return num
 
 
-def _to_text(values) -> np.ndarray:
-    """Text column as an object array of stripped str (None where missing)."""
+def _to_text(values, numeric: bool = False) -> np.ndarray:
+    """Text column as an object array of stripped str (None where missing: null, NaN,
+    and, in a column the file declares numeric, the words of MISSING_WORDS)."""
     if isinstance(values, (pa.Array, pa.ChunkedArray)):
+        if pa.types.is_floating(values.type):
+            values = pc.if_else(pc.is_nan(values), pa.scalar(None, values.type), values)
         if not is_arrow_text(values.type):
             values = pc.cast(values, pa.string())
-        return pc.utf8_trim_whitespace(values).to_numpy(zero_copy_only=False).astype(object)
-    s = pd.Series(np.asarray(values, dtype=object))
-    if len(s) and isinstance(s.iloc[0], bytes):
-        s = s.str.decode("utf-8", "replace")
-    out = s.astype(object).where(s.notna(), None)
-    text = out.map(lambda v: v if v is None else str(v).strip())
-    return text.to_numpy(dtype=object)
+        text = pc.utf8_trim_whitespace(values).to_numpy(zero_copy_only=False).astype(object)
+    else:
+        s = pd.Series(np.asarray(values, dtype=object))
+        if len(s) and isinstance(s.iloc[0], bytes):
+            s = s.str.decode("utf-8", "replace")
+        out = s.astype(object).where(s.notna(), None)
+        text = out.map(lambda v: v if v is None else str(v).strip()).to_numpy(dtype=object)
+    if numeric and len(text):
+        lower = pd.Series(text, dtype=object).str.lower()
+        text[lower.isin(MISSING_WORDS).to_numpy()] = None
+    return text
 
 
 def _flag_invalid(values: np.ndarray, bad: np.ndarray, qflags: np.ndarray, bit,
@@ -214,42 +338,54 @@ def quality(cols: dict[str, np.ndarray], bands: list[str], present: set[str]) ->
         dec[badpos] = np.nan
         z = cols["z_helio"]
         _flag_invalid(z, (z < 0) | (z > 1), q, Q.REDSHIFT_INVALID)
-        _flag_invalid(cols["z_helio_err"], cols["z_helio_err"] < 0, q, Q.REDSHIFT_ERR_INVALID)
+        ze = cols["z_helio_err"]
+        _flag_invalid(ze, (ze < 0) | (ze > Z_ERR_MAX), q, Q.REDSHIFT_ERR_INVALID)
         for b in bands:
             m, e = cols[f"mag_{b}"], cols[f"mag_{b}_err"]
             seen = _observed(cols, [f"mag_{b}", f"mag_{b}_err"])
             _flag_invalid(m, (m < MAG_RANGE[0]) | (m > MAG_RANGE[1]), q, Q.MAG_INVALID, seen)
-            _flag_invalid(e, e < 0, q, Q.MAG_ERR_INVALID, seen)
+            _flag_invalid(e, (e < 0) | (e > MAG_ERR_MAX), q, Q.MAG_ERR_INVALID, seen)
         if "w50" in cols:
             seen = _observed(cols, ["w50", "w50_err", "axis_ratio", "axis_ratio_err"])
-            w, ba = cols["w50"], cols["axis_ratio"]
-            _flag_invalid(w, (w <= 0) | (w > W50_MAX), q, Q.WIDTH_INVALID, seen)
-            _flag_invalid(cols["w50_err"], cols["w50_err"] < 0, q, Q.WIDTH_ERR_INVALID, seen)
-            _flag_invalid(ba, (ba <= 0) | (ba > 1), q, Q.AXIS_RATIO_INVALID, seen)
-            _flag_invalid(cols["axis_ratio_err"], cols["axis_ratio_err"] < 0, q, Q.AXIS_RATIO_ERR_INVALID, seen)
+            w, we, ba, bae = cols["w50"], cols["w50_err"], cols["axis_ratio"], cols["axis_ratio_err"]
+            _flag_invalid(w, (w < W50_MIN) | (w > W50_MAX), q, Q.WIDTH_INVALID, seen)
+            _flag_invalid(we, (we < 0) | (we > W50_ERR_MAX), q, Q.WIDTH_ERR_INVALID, seen)
+            _flag_invalid(ba, (ba < AXIS_RATIO_MIN) | (ba > 1), q, Q.AXIS_RATIO_INVALID, seen)
+            _flag_invalid(bae, (bae < 0) | (bae > AXIS_RATIO_ERR_MAX), q, Q.AXIS_RATIO_ERR_INVALID, seen)
         if "sbf_mag" in cols:
             seen = _observed(cols, ["sbf_mag", "sbf_mag_err", "sbf_color", "sbf_color_err"])
             m, c = cols["sbf_mag"], cols["sbf_color"]
             _flag_invalid(m, (m < SBF_MAG_RANGE[0]) | (m > SBF_MAG_RANGE[1]), q, Q.SBF_MAG_INVALID, seen)
             _flag_invalid(c, (c < SBF_COLOR_RANGE[0]) | (c > SBF_COLOR_RANGE[1]), q, Q.SBF_COLOR_INVALID, seen)
             for name in ("sbf_mag_err", "sbf_color_err"):
-                _flag_invalid(cols[name], cols[name] < 0, q, Q.SBF_ERR_INVALID, seen)
+                e = cols[name]
+                _flag_invalid(e, (e < 0) | (e > SBF_ERR_MAX), q, Q.SBF_ERR_INVALID, seen)
         for name, err in (("ebv", "ebv_err"),):
             if name in present:
                 seen = _observed(cols, [name] + ([err] if err in present else []))
-                _flag_invalid(cols[name], cols[name] < 0, q, Q.EBV_INVALID, seen)
+                v = cols[name]
+                _flag_invalid(v, (v < 0) | (v > EBV_MAX), q, Q.EBV_INVALID, seen)
                 if err in present:
-                    _flag_invalid(cols[err], cols[err] < 0, q, Q.EBV_INVALID, seen & ~np.isnan(cols[name]))
-        for name in ("hi_flux", "w50_resolution"):
+                    e = cols[err]
+                    _flag_invalid(e, (e < 0) | (e > EBV_MAX), q, Q.EBV_INVALID, seen & ~np.isnan(v))
+        for name, top in (("hi_flux", HI_FLUX_MAX), ("w50_resolution", W50_RESOLUTION_MAX)):
             if name in present:
                 v = cols[name]
-                _flag_invalid(v, v < 0, q, Q.OPTIONAL_INVALID, ~np.isnan(v))
+                _flag_invalid(v, (v < 0) | (v > top), q, Q.OPTIONAL_INVALID, ~np.isnan(v))
     return q
 
 
-def canonical_batch(raw: dict, p: IngestPlan, first_row: int) -> dict[str, np.ndarray]:
-    """Source batch -> canonical columns (float64 / object), units converted."""
+def canonical_batch(raw: dict, p: IngestPlan, first_row: int,
+                    source: SourceFile | None = None) -> dict[str, np.ndarray]:
+    """Source batch -> canonical columns (float64 / object), converted with the units of
+    ``source``, the file the batch comes from (default: the plan's common units).
+    ``first_row`` counts rows in that file, for messages."""
     n = len(next(iter(raw.values()))) if raw else 0
+    if source is None and any(f.units != p.units for f in p.files):
+        raise ValueError("the plan's files differ in units: pass the batch's SourceFile as source")
+    units = source.units if source is not None else p.units
+    kinds = source.kinds if source is not None else {}
+    where = f"catalog {source.path}: " if source is not None else ""
     out = {}
     for col in p.columns:
         src = p.source_of.get(col.name)
@@ -257,11 +393,11 @@ def canonical_batch(raw: dict, p: IngestPlan, first_row: int) -> dict[str, np.nd
             out[col.name] = np.full(n, None, dtype=object) if col.is_text else np.full(n, np.nan)
             continue
         if col.is_text:
-            out[col.name] = _to_text(raw[src])
+            out[col.name] = _to_text(raw[src], numeric=kinds.get(col.name) == "numeric")
             continue
-        values = np.require(_to_float(raw[src], src, first_row), requirements="W")
-        if col.name in p.units:
-            factor, _ = _unit_factor(col, p.units[col.name])
+        values = np.require(_to_float(raw[src], src, first_row, where), requirements="W")
+        if col.name in units:
+            factor, _ = _unit_factor(col, units[col.name])
             if factor != 1.0:
                 values = values * factor
         out[col.name] = values
@@ -270,8 +406,9 @@ def canonical_batch(raw: dict, p: IngestPlan, first_row: int) -> dict[str, np.nd
     missing = (ids_s.isna() | (ids_s == "")).to_numpy()
     if missing.any():
         rows = ", ".join(str(first_row + i + 1) for i in np.flatnonzero(missing)[:5])
-        raise IngestError(f"column '{p.source_of['galaxy_id']}' (galaxy_id) is empty in {int(missing.sum())} "
-                          f"rows (first data rows: {rows}); every galaxy needs a unique identifier")
+        raise IngestError(f"{where}column '{p.source_of['galaxy_id']}' (galaxy_id) is empty in {int(missing.sum())} "
+                          f"rows (first data rows: {rows}; empty text, null or NaN); every galaxy needs a unique "
+                          "identifier")
     return out
 
 
@@ -378,15 +515,17 @@ def run(p: IngestPlan, out_dir: str | Path, summary_path: str | Path, shard_rows
     writer = _ShardWriter(tmp_dir, schema, shard_rows)
     try:
         needed = sorted(set(p.source_of.values()))
-        for path in p.paths:
-            for raw in iter_batches(path, p.fmt, needed, max(1, min(batch_rows, shard_rows))):
-                cols = canonical_batch(raw, p, rows)
+        for source in p.files:
+            in_file = 0
+            for raw in iter_batches(source.path, p.fmt, needed, max(1, min(batch_rows, shard_rows))):
+                cols = canonical_batch(raw, p, in_file, source)
                 q = quality(cols, p.bands, present)
                 for member in F.Quality:
                     counts[member.name] += int(F.has(q, member).sum())
                 flagged += int(np.count_nonzero(q))
                 writer.write(_table(cols, q, schema))
                 rows += len(q)
+                in_file += len(q)
                 log.info("read %d rows", rows)
         n_shards = writer.finish()
         log.info("checking %d galaxy_id values for repeats", rows)
@@ -403,13 +542,21 @@ def run(p: IngestPlan, out_dir: str | Path, summary_path: str | Path, shard_rows
         "rows_in": rows, "rows_out": rows, "rows_flagged": flagged, "shards": n_shards,
         "shard_rows": shard_rows,
         "flag_counts": {m.name: counts.get(m.name, 0) for m in F.Quality},
-        "inputs": [{"path": str(path), "format": p.fmt, "sha256": sha256_of(path)} for path in p.paths],
-        "columns": {canonical: {"source": src, "unit": p.units.get(canonical)}
+        "inputs": [{"path": str(path), "format": p.fmt, "sha256": sha256_of(path),
+                    "files": [{"path": f.path, "units": f.units} for f in p.files if f.catalog == str(path)]}
+                   for path in p.paths],
+        "columns": {canonical: {"source": src, "unit": _summary_unit(p, canonical)}
                     for canonical, src in sorted(p.source_of.items())},
         "absent_optional_columns": sorted(c.name for c in OPTIONAL if c.name not in p.source_of),
     }
     write_json(summary, summary_path)
     return summary
+
+
+def _summary_unit(p: IngestPlan, canonical: str) -> str | None:
+    if canonical in p.units:
+        return p.units[canonical]
+    return "differs between files (see inputs)" if any(canonical in f.units for f in p.files) else None
 
 
 def _check_duplicates(dup: np.ndarray, shard_dir: Path) -> None:
@@ -431,4 +578,4 @@ def _check_duplicates(dup: np.ndarray, shard_dir: Path) -> None:
                       f"{', ...' if len(dups) > 10 else ''}). Every row needs its own ID.")
 
 
-__all__ = ["IngestError", "IngestPlan", "plan", "run", "quality", "canonical_batch", "CatalogError"]
+__all__ = ["IngestError", "IngestPlan", "SourceFile", "plan", "run", "quality", "canonical_batch", "CatalogError"]

@@ -184,11 +184,12 @@ def _column_sanity(plan, declared_units: dict) -> None:
 
     problems = []
     needed = sorted(set(plan.source_of.values()))
-    for path in plan.paths:
+    for source in plan.files:  # every file (of a Parquet directory too), in its own units
+        path = source.path
         raw = next(iter(iter_batches(path, plan.fmt, needed, SANITY_ROWS)), None)
         if raw is None:
             continue
-        cols = canonical_batch(raw, plan, 0)
+        cols = canonical_batch(raw, plan, 0, source)
         for name, (bad, looks, fix) in _SANITY.items():
             if name not in plan.source_of or name in declared_units:
                 continue
