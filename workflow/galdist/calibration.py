@@ -124,6 +124,10 @@ def load_calibration(spec: str | Path) -> Calibration:
             _fail(path, f"key 'covariance' must be {coeffs.size}x{coeffs.size}")
         if not np.allclose(cov, cov.T):
             _fail(path, "key 'covariance' must be symmetric")
+        eig = np.linalg.eigvalsh(cov)
+        if eig.min() < -1e-10 * max(abs(eig).max(), 1e-300):
+            _fail(path, f"key 'covariance' must be positive semi-definite (eigenvalues {eig.tolist()}): a "
+                        "negative variance would silently drop or distort the calibration error")
     else:
         cov = np.diag(errs**2)
     lo, hi = data["valid_range"]

@@ -29,10 +29,18 @@ METHOD_STYLE = {"tf": ("Tully-Fisher", "tab:blue"), "sbf": ("SBF", "tab:red"),
 _NOT_A_PROBLEM = int(Method.LOCAL_FLOW)
 
 
+#: Beyond this magnitude no plotted quantity (mag, km/s, deg, z) is physical: such
+#: values are left out of the drawing (they stay in the product, flagged), so no
+#: finite value can break an axis or a histogram.
+OFF_SCALE = 1e6
+
+
 def _col(df, name) -> np.ndarray:
-    if name in df.columns:
-        return np.asarray(df[name].to_numpy(dtype=float, na_value=np.nan), dtype=float)
-    return np.full(len(df), np.nan)
+    if name not in df.columns:
+        return np.full(len(df), np.nan)
+    values = np.asarray(df[name].to_numpy(dtype=float, na_value=np.nan), dtype=float)
+    with np.errstate(invalid="ignore"):
+        return np.where(np.abs(values) <= OFF_SCALE, values, np.nan)
 
 
 def _flagged(df, method) -> np.ndarray:
@@ -205,7 +213,7 @@ def dmu_histograms(df, path, methods: Sequence[str] = ("tf", "sbf"), min_cz: flo
         if not base.any():
             _no_data(ax)
         else:
-            lo, hi = np.percentile(dmu[base], [0.5, 99.5])
+            lo, hi = np.clip(np.percentile(dmu[base], [0.5, 99.5]), -20.0, 20.0)
             span = max(hi - lo, 0.5)
             nbins = int(np.clip(2 * np.sqrt(base.sum()), 8, 60))
             bins = np.linspace(lo - 0.1 * span, hi + 0.1 * span, nbins + 1)
