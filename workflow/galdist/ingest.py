@@ -461,6 +461,7 @@ class _ShardWriter:
     def __init__(self, directory: Path, schema: pa.Schema, shard_rows: int):
         self.directory, self.schema, self.shard_rows = directory, schema, shard_rows
         self.count = 0
+        self.files: list[dict] = []  # name, rows, fingerprint of every shard written
         self.duplicates = _DuplicateCheck(directory)  # beside the shard directory, not in it
         self._open()
 
@@ -474,6 +475,7 @@ class _ShardWriter:
         self.writer.add_metadata({"galdist.shard_fingerprint": self.fp.hexdigest(),
                                   "galdist.shard_index": str(self.count)})
         self.writer.__exit__(None, None, None)
+        self.files.append({"name": self.writer.path.name, "rows": self.rows, "fingerprint": self.fp.hexdigest()})
         log.info("shard %d written: %d rows", self.count, self.rows)
         self.count += 1
 
@@ -481,7 +483,7 @@ class _ShardWriter:
         while table.num_rows:
             take = min(table.num_rows, self.shard_rows - self.rows)
             part, table = table.slice(0, take), table.slice(take)
-            self.duplicates.add(self.fp.update(part.column("galaxy_id").to_numpy(zero_copy_only=False)))
+            self.duplicates.add(self.fp.update(part))
             self.writer.write(part)
             self.rows += take
             if self.rows == self.shard_rows and table.num_rows:
@@ -540,7 +542,7 @@ def run(p: IngestPlan, out_dir: str | Path, summary_path: str | Path, shard_rows
         shutil.rmtree(tmp_dir, ignore_errors=True)
     summary = {
         "rows_in": rows, "rows_out": rows, "rows_flagged": flagged, "shards": n_shards,
-        "shard_rows": shard_rows,
+        "shard_rows": shard_rows, "shard_files": writer.files,
         "flag_counts": {m.name: counts.get(m.name, 0) for m in F.Quality},
         "inputs": [{"path": str(path), "format": p.fmt, "sha256": sha256_of(path),
                     "files": [{"path": f.path, "units": f.units} for f in p.files if f.catalog == str(path)]}

@@ -22,17 +22,8 @@ from pathlib import Path
 
 import pyarrow.parquet as pq
 
+from .catalog import source_files
 from .io import FINGERPRINT_KEY, write_json
-
-
-def catalog_files(path: str | Path) -> list[Path]:
-    """The files a catalog path stands for: itself, or every file under a directory
-    except hidden ones (a path component starting with '.' or '_')."""
-    path = Path(path)
-    if not path.is_dir():
-        return [path]
-    return sorted(p for p in path.rglob("*") if p.is_file()
-                  and not any(part.startswith((".", "_")) for part in p.relative_to(path).parts))
 
 
 def _identity(path: Path) -> list:
@@ -62,7 +53,7 @@ def content_digest(paths, cache_path: str | Path | None = None) -> str:
             cache = {}  # a damaged cache only costs a re-read
     total, changed = hashlib.sha256(), False
     for top in paths:
-        for f in catalog_files(top):
+        for f in source_files(top, "parquet" if Path(top).is_dir() else "file"):
             key = os.path.abspath(f)
             ident = _identity(f)
             entry = cache.get(key)

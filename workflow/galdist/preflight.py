@@ -87,6 +87,7 @@ def check(user: dict, buildable: frozenset = frozenset(), sample_rows: bool = Tr
             spec[0], spec[1], cfg["columns"], cfg["units"], list(cfg["bands"]), list(cfg["methods"]),
             gconfig.extra_required_columns(cfg)))
         if ok_plan and sample_rows:
+            step("rows", lambda: _has_rows(result.plan))
             step("column values", lambda: _column_sanity(result.plan, cfg["units"]))
     return result
 
@@ -99,6 +100,7 @@ _DONE = {
     "passbands and systems": "each calibration's band, colour bands and system fit the configured bands",
     "method settings": "every setting the enabled methods need is present and valid",
     "catalog structure": "every catalog file has the needed columns with usable types and units",
+    "rows": "the catalog holds rows",
     "column values": "a sample of rows has redshifts, coordinates, widths and axis ratios in the declared units",
 }
 
@@ -157,6 +159,19 @@ def _method_settings(cfg, cals) -> None:
             problems.append(f"{method}: {exc}")
     if problems:
         raise ConfigError("method settings:\n  - " + "\n  - ".join(problems))
+
+
+def _has_rows(plan) -> None:
+    """A catalog without a single row stops here: galdist's choice, since an empty
+    product is far more often a wrong path or filter than an intended result."""
+    from .catalog import iter_batches
+
+    needed = sorted(set(plan.source_of.values()))[:1]
+    for source in plan.files:
+        if any(len(next(iter(batch.values()))) for batch in iter_batches(source.path, plan.fmt, needed, 1024)):
+            return
+    raise ConfigError("config key 'catalog': the catalog holds no rows (" + ", ".join(plan.paths)
+                      + "); check the path, or the export that wrote it")
 
 
 #: canonical column -> (test of a bad value in the canonical unit, what it looks like, the fix)
