@@ -1,5 +1,7 @@
 """End-to-end runs with one distance method: a Tully-Fisher-only HI survey (no SBF
-columns in the catalog) and an SBF-only early-type sample (no TF columns).
+columns, no Ks magnitudes in the catalog) and an SBF-only early-type sample (no TF
+columns and no broadband magnitudes at all), each through `galdist run` from a folder
+outside the code checkout, with the default bands (V, I, Ks) still configured.
 
 Every input row must reach distances.parquet in input order, the absent method must
 leave no columns, jobs, statistics or plots behind, summary.json must say plainly that
@@ -10,13 +12,16 @@ distance wherever that method is usable.
 from __future__ import annotations
 
 import json
+import os
+import subprocess
+import sys
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from conftest import copy_workflow, run_snakemake, small_catalog
+from conftest import small_catalog
 from galdist import flags
 from galdist.columns import METHOD_COLUMNS
 
@@ -33,6 +38,11 @@ def _catalog(method: str) -> pa.Table:
     cols = small_catalog(N_ROWS, seed=11)
     for c in METHOD_COLUMNS[OTHER[method]]:
         del cols[c.name]
+    # bands no stage reads need no magnitude columns: Ks never, V and I only for the
+    # K-correction colour (the SBF-only run sets kcorrect.colour_pair: null)
+    unused = ("Ks",) if method == "tully_fisher" else ("V", "I", "Ks")
+    for b in unused:
+        del cols[f"mag_{b}"], cols[f"mag_{b}_err"]
     order = np.random.default_rng(4).permutation(N_ROWS)
     return pa.table({k: np.asarray(v)[order] for k, v in cols.items()})
 
@@ -40,13 +50,18 @@ def _catalog(method: str) -> pa.Table:
 @pytest.fixture(scope="module", params=["tully_fisher", "sbf"])
 def single_run(request, tmp_path_factory):
     method = request.param
-    wf = copy_workflow(tmp_path_factory.mktemp(f"only-{method}"))
+    folder = tmp_path_factory.mktemp(f"only-{method}")  # the user's own folder, not the checkout
     catalog = _catalog(method)
-    pq.write_table(catalog, wf / "cat.parquet")
-    result = run_snakemake(wf, "--config", "catalog=cat.parquet", "run=single", f"methods=[{method}]",
-                           "shard_rows=100")
-    assert result.returncode == 0, result.stderr[-4000:]
-    return method, wf / "results" / "single", catalog
+    pq.write_table(catalog, folder / "cat.parquet")
+    conf = {"catalog": "cat.parquet", "run": "single", "methods": [method], "shard_rows": 100}
+    if method == "sbf":
+        conf["kcorrect"] = {"colour_pair": None}
+    (folder / "run.yaml").write_text(json.dumps(conf))
+    env = {k: v for k, v in os.environ.items() if k != "SNAKEMAKE_PROFILE"}
+    result = subprocess.run([sys.executable, "-m", "galdist.cli", "run", "run.yaml", "--cores", "2"],
+                            cwd=folder, env=env, capture_output=True, text=True, timeout=900)
+    assert result.returncode == 0, (result.stdout + result.stderr)[-4000:]
+    return method, folder / "galdist-results" / "single", catalog
 
 
 def test_every_row_in_input_order_without_the_other_method(single_run):
