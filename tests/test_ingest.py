@@ -56,7 +56,7 @@ BAD_CASES = [
     ("ra", 360.0, F.Quality.POSITION_INVALID),
     ("dec", 90.5, F.Quality.POSITION_INVALID),
     ("dec", -np.inf, F.Quality.POSITION_INVALID),
-    ("z_helio", -0.001, F.Quality.REDSHIFT_INVALID),
+    ("z_helio", -0.006, F.Quality.REDSHIFT_INVALID),  # below cz = -1500 km/s (galdist's lower limit)
     ("z_helio", 1.2, F.Quality.REDSHIFT_INVALID),
     ("z_helio", np.nan, F.Quality.REDSHIFT_INVALID),
     ("z_helio_err", -1e-5, F.Quality.REDSHIFT_ERR_INVALID),

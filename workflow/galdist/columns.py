@@ -24,6 +24,11 @@ def _c(name, unit, meaning):
     return Column(name, unit, meaning)
 
 
+#: z_helio accepted at ingest: blueshifts down to cz = -1500 km/s (Local Group members,
+#: nearby cluster galaxies falling towards us: classic TF and SBF objects; galdist's
+#: choice), up to z = 1. The K(z) grids start at the lower end.
+Z_HELIO_RANGE = (-0.005, 1.0)
+
 BASE = [
     _c("galaxy_id", "string", "unique identifier"),
     _c("ra", "deg", "right ascension, ICRS"),

@@ -273,6 +273,7 @@ def _stage_settings(config: dict) -> list[str]:
     checks (extinction law, named cosmology, template library) run only where the
     setting differs from the schema default, which is valid by construction."""
     from . import extinction, kcorrect
+    from .columns import Z_HELIO_RANGE
 
     problems = []
     ext, kc, cosmo = config["extinction"], config["kcorrect"], config["redshift"]["cosmology"]
@@ -283,7 +284,7 @@ def _stage_settings(config: dict) -> list[str]:
         except (ValueError, FileNotFoundError) as exc:
             problems.append(f"config: {exc}")
 
-    attempt(kcorrect.grid_redshifts, 0.0, kc["z_max"], kc["dz"])
+    attempt(kcorrect.grid_redshifts, Z_HELIO_RANGE[0], kc["z_max"], kc["dz"])
     if ext["coefficients"] == "law" and ext["r_v"] != 3.1:
         attempt(extinction.extinction_law, ext["law"], ext["r_v"])
     if ext["coefficients"] == "table" and set(config["bands"]) <= set(ext["table_keys"]):

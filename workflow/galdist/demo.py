@@ -14,6 +14,7 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 
+from .columns import Z_HELIO_RANGE
 from .io import write_parquet
 
 C_KMS = 299792.458
@@ -131,7 +132,8 @@ def _observe(rng, ra, dec, z_cos, v_pec, is_disc, conf):
     kcfg = conf["kcorrect"]
     offsets = {k: v["ab_minus_vega"] if v["system"] == "Vega" else 0.0 for k, v in bands.items()}
     kgrid = kcorrect.build_grids(kcorrect.load_templates(kcfg["templates"]), filters.load_bands(bands),
-                                 kcfg["colour_pair"], offsets, z_max=kcfg["z_max"], dz=kcfg["dz"])
+                                 kcfg["colour_pair"], offsets, z_min=Z_HELIO_RANGE[0], z_max=kcfg["z_max"],
+                                 dz=kcfg["dz"])
     nt = len(kgrid.names)
     template = np.where(is_disc, rng.uniform(nt / 2.0, nt - 1.0, n), rng.uniform(0.0, 1.5, n))
     k, colour = kcorrect.evaluate(kgrid, z_helio, template)

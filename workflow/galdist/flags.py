@@ -56,7 +56,7 @@ class Quality(_Documented):
 
     POSITION_INVALID = (0, "ra or dec missing, non-finite, abs(dec) > 90 or ra outside [0, 360)",
                         "fix the coordinates; extinction and the CMB frame need them")
-    REDSHIFT_INVALID = (1, "z_helio missing, non-finite, < 0 or > 1",
+    REDSHIFT_INVALID = (1, "z_helio missing, non-finite, < -0.005 (cz < -1500 km/s) or > 1",
                         "check the redshift; no redshift distance or K-correction is possible")
     REDSHIFT_ERR_INVALID = (2, "z_helio_err missing, non-finite, negative or > 1",
                             "supply an error; mu_z error then omits the measurement term")

@@ -22,7 +22,7 @@ import pyarrow.compute as pc
 
 from . import flags as F
 from .catalog import CatalogError, describe, detect_format, iter_batches, source_files
-from .columns import Column, OPTIONAL, all_columns, required_columns
+from .columns import OPTIONAL, Z_HELIO_RANGE, Column, all_columns, required_columns
 from .errors import IngestError
 from .io import field as arrow_field
 from .io import (INTERMEDIATE_COMPRESSION, AtomicParquetWriter, Fingerprint, RecordSpill, is_arrow_text,
@@ -337,7 +337,7 @@ def quality(cols: dict[str, np.ndarray], bands: list[str], present: set[str]) ->
         ra[badpos] = np.nan
         dec[badpos] = np.nan
         z = cols["z_helio"]
-        _flag_invalid(z, (z < 0) | (z > 1), q, Q.REDSHIFT_INVALID)
+        _flag_invalid(z, (z < Z_HELIO_RANGE[0]) | (z > Z_HELIO_RANGE[1]), q, Q.REDSHIFT_INVALID)
         ze = cols["z_helio_err"]
         _flag_invalid(ze, (ze < 0) | (ze > Z_ERR_MAX), q, Q.REDSHIFT_ERR_INVALID)
         for b in bands:
