@@ -354,7 +354,8 @@ def check_stages(config: dict) -> dict:
             problems.append(f"config key '{method}.calibration': {exc}")
             continue
         if not path.is_file():
-            problems.append(f"config key '{method}.calibration': no regular file at {path} (a path is relative "
+            what = "is not a regular file" if path.exists() else "file not found"
+            problems.append(f"config key '{method}.calibration': {what}: {path} (a path is relative "
                             "to the directory galdist runs in; a bare name is a shipped calibration)")
             continue
         cal = load_calibration(path)
