@@ -134,7 +134,7 @@ def _observe(rng, ra, dec, z_cos, v_pec, is_disc, conf):
     kgrid = kcorrect.build_grids(kcorrect.load_templates(kcfg["templates"]), filters.load_bands(bands),
                                  kcfg["colour_pair"], offsets, z_min=Z_HELIO_RANGE[0], z_max=kcfg["z_max"],
                                  dz=kcfg["dz"])
-    nt = len(kgrid.names)
+    nt = kgrid.n_steps  # templates per track; evaluate() takes a position along the first
     template = np.where(is_disc, rng.uniform(nt / 2.0, nt - 1.0, n), rng.uniform(0.0, 1.5, n))
     k, colour = kcorrect.evaluate(kgrid, z_helio, template)
     z_err = np.full(n, 3e-5)

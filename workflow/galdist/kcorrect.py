@@ -24,10 +24,20 @@ matching its Galactic-extinction-corrected observed colour (m_blue - m_red, in
 the catalog's systems) to the template's redshifted model colour, computed in
 AB and converted with per-band offsets, m_Vega = m_AB - (AB - Vega).
 
+Templates come in tracks (the shipped library: metallicity x dust), each the
+same sequence of star-formation histories from passive to starburst. A galaxy's
+colour is matched along every track (piecewise linear between neighbouring
+templates, so a track whose colour is not monotonic gives several matches):
+K is the mean of K over all matches, and K_<band>_err half the range of K over
+every point of every track whose model colour lies within the galaxy's colour
+error (``assign``). With one track and a monotonic colour this is the plain
+one-dimensional colour match with a single solution.
+
 Work is split in two: ``build_grids`` computes K[band][template, z] and the
 model colour[template, z] on a fine uniform redshift grid once per
 configuration; ``assign`` interpolates them for any number of galaxies with
-array arithmetic only (no per-row Python).
+array arithmetic only (no per-row Python), in chunks of rows so memory stays
+bounded.
 """
 
 from __future__ import annotations
@@ -53,17 +63,22 @@ WAVE_COLUMN_NAMES = ("wavelength", "wave", "lambda", "wavelength_angstrom")
 
 @dataclass(frozen=True)
 class Templates:
-    """Rest-frame template spectra, ordered from passive to star-forming.
+    """Rest-frame template spectra in tracks, each ordered from passive to star-forming.
 
     ``wave``: (n_w,) Angstrom, strictly increasing. ``flux_lambda``: (n_t, n_w)
     f_lambda in any common unit (only shapes matter for K and colours).
-    ``names``: one per template. ``meta``: provenance.
+    ``names``: one per template. ``tracks``: tuples of names, each a sequence
+    passive -> star-forming, all of the same length, together naming every
+    template once; None = one track of all templates in order. The first track is
+    the reference one (``kcorr_template`` is the fractional index along it).
+    ``meta``: provenance.
     """
 
     wave: np.ndarray
     flux_lambda: np.ndarray
     names: tuple[str, ...]
     meta: dict = field(default_factory=dict)
+    tracks: tuple | None = None
 
     def __post_init__(self):
         wave = np.asarray(self.wave, dtype=float)
@@ -78,9 +93,15 @@ class Templates:
             raise ValueError("templates: fluxes must be finite, non-negative and not all zero")
         if len(set(names)) != len(names) or not names:
             raise ValueError(f"templates: names must be unique and non-empty (got {names})")
+        tracks = (names,) if self.tracks is None else tuple(tuple(str(n) for n in t) for t in self.tracks)
+        flat = [n for t in tracks for n in t]
+        if sorted(flat) != sorted(names) or len({len(t) for t in tracks}) != 1:
+            raise ValueError("templates: tracks must be sequences of equal length that together name "
+                             f"every template once (got {len(tracks)} tracks for {len(names)} templates)")
         object.__setattr__(self, "wave", wave)
         object.__setattr__(self, "flux_lambda", flux)
         object.__setattr__(self, "names", names)
+        object.__setattr__(self, "tracks", tracks)
 
     def index(self, name: str) -> int:
         if name not in self.names:
@@ -88,14 +109,56 @@ class Templates:
                              f"(allowed: {', '.join(self.names)})")
         return self.names.index(name)
 
+    @property
+    def track_indices(self) -> np.ndarray:
+        """(n_tracks, n_steps) template indices."""
+        pos = {n: i for i, n in enumerate(self.names)}
+        return np.array([[pos[n] for n in t] for t in self.tracks], dtype=np.intp)
 
-def load_templates(path: str | Path | None = None) -> Templates:
+
+def add_emission_lines(wave, flux_lambda, line_wave, line_lum) -> np.ndarray:
+    """Rest-frame spectra with unresolved emission lines added on their wavelength grid.
+
+    ``wave`` (n_w,) Angstrom; ``flux_lambda`` (n_t, n_w) or (n_w,) f_lambda;
+    ``line_wave`` (n_l,) Angstrom; ``line_lum`` (n_t, n_l) or (n_l,) line
+    luminosities in the flux unit times Angstrom. Each line is shared between the two
+    grid points around it (weights 1 - u and u, u its fractional position) as a
+    peak of height L / h_k, h_k = (lam_{k+1} - lam_{k-1}) / 2, so the trapezoid
+    integral of the piecewise-linear spectrum gains exactly L per line and its
+    centroid stays at the line wavelength to within the grid step. Lines outside
+    (wave[1], wave[-2]) are left out.
+    """
+    wave = np.asarray(wave, dtype=float)
+    flux = np.array(flux_lambda, dtype=float, copy=True)
+    one = flux.ndim == 1
+    flux = np.atleast_2d(flux)
+    lw = np.asarray(line_wave, dtype=float).ravel()
+    lum = np.atleast_2d(np.asarray(line_lum, dtype=float))
+    if lum.shape != (flux.shape[0], lw.size):
+        raise ValueError(f"templates: line luminosities have shape {lum.shape}, expected "
+                         f"{(flux.shape[0], lw.size)}")
+    keep = (lw > wave[1]) & (lw < wave[-2])
+    lw, lum = lw[keep], lum[:, keep]
+    k = np.searchsorted(wave, lw) - 1  # wave[k] <= lw < wave[k + 1]
+    u = (lw - wave[k]) / (wave[k + 1] - wave[k])
+    half = 0.5 * (wave[2:] - wave[:-2])  # h for grid points 1 .. n_w - 2
+    h = np.concatenate([[wave[1] - wave[0]], half, [wave[-1] - wave[-2]]])
+    for j, w in ((k, 1.0 - u), (k + 1, u)):
+        np.add.at(flux.T, j, (lum * (w / h[j])).T)
+    return flux[0] if one else flux
+
+
+def load_templates(path: str | Path | None = None, emission_lines: bool = True) -> Templates:
     """Read a template table (ECSV, FITS, or CSV read by astropy).
 
     Layout: a wavelength column (``wavelength``; Angstrom, or any length unit
     the column declares) and one f_lambda column per template, in order from
-    passive to star-forming; the column names are the template names. With no
-    ``path`` the shipped BC03 library is read (see data/templates/README.md).
+    passive to star-forming; the column names are the template names. Optional
+    metadata (ECSV): ``tracks``, a list of {templates: [names]} (see
+    ``Templates``), and ``emission_lines`` {wavelength: [A], luminosity: {name:
+    [flux unit x A]}}, lines added to the continuum columns with
+    ``add_emission_lines`` (``emission_lines=False`` leaves them out). With no
+    ``path`` the shipped library is read (see data/templates/README.md).
     """
     path = Path(path) if path is not None else DEFAULT_TEMPLATE_FILE
     if not path.exists():
@@ -121,9 +184,19 @@ def load_templates(path: str | Path | None = None) -> Templates:
     meta = dict(table.meta)
     meta.setdefault("file", str(path))
     meta["file_sha256"] = hashlib.sha256(path.read_bytes()).hexdigest()
+    meta["emission_lines_added"] = False
     try:
-        return Templates(wave=wave, flux_lambda=flux, names=tuple(names), meta=meta)
-    except ValueError as exc:
+        tracks = meta.get("tracks")
+        if tracks is not None:
+            tracks = tuple(tuple(t["templates"]) for t in tracks)
+        lines = meta.get("emission_lines")
+        if lines and emission_lines:
+            lum = np.array([lines["luminosity"].get(n, np.zeros(len(lines["wavelength"]))) for n in names],
+                           dtype=float)
+            flux = add_emission_lines(wave, flux, np.asarray(lines["wavelength"], dtype=float), lum)
+            meta["emission_lines_added"] = True
+        return Templates(wave=wave, flux_lambda=flux, names=tuple(names), meta=meta, tracks=tracks)
+    except (ValueError, KeyError, TypeError) as exc:
         raise ValueError(f"kcorrect.templates: {path}: {exc}") from exc
 
 
@@ -187,8 +260,12 @@ class KGrid:
     """K[band][template, z] and model colour[template, z] on a uniform z grid.
 
     ``colour`` is in the catalog's systems (AB colour minus the AB-Vega offset
-    difference), None when no colour pair is configured; ``colour_sign`` is +1
-    when colour increases with template index, -1 when it decreases.
+    difference), None when no colour pair is configured. ``tracks``: (n_tracks,
+    n_steps) template indices, each row a sequence passive -> star-forming (the
+    first row is the reference track of ``kcorr_template``); None = one track of
+    all templates in order. ``colour_sign`` is +1 when colour increases along the
+    reference track (first to last template at the first redshift), -1 when it
+    decreases.
     """
 
     z: np.ndarray
@@ -197,6 +274,7 @@ class KGrid:
     colour: np.ndarray | None = None
     colour_pair: tuple[str, str] | None = None
     meta: dict = field(default_factory=dict)
+    tracks: np.ndarray | None = None
 
     def __post_init__(self):
         z = np.asarray(self.z, dtype=float)
@@ -207,7 +285,8 @@ class KGrid:
             raise ValueError("kcorrect grid: z must be uniform and increasing")
         object.__setattr__(self, "z", z)
         object.__setattr__(self, "names", tuple(str(n) for n in self.names))
-        shape = (len(self.names), z.size)
+        nt = len(self.names)
+        shape = (nt, z.size)
         k = {str(b): np.asarray(v, dtype=float) for b, v in self.k.items()}
         for b, v in k.items():
             if v.shape != shape:
@@ -219,22 +298,37 @@ class KGrid:
                 raise ValueError(f"kcorrect grid: colour has shape {c.shape}, expected {shape}")
             object.__setattr__(self, "colour", c)
             object.__setattr__(self, "colour_pair", tuple(self.colour_pair))
+        tracks = (np.arange(nt, dtype=np.intp)[None, :] if self.tracks is None
+                  else np.atleast_2d(np.asarray(self.tracks, dtype=np.intp)))
+        if tracks.size != nt or sorted(tracks.ravel().tolist()) != list(range(nt)):
+            raise ValueError(f"kcorrect grid: tracks {tracks.shape} must hold every template index once")
+        object.__setattr__(self, "tracks", tracks)
 
     @property
     def dz(self) -> float:
         return float((self.z[-1] - self.z[0]) / (self.z.size - 1))
 
     @property
+    def n_steps(self) -> int:
+        """Templates per track (the range of ``kcorr_template`` is 0 .. n_steps - 1)."""
+        return int(self.tracks.shape[1])
+
+    @property
     def colour_sign(self) -> float:
-        if self.colour is None or len(self.names) < 2:
+        if self.colour is None or self.n_steps < 2:
             return 1.0
-        return 1.0 if self.colour[-1, 0] > self.colour[0, 0] else -1.0
+        ref = self.tracks[0]
+        return 1.0 if self.colour[ref[-1], 0] > self.colour[ref[0], 0] else -1.0
 
     def index(self, name: str) -> int:
         if name not in self.names:
             raise ValueError(f"kcorrect.default_template: '{name}' is not a template "
                              f"(allowed: {', '.join(self.names)})")
         return self.names.index(name)
+
+    def step_of(self, name: str) -> int:
+        """Position of a template along its track."""
+        return int(np.argwhere(self.tracks == self.index(name))[0, 1])
 
     def to_file(self, path: str | Path) -> None:
         """Write a compressed .npz (no pickles) holding everything ``from_file`` needs."""
@@ -251,6 +345,7 @@ class KGrid:
             k=np.array([self.k[b] for b in bands]) if bands else np.zeros((0, len(self.names), self.z.size)),
             colour=self.colour if self.colour is not None else np.zeros((0, 0)),
             colour_pair=np.array(self.colour_pair if self.colour_pair else [], dtype=str),
+            tracks=self.tracks,
             meta_json=np.array(json.dumps(self.meta, sort_keys=True, default=str)),
         )
 
@@ -260,9 +355,10 @@ class KGrid:
             bands = [str(b) for b in d["bands"]]
             colour = d["colour"] if d["colour"].size else None
             pair = tuple(str(c) for c in d["colour_pair"]) or None
+            tracks = d["tracks"] if "tracks" in d.files else None
             return cls(z=d["z"], k={b: d["k"][i] for i, b in enumerate(bands)},
                        names=tuple(str(n) for n in d["names"]), colour=colour,
-                       colour_pair=pair, meta=json.loads(str(d["meta_json"])))
+                       colour_pair=pair, meta=json.loads(str(d["meta_json"])), tracks=tracks)
 
 
 def grid_redshifts(z_min: float, z_max: float, dz: float) -> np.ndarray:
@@ -285,18 +381,20 @@ def build_grids(templates: Templates, filters: dict, colour_pair: tuple[str, str
     (blue, red) labels among ``filters`` used to pick templates, or None for a
     single default template. ``ab_minus_vega``: label -> AB - Vega offset
     (0 or absent for AB bands), so model colours are in the catalog's systems.
-    The colour must be strictly monotonic along the template sequence at every
-    grid redshift (else ValueError: the pair cannot rank the templates).
+    A colour that is not monotonic along a track is allowed (``assign`` then
+    finds several matches and their spread enters K_err); the redshifts where
+    that happens are recorded in ``meta['colour_not_monotonic_z']``.
     """
     z = grid_redshifts(z_min, z_max, dz)
     offsets = dict(ab_minus_vega or {})
+    tracks = templates.track_indices
     if colour_pair is not None:
         colour_pair = tuple(colour_pair)
         if len(colour_pair) != 2 or any(c not in filters for c in colour_pair) or colour_pair[0] == colour_pair[1]:
             raise ValueError(f"kcorrect.colour_pair: needs two different configured bands "
                              f"(allowed: {', '.join(filters)}; got {colour_pair})")
-        if len(templates.names) < 2:
-            raise ValueError("kcorrect.colour_pair: colour matching needs >= 2 templates")
+        if tracks.shape[1] < 2:
+            raise ValueError("kcorrect.colour_pair: colour matching needs >= 2 templates per track")
     for label, filt in filters.items():
         lo, hi = filt.wavelength[0] / (1 + z_max), filt.wavelength[-1] / (1 + z_min)
         if templates.wave[0] > lo or templates.wave[-1] < hi:
@@ -306,16 +404,16 @@ def build_grids(templates: Templates, filters: dict, colour_pair: tuple[str, str
     k = {label: k_correction(filt, templates.wave, templates.flux_lambda, z)
          for label, filt in filters.items()}
     colour = None
+    not_monotonic = None
     if colour_pair is not None:
         blue, red = colour_pair
         colour = (model_colour_ab(filters[blue], filters[red], templates.wave, templates.flux_lambda, z)
                   - (float(offsets.get(blue, 0.0)) - float(offsets.get(red, 0.0))))
-        step = np.diff(colour, axis=0)
-        if not (np.all(step > 0) or np.all(step < 0)):
-            bad = z[~(np.all(step > 0, axis=0) | np.all(step < 0, axis=0))]
-            raise ValueError(f"kcorrect.colour_pair: model colour {blue}-{red} is not monotonic "
-                             f"along the templates ({', '.join(templates.names)}) at z = "
-                             f"{bad.min():.3f}..{bad.max():.3f}; choose a pair that ranks them")
+        step = np.diff(colour[tracks], axis=1)  # (n_tracks, n_steps - 1, n_z)
+        ok = np.all(step > 0, axis=1) | np.all(step < 0, axis=1)  # (n_tracks, n_z)
+        if not ok.all():
+            bad = z[~ok.all(axis=0)]
+            not_monotonic = [float(bad.min()), float(bad.max())]
     meta = {
         "definition": "Hogg et al. 2002 (astro-ph/0210394) eq. 13, same band in and out",
         "filters": {b: getattr(f, "name", str(b)) for b, f in filters.items()},
@@ -323,11 +421,16 @@ def build_grids(templates: Templates, filters: dict, colour_pair: tuple[str, str
         "ab_minus_vega": {b: float(offsets.get(b, 0.0)) for b in filters},
         "templates_file": templates.meta.get("file"),
         "templates_sha256": templates.meta.get("file_sha256"),
+        "tracks": [list(t) for t in templates.tracks],
+        "colour_not_monotonic_z": not_monotonic,
     }
-    return KGrid(z=z, k=k, names=templates.names, colour=colour, colour_pair=colour_pair, meta=meta)
+    return KGrid(z=z, k=k, names=templates.names, colour=colour, colour_pair=colour_pair, meta=meta,
+                 tracks=tracks)
 
 
 # ------------------------------------------------------------- per galaxy
+
+CHUNK_VALUES = 1 << 22  # values per per-template work array set; bounds memory per chunk of rows
 
 
 def _z_index(grid: KGrid, z: np.ndarray):
@@ -341,93 +444,233 @@ def _z_index(grid: KGrid, z: np.ndarray):
     return i, u - i, valid
 
 
-def _interp_z(table: np.ndarray, t: np.ndarray, i: np.ndarray, w: np.ndarray) -> np.ndarray:
-    """table[t, z] at integer template rows t and fractional grid positions i + w."""
+def _interp_z(table: np.ndarray, t, i: np.ndarray, w: np.ndarray) -> np.ndarray:
+    """table[t, z] at template rows t (int or array) and fractional grid positions i + w."""
     flat = table.ravel()
     base = t * table.shape[1] + i
     return flat[base] * (1.0 - w) + flat[base + 1] * w
 
 
-def evaluate(grid: KGrid, z, template) -> tuple[dict, np.ndarray | None]:
-    """K per band and the model colour at redshifts ``z`` and fractional template indices.
+def _chunks(grid: KGrid, n: int):
+    nt, nb = len(grid.names), len(grid.k) + 1
+    size = int(max(1024, min(1 << 17, CHUNK_VALUES // (nt * nb))))
+    for start in range(0, n, size):
+        yield slice(start, min(n, start + size))
 
-    The forward direction of ``assign`` (same interpolation in z and between the two
-    neighbouring templates): assign(grid, z, colour) on the returned colour gives
-    back ``template``. NaN where z is outside the grid.
+
+def _match(grid: KGrid, i, w, c, sigma):
+    """Colour match on every track for one chunk of rows (all arrays of the chunk's length).
+
+    Returns (k_best, k_lo, k_hi, tpl, dmin): per band the mean K over all points of all
+    tracks whose model colour equals ``c`` (the nearest template where there is none),
+    the least and greatest K over the points within max(sigma, dmin) of ``c``; the
+    fractional index of the first match on the reference track (its nearest template
+    where there is none); the colour distance to the nearest point of any track.
+    """
+    nt, n = len(grid.names), c.size
+    tracks = grid.tracks
+    col = np.empty((nt, n))
+    for t in range(nt):  # loops over templates and segments, never over galaxies
+        col[t] = _interp_z(grid.colour, t, i, w)
+    kt = {b: np.empty((nt, n)) for b in grid.k}
+    for b, table in grid.k.items():
+        for t in range(nt):
+            kt[b][t] = _interp_z(table, t, i, w)
+    ksum = {b: np.zeros(n) for b in grid.k}
+    count = np.zeros(n)
+    tpl = np.full(n, np.nan)
+    rows = np.arange(n)
+    dist = np.abs(col - c)  # (n_t, n) colour distance to every template
+    nearest = np.argmin(dist, axis=0)
+    near_d = dist[nearest, rows]
+    k_near = {b: kt[b][nearest, rows] for b in grid.k}
+    ref_step = np.argmin(dist[tracks[0]], axis=0).astype(float)
+    del dist
+    for r, track in enumerate(tracks):
+        for s in range(track.size - 1):
+            a, e = track[s], track[s + 1]
+            ca, ce = col[a], col[e]
+            hit = (np.minimum(ca, ce) <= c) & (c <= np.maximum(ca, ce))
+            if s > 0:
+                hit &= c != ca  # a match exactly on a template counts once
+            if not hit.any():
+                continue
+            dc = ce - ca
+            flat = dc == 0
+            u = np.clip(np.where(flat, 0.5, (c - ca) / np.where(flat, 1.0, dc)), 0.0, 1.0)
+            count += hit
+            for b in grid.k:
+                ksum[b] += np.where(hit, kt[b][a] + u * (kt[b][e] - kt[b][a]), 0.0)
+            if r == 0:
+                tpl = np.where(np.isnan(tpl) & hit, s + u, tpl)
+    none = count == 0  # then the nearest point of any track is a template (a segment end)
+    k_best = {b: np.where(none, k_near[b], ksum[b] / np.where(none, 1.0, count)) for b in grid.k}
+    tpl = np.where(np.isnan(tpl), ref_step, tpl)
+    dmin = np.where(none, near_d, 0.0)
+    # spread: every point of every track within max(sigma, dmin) of the colour
+    se = np.maximum(np.where(np.isfinite(sigma), sigma, 0.0), dmin)
+    cl, ch = c - se, c + se
+    tiny = 1e-9
+    k_lo = {b: np.full(n, np.inf) for b in grid.k}
+    k_hi = {b: np.full(n, -np.inf) for b in grid.k}
+    for track in tracks:
+        for s in range(track.size - 1):
+            a, e = track[s], track[s + 1]
+            ca, ce = col[a], col[e]
+            ol, oh = np.maximum(cl, np.minimum(ca, ce)), np.minimum(ch, np.maximum(ca, ce))
+            hit = ol <= oh + tiny
+            if not hit.any():
+                continue
+            dc = ce - ca
+            flat = dc == 0
+            safe = np.where(flat, 1.0, dc)
+            u1 = np.clip(np.where(flat, 0.0, (ol - ca) / safe), 0.0, 1.0)
+            u2 = np.clip(np.where(flat, 1.0, (oh - ca) / safe), 0.0, 1.0)
+            for b in grid.k:
+                ka, dk = kt[b][a], kt[b][e] - kt[b][a]
+                k1, k2 = ka + u1 * dk, ka + u2 * dk
+                k_lo[b] = np.where(hit, np.minimum(k_lo[b], np.minimum(k1, k2)), k_lo[b])
+                k_hi[b] = np.where(hit, np.maximum(k_hi[b], np.maximum(k1, k2)), k_hi[b])
+    return k_best, k_lo, k_hi, tpl, dmin
+
+
+def _all_templates(grid: KGrid, i, w, t_default: int):
+    """K of one template, and the least and greatest K over all templates, for a chunk."""
+    k_def, k_lo, k_hi = {}, {}, {}
+    for b, table in grid.k.items():
+        k_def[b] = _interp_z(table, t_default, i, w)
+        lo, hi = np.full(i.size, np.inf), np.full(i.size, -np.inf)
+        for t in range(len(grid.names)):
+            v = _interp_z(table, t, i, w)
+            lo, hi = np.minimum(lo, v), np.maximum(hi, v)
+        k_lo[b], k_hi[b] = lo, hi
+    return k_def, k_lo, k_hi
+
+
+def _reference_colour(grid: KGrid, i, w, x):
+    """Model colour on the reference track at fractional positions x (linear between templates)."""
+    ref = grid.tracks[0]
+    t_lo = np.minimum(np.floor(x).astype(np.intp), max(ref.size - 2, 0))
+    t_hi = np.minimum(t_lo + 1, ref.size - 1)
+    a = x - t_lo
+    return _interp_z(grid.colour, ref[t_lo], i, w) * (1.0 - a) + _interp_z(grid.colour, ref[t_hi], i, w) * a
+
+
+def evaluate(grid: KGrid, z, template) -> tuple[dict, np.ndarray | None]:
+    """K per band and the model colour at redshifts ``z`` and reference-track positions.
+
+    The forward direction of ``assign``: ``template`` is a fractional index along the
+    reference track (the first); the colour is that track's model colour there
+    (linear between neighbouring templates), and K is what ``assign`` gives for that
+    colour (the mean over every track's match), so assign(grid, z, colour) gives
+    back these K. Without a colour pair, K of the reference track at ``template``.
+    NaN where z is outside the grid.
     """
     z = np.asarray(z, dtype=float).ravel()
-    tpl = np.clip(np.asarray(template, dtype=float).ravel(), 0.0, len(grid.names) - 1)
+    x = np.clip(np.asarray(template, dtype=float).ravel(), 0.0, grid.n_steps - 1)
     i, w, zvalid = _z_index(grid, z)
-    nt = len(grid.names)
-    t_lo = np.minimum(np.floor(tpl).astype(np.intp), max(nt - 2, 0))
-    t_hi = np.minimum(t_lo + 1, nt - 1)
-    a = tpl - t_lo
+    ref = grid.tracks[0]
+    k = {b: np.empty(z.size) for b in grid.k}
+    colour = None if grid.colour is None else np.empty(z.size)
+    for sl in _chunks(grid, z.size):
+        ii, ww, xx = i[sl], w[sl], x[sl]
+        if grid.colour is None:
+            t_lo = np.minimum(np.floor(xx).astype(np.intp), max(ref.size - 2, 0))
+            t_hi = np.minimum(t_lo + 1, ref.size - 1)
+            a = xx - t_lo
+            for b, table in grid.k.items():
+                k[b][sl] = _interp_z(table, ref[t_lo], ii, ww) * (1 - a) + _interp_z(table, ref[t_hi], ii, ww) * a
+            continue
+        c = _reference_colour(grid, ii, ww, xx)
+        colour[sl] = c
+        k_best, *_ = _match(grid, ii, ww, c, np.zeros(c.size))
+        for b in grid.k:
+            k[b][sl] = k_best[b]
+    for b in k:
+        k[b][~zvalid] = np.nan
+    if colour is not None:
+        colour[~zvalid] = np.nan
+    return k, colour
 
-    def at(table):
-        v = _interp_z(table, t_lo, i, w) * (1.0 - a) + _interp_z(table, t_hi, i, w) * a
-        v[~zvalid] = np.nan
-        return v
 
-    k = {band: at(table) for band, table in grid.k.items()}
-    return k, (at(grid.colour) if grid.colour is not None else None)
-
-
-def assign(grid: KGrid, z, colour_obs, default_template: str, clip_tolerance: float = 0.0) -> dict:
-    """Per-galaxy K-corrections by template colour matching.
+def assign(grid: KGrid, z, colour_obs, default_template: str, clip_tolerance: float = 0.0,
+           colour_err=None) -> dict:
+    """Per-galaxy K-corrections and their template errors by colour matching on every track.
 
     ``z``: heliocentric (observed) redshift. ``colour_obs``: observed colour
     m_blue - m_red of the grid's colour pair, Galactic-extinction corrected, in
     the catalog's systems; None to use ``default_template`` for every row
-    without a flag (single-template mode). ``default_template``: the template
-    name used where the colour is NaN (ValueError if unknown). Each galaxy gets the fractional template index where the
-    model colour at its z equals its colour, and K linearly interpolated between
-    the two neighbouring templates and in z.
+    without a flag (single-template mode). ``colour_err``: its 1-sigma error
+    (mag; None or NaN = 0). ``default_template``: the template used where the
+    colour is NaN (ValueError if unknown).
 
-    Returns ``K_<band>`` per band, ``kcorr_template`` (fractional index along
-    the passive -> star-forming sequence) and ``kcorr_flags`` (KCorr bits):
-    COLOR_CLIPPED (colour outside the template range by more than
-    ``clip_tolerance`` mag, end template used; closer than that the end template
-    is used without a flag, since photometric noise alone puts galaxies there),
-    COLOR_MISSING (NaN colour, default template used), Z_BEYOND_GRID (z NaN or
-    outside the grid: K and template NaN).
+    Matching: along each track the model colour at the galaxy's z is linear
+    between neighbouring templates; every point where it equals the observed
+    colour is a match (a track whose colour is not monotonic can give several).
+    ``K_<band>`` is the mean K over all matches of all tracks; where there is
+    none (the colour is outside every track's range), K of the template whose
+    colour is nearest. ``K_<band>_err`` is half the range of K over every point
+    of every track whose model colour lies within max(colour_err, d) of the
+    observed colour, d the distance to the nearest track (0 when matched): the
+    spread of K over the templates the colour cannot tell apart. Where the colour
+    is missing, and in single-template mode, K is the default template's and
+    K_<band>_err half the range of K over all templates at that z.
+
+    Returns ``K_<band>``, ``K_<band>_err`` per band, ``kcorr_template`` (fractional
+    index along the reference track of the first match there, or of its template
+    nearest in colour; for the default template its position along its own
+    track) and ``kcorr_flags`` (KCorr bits): COLOR_CLIPPED (colour outside every
+    track's range by more than ``clip_tolerance`` mag; closer than that the
+    nearest template is used without a flag, since photometric noise alone puts
+    galaxies there), COLOR_MISSING (NaN colour, default template used),
+    Z_BEYOND_GRID (z NaN or outside the grid: K, its error and template NaN).
     """
     z = np.asarray(z, dtype=float).ravel()
     n = z.size
-    nt = len(grid.names)
-    default_index = grid.index(default_template)
+    t_default = grid.index(default_template)
+    step_default = float(grid.step_of(default_template))
     out_flags = fl.new(n)
     i, w, zvalid = _z_index(grid, z)
+    k = {b: np.empty(n) for b in grid.k}
+    k_err = {b: np.empty(n) for b in grid.k}
+    tpl = np.full(n, step_default)
 
     if colour_obs is None or grid.colour is None:
         if colour_obs is not None:
             raise ValueError("kcorrect.colour_pair: a colour was given but the grid has no colour pair")
-        tpl = np.full(n, float(default_index))
+        for sl in _chunks(grid, n):
+            k_def, lo, hi = _all_templates(grid, i[sl], w[sl], t_default)
+            for b in grid.k:
+                k[b][sl], k_err[b][sl] = k_def[b], 0.5 * (hi[b] - lo[b])
     else:
         c = np.asarray(colour_obs, dtype=float).ravel()
         if c.size != n:
             raise ValueError(f"kcorrect: colour_obs has {c.size} rows, z has {n}")
-        s = grid.colour_sign  # orient so the model colour increases with index
-        sc = s * c
-        count = np.zeros(n, dtype=np.intp)
-        for t in range(nt):  # loop over the few templates, not over galaxies
-            ct = _interp_z(grid.colour, np.full(n, t, dtype=np.intp), i, w)
-            count += (s * ct <= sc)
-        lo = np.clip(count - 1, 0, nt - 2)
-        c_lo = s * _interp_z(grid.colour, lo, i, w)
-        c_hi = s * _interp_z(grid.colour, lo + 1, i, w)
-        frac = (sc - c_lo) / (c_hi - c_lo)
+        sig = np.zeros(n) if colour_err is None else np.abs(np.asarray(colour_err, dtype=float).ravel())
+        if sig.size != n:
+            raise ValueError(f"kcorrect: colour_err has {sig.size} rows, z has {n}")
         missing = ~np.isfinite(c)
-        beyond = np.where(frac < 0.0, c_lo - sc, np.where(frac > 1.0, sc - c_hi, 0.0))
-        clipped = ~missing & (beyond > clip_tolerance)
-        tpl = lo + np.clip(frac, 0.0, 1.0)
-        tpl[missing] = float(default_index)
+        clipped = np.zeros(n, dtype=bool)
+        for sl in _chunks(grid, n):
+            ii, ww, cc, miss = i[sl], w[sl], c[sl], missing[sl]
+            k_best, lo, hi, x, dmin = _match(grid, ii, ww, np.where(miss, 0.0, cc), sig[sl])
+            k_def, lo_all, hi_all = _all_templates(grid, ii, ww, t_default)
+            for b in grid.k:
+                k[b][sl] = np.where(miss, k_def[b], k_best[b])
+                k_err[b][sl] = 0.5 * np.where(miss, hi_all[b] - lo_all[b], hi[b] - lo[b])
+            tpl[sl] = np.where(miss, step_default, x)
+            clipped[sl] = ~miss & (dmin > clip_tolerance)
         fl.set_where(out_flags, clipped, KCorr.COLOR_CLIPPED)
         fl.set_where(out_flags, missing, KCorr.COLOR_MISSING)
 
     fl.set_where(out_flags, ~zvalid, KCorr.Z_BEYOND_GRID)
-    k, _ = evaluate(grid, z, tpl)
-    out = {f"K_{band}": values for band, values in k.items()}
-    tpl = tpl.astype(float)
+    out = {}
+    for b in grid.k:
+        k[b][~zvalid] = np.nan
+        k_err[b][~zvalid] = np.nan
+        out[f"K_{b}"] = k[b]
+    for b in grid.k:
+        out[f"K_{b}_err"] = k_err[b]
     tpl[~zvalid] = np.nan
     out["kcorr_template"] = tpl
     out["kcorr_flags"] = out_flags
