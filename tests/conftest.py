@@ -3,9 +3,11 @@
 from __future__ import annotations
 
 import os
+import signal
 import shutil
 import subprocess
 import sys
+import time
 from pathlib import Path
 
 import numpy as np
@@ -90,3 +92,42 @@ def assert_same_table(a, b, what: str) -> None:
             np.testing.assert_array_equal(ca.to_numpy(), cb.to_numpy(), err_msg=f"{what}: {name}")
         else:
             assert ca.to_pylist() == cb.to_pylist(), f"{what}: {name}"
+
+
+# --- killing a run at a chosen moment (recovery tests) --------------------------------------
+
+def group_gone(pgid: int, timeout: float = 10.0) -> bool:
+    """True once no process of group ``pgid`` is left."""
+    end = time.monotonic() + timeout
+    while time.monotonic() < end:
+        try:
+            os.killpg(pgid, 0)
+        except ProcessLookupError:
+            return True
+        time.sleep(0.05)
+    return False
+
+
+def start_and_kill(cmd: list[str], cwd: Path, env: dict, when, log: Path, timeout: float = 600,
+                   poll: float = 0.002) -> tuple[bool, int | None]:
+    """Run ``cmd`` in its own process group; SIGKILL the whole group as soon as ``when()`` holds.
+
+    Returns (killed, return code if it ended by itself first); its output goes to ``log``.
+    """
+    with open(log, "w") as out:
+        proc = subprocess.Popen(cmd, cwd=cwd, env=env, stdout=out, stderr=subprocess.STDOUT,
+                                start_new_session=True)
+        end = time.monotonic() + timeout
+        try:
+            while proc.poll() is None and time.monotonic() < end:
+                if when():
+                    os.killpg(proc.pid, signal.SIGKILL)
+                    proc.wait()
+                    assert group_gone(proc.pid), "processes of the killed run survived"
+                    return True, None
+                time.sleep(poll)
+        finally:
+            if proc.poll() is None:
+                os.killpg(proc.pid, signal.SIGKILL)
+                proc.wait()
+    return False, proc.returncode

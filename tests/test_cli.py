@@ -19,10 +19,8 @@ from __future__ import annotations
 import fcntl
 import json
 import os
-import signal
 import subprocess
 import sys
-import time
 from pathlib import Path
 
 import numpy as np
@@ -32,7 +30,7 @@ import pyarrow.parquet as pq
 import pytest
 import yaml
 
-from conftest import REPO, small_catalog
+from conftest import REPO, small_catalog, start_and_kill
 from galdist import cli, propose
 from test_determinism import assert_same_products
 
@@ -318,7 +316,7 @@ def test_run_puts_every_row_in_the_product(clean):
     assert table.column("galaxy_id").to_pylist() == source["objname"].tolist()
     assert not (REPO / "galdist-results" / RUN).exists()
     out = result.stdout
-    assert "[ingest] done" in out and "[tully_fisher] 3/3 shards" in out and "[assemble] done" in out
+    assert "[ingest] done" in out and "[distance] 6/6 jobs" in out and "[assemble] done" in out
     assert "distances.parquet" in out.split("products in", 1)[1]
     log = (run / "logs" / "galdist-run.log").read_text()
     assert "Finished jobid" in log and "Rule: assemble" in log
@@ -369,37 +367,12 @@ def test_run_refuses_to_clear_the_lock_of_a_live_snakemake(clean, tmp_path):
 # --- SIGKILL and resume ------------------------------------------------------------------
 
 def _start_and_kill(folder: Path, when, log: Path, timeout: float = 300) -> bool:
-    """Start `galdist run` in its own process group; SIGKILL the group once ``when()`` holds.
-    Returns False if the run ended by itself first."""
-    env = dict(os.environ)
-    env.pop("SNAKEMAKE_PROFILE", None)
-    with open(log, "w") as out:
-        proc = subprocess.Popen([sys.executable, "-m", "galdist.cli", *RUN_ARGS], cwd=folder, env=env,
-                                stdout=out, stderr=subprocess.STDOUT, start_new_session=True)
-        end = time.monotonic() + timeout
-        try:
-            while proc.poll() is None and time.monotonic() < end:
-                if when():
-                    os.killpg(proc.pid, signal.SIGKILL)
-                    proc.wait()
-                    assert _group_gone(proc.pid), "processes of the killed run survived"
-                    return True
-                time.sleep(0.005)
-        finally:
-            if proc.poll() is None:
-                os.killpg(proc.pid, signal.SIGKILL)
-                proc.wait()
-    return False
-
-
-def _group_gone(pgid: int) -> bool:
-    for _ in range(200):
-        try:
-            os.killpg(pgid, 0)
-        except ProcessLookupError:
-            return True
-        time.sleep(0.05)
-    return False
+    """`galdist run` SIGKILLed (its whole process group) once ``when()`` holds; False if
+    the run ended by itself first."""
+    env = {k: v for k, v in os.environ.items() if k != "SNAKEMAKE_PROFILE"}
+    killed, _ = start_and_kill([sys.executable, "-m", "galdist.cli", *RUN_ARGS], folder, env, when, log,
+                               timeout, poll=0.005)
+    return killed
 
 
 def _files(run: Path) -> dict[str, bytes]:

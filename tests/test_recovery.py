@@ -24,11 +24,9 @@ import json
 import os
 import re
 import shutil
-import signal
 import stat
 import subprocess
 import sys
-import time
 from pathlib import Path
 
 import numpy as np
@@ -36,7 +34,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from conftest import REPO, copy_workflow, run_snakemake
+from conftest import REPO, copy_workflow, run_snakemake, start_and_kill
 from galdist import io as gio
 from test_determinism import assert_same_products, product_files
 
@@ -187,40 +185,11 @@ def _command(*extra: str) -> list[str]:
     return [sys.executable, "-m", "snakemake", "--cores", "2", *ARGS, *extra]
 
 
-def _group_gone(pgid: int, timeout: float = 10.0) -> bool:
-    end = time.monotonic() + timeout
-    while time.monotonic() < end:
-        try:
-            os.killpg(pgid, 0)
-        except ProcessLookupError:
-            return True
-        time.sleep(0.05)
-    return False
-
-
 def _start_and_kill(workdir: Path, when, log: Path, extra: list[str],
                     timeout: float = 600) -> tuple[bool, int | None, str]:
-    """Start the workflow in its own process group; SIGKILL the group as soon as ``when()`` holds.
-
-    Returns (killed, returncode if it ended by itself, its output).
-    """
-    with open(log, "w") as out:
-        proc = subprocess.Popen(_command(*extra), cwd=workdir, env=_env(), stdout=out, stderr=subprocess.STDOUT,
-                                start_new_session=True)
-        end = time.monotonic() + timeout
-        try:
-            while proc.poll() is None and time.monotonic() < end:
-                if when():
-                    os.killpg(proc.pid, signal.SIGKILL)
-                    proc.wait()
-                    assert _group_gone(proc.pid), "processes of the killed run survived"
-                    return True, None, log.read_text()
-                time.sleep(0.001)
-        finally:
-            if proc.poll() is None:
-                os.killpg(proc.pid, signal.SIGKILL)
-                proc.wait()
-    return False, proc.returncode, log.read_text()
+    """The workflow, SIGKILLed as soon as ``when()`` holds: (killed, return code, its output)."""
+    killed, rc = start_and_kill(_command(*extra), workdir, _env(), when, log, timeout, poll=0.001)
+    return killed, rc, log.read_text()
 
 
 def _recovery_step(output: str, remedies: list[str], workdir: Path) -> list[str]:
@@ -397,7 +366,7 @@ def test_failed_shard_names_itself_others_finish_and_only_it_reruns(reference, k
     planned = plan.stdout + plan.stderr
     assert plan.returncode == 0, planned[-2000:]
     assert _job_counts(planned) == {
-        "extinction": 1, "kcorrect": 1, "tully_fisher": 1, "sbf": 1, "crosscheck_statistics": 1,
+        "extinction": 1, "kcorrect": 1, "distance": 2, "crosscheck_statistics": 1,
         "assemble": 1, "plots": 1, "all": 1}
     outputs = [line for line in planned.splitlines() if line.strip().startswith("output:")]
     assert any("part-00001.parquet" in line for line in outputs)
