@@ -1,0 +1,104 @@
+"""The run report page (galdist.report): self-contained, key numbers as text, plots
+embedded with their captions in view, and it opens in a real browser."""
+
+from __future__ import annotations
+
+import base64
+import re
+import shutil
+import subprocess
+
+import matplotlib
+
+matplotlib.use("Agg")
+import matplotlib.pyplot as plt  # noqa: E402
+import pytest  # noqa: E402
+
+from galdist import report  # noqa: E402
+
+SUMMARY = {
+    "rows_in": 800, "rows_out": 800, "best_method": {"none": 133, "tf": 371, "sbf": 277, "tf+sbf": 19},
+    "cosmology": {"name": None, "H0": 70.0, "Om0": 0.3},
+    "inputs": [{"path": "cat.parquet", "format": "parquet", "sha256": "ab" * 32}],
+    "cautions": ["Tully-Fisher distances of discs below the inclination limit are unreliable."],
+    "flag_counts": {"tf_flags": {"LOW_INCLINATION": 121, "OUTLIER": 2}, "sbf_flags": {}},
+    "statistics": {
+        "methods": {"tf": {"n_used": 384, "n_measured": 513, "wmean": 0.0062, "wmean_err": 0.0223, "median": -0.0063,
+                           "median_err": 0.0266, "std": 0.4153, "rms_expected_err": 0.4381, "chi2_nu": 0.90,
+                           "h0_implied": 69.80, "h0_implied_err": 0.72},
+                    "sbf": {"n_used": 293, "n_measured": 299, "wmean": -0.0066, "wmean_err": 0.0090}},
+        "pairs": {"tf-sbf": {"n_used": 19, "wmean": 0.0006, "wmean_err": 0.105}},
+    },
+}
+PROVENANCE = {"created_utc": "2026-12-03T09:04:57+00:00", "git_commit": "0e53adc",
+              "calibrations": {"tully_fisher": {"name": "tf_i_tully_courtois_2012",
+                                                "reference": "Tully & Courtois 2012, ApJ 749, 78 (from memory)"}}}
+
+
+@pytest.fixture
+def page(tmp_path):
+    plots = []
+    for name in ("hubble_diagram", "dmu_histograms"):
+        fig, ax = plt.subplots(figsize=(3, 2))
+        ax.plot([0, 1], [0, 1])
+        fig.savefig(tmp_path / f"{name}.png")
+        plt.close(fig)
+        plots.append((name, tmp_path / f"{name}.png", f"caption of {name}"))
+    path = tmp_path / "report.html"
+    report.write(path, "demo", SUMMARY, PROVENANCE, plots)
+    return path
+
+
+def test_key_numbers_are_text_and_the_page_stands_alone(page):
+    text = page.read_text()
+    for needle in ("384", "+0.006 ± 0.022", "69.8 ± 0.7", "800 / 800", "Tully–Fisher − SBF",
+                   "tf_i_tully_courtois_2012", "LOW_INCLINATION", "caption of dmu_histograms",
+                   "inclination limit are unreliable"):
+        assert needle in text, needle
+    assert "<script" not in text.lower()
+    images = re.findall(r"src='data:image/png;base64,([^']+)'", text)
+    assert len(images) == 2 and all(base64.b64decode(i).startswith(b"\x89PNG") for i in images)
+    assert not re.search(r"src=['\"](?!data:)", text)  # nothing loaded from elsewhere
+
+
+def test_single_method_says_there_is_no_comparison(tmp_path):
+    one = SUMMARY | {"statistics": {"methods": {"tf": SUMMARY["statistics"]["methods"]["tf"]}, "pairs": {}}}
+    html = report.render("tf-only", one, PROVENANCE, [])
+    assert "no comparison between methods" in html and "SBF" not in html.split("<h2>Cautions")[0].split("Key numbers")[1]
+
+
+def _chromium():
+    for name in ("chromium", "chromium-browser"):
+        if shutil.which(name):
+            return shutil.which(name)
+    try:  # Debian's package, installed like the SLURM test installs its cluster
+        subprocess.run(["apt-get", "update", "-qq"], check=True, capture_output=True, timeout=600)
+        subprocess.run(["apt-get", "install", "-y", "-qq", "chromium"], check=True, capture_output=True, timeout=900,
+                       env={"DEBIAN_FRONTEND": "noninteractive", "PATH": "/usr/sbin:/usr/bin:/sbin:/bin"})
+    except (OSError, subprocess.SubprocessError) as exc:
+        pytest.skip(f"headless Chromium cannot be installed here: {exc}")
+    return shutil.which("chromium") or pytest.skip("chromium not found after installing it")
+
+
+@pytest.mark.slow
+def test_opens_in_a_real_browser(page, tmp_path):
+    """Headless Chromium renders the page: the text it sees holds the key numbers and
+    every image decoded (naturalWidth > 0)."""
+    chromium = _chromium()
+    probe = page.read_text().replace(
+        "</body>", "<p id='probe'></p></body>")
+    # the page itself has no script; the check is added to a copy only
+    probe = probe.replace("<p id='probe'></p>", "<p id='probe'></p><script>window.onload = () => {"
+                          "const ok = [...document.images].every(i => i.complete && i.naturalWidth > 0);"
+                          "document.getElementById('probe').textContent = 'IMAGES ' + (ok ? 'LOADED' : 'BROKEN');};"
+                          "</script>")
+    copy = tmp_path / "probe.html"
+    copy.write_text(probe)
+    args = [chromium, "--headless", "--no-sandbox", "--disable-gpu", "--virtual-time-budget=5000"]
+    dom = subprocess.run([*args, "--dump-dom", copy.as_uri()], capture_output=True, text=True, timeout=120)
+    assert "IMAGES LOADED" in dom.stdout, dom.stderr[-2000:]
+    assert "69.8 ± 0.7" in dom.stdout
+    shot = tmp_path / "first_screen.png"
+    subprocess.run([*args, "--window-size=1280,1000", f"--screenshot={shot}", page.as_uri()], capture_output=True,
+                   timeout=120)
+    assert shot.stat().st_size > 10_000
