@@ -15,8 +15,7 @@ include: "workflow/rules/ingest.smk"
 include: "workflow/rules/extinction.smk"
 include: "workflow/rules/kcorrect.smk"
 include: "workflow/rules/redshift.smk"
-include: "workflow/rules/tully_fisher.smk"
-include: "workflow/rules/sbf.smk"
+include: "workflow/rules/methods.smk"
 include: "workflow/rules/crosscheck.smk"
 
 

@@ -23,6 +23,7 @@ from astropy.table import MaskedColumn, Table
 from conftest import BANDS, small_catalog
 from galdist import flags as F
 from galdist import ingest, preflight
+from galdist.columns import method_columns
 from galdist.errors import CatalogError, ConfigError
 
 METHODS = ["tully_fisher", "sbf"]
@@ -409,5 +410,6 @@ def test_flag_texts_state_the_bounds():
     for words in ("> 10 mag", "[0.01, 1]", "> 1e7 Jy km/s", "w50_resolution > 500 km/s", "z_helio_err missing, "
                   "non-finite, negative or > 1", "w50_err negative, > 2000 km/s", "w50 < 1 km/s"):
         assert words in text, words
-    assert (ingest.EBV_MAX, ingest.AXIS_RATIO_MIN, ingest.HI_FLUX_MAX, ingest.W50_RESOLUTION_MAX,
-            ingest.W50_MIN) == (10.0, 0.01, 1e7, 500.0, 1.0)
+    bounds = {c.name: c.valid for c in method_columns("tully_fisher")}  # its registry entry's
+    assert (ingest.EBV_MAX, bounds["axis_ratio"][0], ingest.HI_FLUX_MAX, ingest.W50_RESOLUTION_MAX,
+            bounds["w50"][0]) == (10.0, 0.01, 1e7, 500.0, 1.0)

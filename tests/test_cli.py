@@ -316,7 +316,7 @@ def test_run_puts_every_row_in_the_product(clean):
     assert table.column("galaxy_id").to_pylist() == source["objname"].tolist()
     assert not (REPO / "galdist-results" / RUN).exists()
     out = result.stdout
-    assert "[ingest] done" in out and "[tully_fisher] 3/3 shards" in out and "[assemble] done" in out
+    assert "[ingest] done" in out and "[distance] 6/6 jobs" in out and "[assemble] done" in out
     assert "distances.parquet" in out.split("products in", 1)[1]
     log = (run / "logs" / "galdist-run.log").read_text()
     assert "Finished jobid" in log and "Rule: assemble" in log

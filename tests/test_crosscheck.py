@@ -358,7 +358,8 @@ def test_crosscheck_driver_any_methods(cosmo, grid):
     cols = {"z_cmb": z, "z_cmb_err": np.full(n, 1e-4), "mu_z": mu_z, "mu_z_err": np.full(n, 0.05),
             "z_flags": z_flags, "tf_mu": mu, "tf_mu_err": err, "tf_flags": stale,
             "fp_mu": fp, "fp_mu_err": err, "fp_flags": flags.new(n)}
-    out, summary = crosscheck(cols, grid)
+    # any prefix, registered or not (fp is not yet); a method without columns (sbf) is skipped
+    out, summary = crosscheck(cols, grid, methods=("tf", "sbf", "fp"))
     for m in ("tf", "fp"):
         for c in ("dmu", "logd_ratio", "vpec", "vpec_err", "vpec_lr", "vpec_lr_err", "flags"):
             assert len(out[f"{m}_{c}"]) == n

@@ -215,12 +215,16 @@ def test_apply_extinction_columns_and_flags(law_default):
     outside = np.array([False, False, False, False, True, False])
     out = apply_extinction(ebv_in, err_in, law_default, ebv_scale=SF11_SCALE, high_limit=0.5,
                            outside=outside)
-    assert set(out) == {"ebv_used", "ebv_used_err", "ext_flags", *(f"A_{b}" for b in SPECLITE)}
+    assert set(out) == {"ebv_used", "ebv_used_err", "ext_flags", *(f"A_{b}" for b in SPECLITE),
+                        *(f"A_{b}_err" for b in SPECLITE)}
     assert all(len(v) == ebv_in.size for v in out.values())
     assert out["ext_flags"].dtype == flags.FLAG_DTYPE
     np.testing.assert_allclose(out["ebv_used"], SF11_SCALE * ebv_in)
     np.testing.assert_allclose(out["ebv_used_err"], [0.00172, np.nan, np.nan, np.nan, np.nan, 0.0086])
     np.testing.assert_allclose(out["A_r"], law_default["r"] * SF11_SCALE * ebv_in)
+    # every band's error is E(B-V)'s, scaled by the band's coefficient (one source)
+    np.testing.assert_allclose(out["A_r_err"], law_default["r"] * np.array([0.00172, np.nan, np.nan, np.nan,
+                                                                            np.nan, 0.0086]))
     f = out["ext_flags"]
     assert flags.has(f, flags.Ext.NO_EBV).tolist() == [False, True, False, False, True, False]
     # 0.7 x 0.86 = 0.60 > 0.5 on the true scale; 0.3 x 0.86 is not

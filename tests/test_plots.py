@@ -95,8 +95,8 @@ def _draw_all(df, tmp_path, grid, calibrations):
     tf_cal, sbf_cal = calibrations
     return {
         "hubble": plots.hubble_diagram(df, tmp_path / "hubble.png", grid),
-        "tf": plots.tf_relation(df, tmp_path / "tf.png", tf_cal),
-        "sbf": plots.sbf_relation(df, tmp_path / "sbf.png", sbf_cal),
+        "tf": plots.relation(df, tmp_path / "tf.png", "tf", tf_cal),
+        "sbf": plots.relation(df, tmp_path / "sbf.png", "sbf", sbf_cal),
         "dmu": plots.dmu_histograms(df, tmp_path / "dmu.png"),
         "sky": plots.vpec_sky(df, tmp_path / "sky.png"),
     }
@@ -145,8 +145,7 @@ def test_one_method_run_draws_only_its_plots(tmp_path, grid, calibrations, metho
     df = _frame(grid).drop(columns=[c for c in COLUMNS if c.split("_")[0] in other])
     tf_cal, sbf_cal = calibrations
     out = tmp_path / "plots"
-    paths = plots.write_all(df, out, grid, methods=methods, tf_calibration=tf_cal,
-                            sbf_calibration=sbf_cal)
+    paths = plots.write_all(df, out, grid, methods=methods, calibrations={"tf": tf_cal, "sbf": sbf_cal})
     expected = ["hubble_diagram", *relation, "dmu_histograms", "vpec_sky"]
     assert list(paths) == plots.plot_names(methods) == expected
     assert sorted(p.name for p in out.iterdir()) == sorted(f"{n}.png" for n in expected)

@@ -15,10 +15,8 @@ import yaml
 
 from galdist import flags as F
 from galdist.calibration import load_calibration
-from galdist.sbf import (
-    INPUTS, OUTPUT_COLUMNS, SBFSettings, check_calibration, color_system_offset,
-    sbf_distance, system_offset,
-)
+from galdist.photometry import color_system_offset, system_offset
+from galdist.sbf import INPUTS, OUTPUT_COLUMNS, SBFSettings, check_calibration, sbf_distance
 
 CAL_DIR = Path(__file__).resolve().parent.parent / "workflow" / "galdist" / "data" / "calibrations"
 TONRY = CAL_DIR / "sbf_tonry1997_cousins_i.yaml"
@@ -41,12 +39,19 @@ def _tmp_calibration(tmp_path, source, **changes):
     return load_calibration(path)
 
 
-def _tonry_inputs(n=1, **over):
+def _extinction(ebv, ebv_err, R_mag, R_blue, R_red):
+    """The extinction stage's columns for the SBF band and the colour's bands, from E(B-V)
+    and its error: A = R E(B-V), A_err = R sigma_E (one error source for all three)."""
+    ebv, err = np.asarray(ebv, dtype=float), np.asarray(ebv_err, dtype=float)
+    return dict(A_mag=R_mag * ebv, A_mag_err=R_mag * err, A_blue=R_blue * ebv, A_blue_err=R_blue * err,
+                A_red=R_red * ebv, A_red_err=R_red * err)
+
+
+def _tonry_inputs(n=1, ebv=0.05, ebv_err=0.008, **over):
     """Inputs of the worked example below (illustrative values, not published)."""
     base = dict(sbf_mag=np.full(n, 29.50), sbf_mag_err=np.full(n, 0.05),
                 sbf_color=np.full(n, 1.20), sbf_color_err=np.full(n, 0.02),
-                ebv_used=np.full(n, 0.05), ebv_used_err=np.full(n, 0.008),
-                R_mag=R_I_LANDOLT, R_blue=R_V_LANDOLT, R_red=R_I_LANDOLT,
+                **_extinction(np.full(n, ebv), np.full(n, ebv_err), R_I_LANDOLT, R_V_LANDOLT, R_I_LANDOLT),
                 K_mag=np.full(n, 0.010), K_blue=np.full(n, 0.030), K_red=np.full(n, 0.010))
     base.update(over)
     return base
@@ -64,8 +69,8 @@ def _tonry_inputs(n=1, **over):
 def test_zero_point_at_pivot(path, pivot, zero_point):
     cal = load_calibration(path)
     check_calibration(cal)
-    inputs = dict(sbf_mag=np.array([31.0]), sbf_color=np.array([pivot]), ebv_used=np.array([0.0]),
-                  R_mag=1.0, R_blue=2.0, R_red=1.0, K_mag=0.0, K_blue=0.0, K_red=0.0)
+    inputs = dict(sbf_mag=np.array([31.0]), sbf_color=np.array([pivot]),
+                  **_extinction(np.array([0.0]), np.array([0.0]), 1.0, 2.0, 1.0), K_mag=0.0, K_blue=0.0, K_red=0.0)
     out = sbf_distance(inputs, cal, NO_MC)
     assert out["sbf_abs_mag"][0] == pytest.approx(zero_point, abs=1e-12)
     assert out["sbf_mu"][0] == pytest.approx(31.0 - zero_point, abs=1e-12)
@@ -95,7 +100,7 @@ def test_blakeslee_cubic_shape():
     # x = -0.3: -2.04 - 0.423 + 0.234 - 0.10044           = -2.32944
     cal = load_calibration(BLAKESLEE)
     inputs = dict(sbf_mag=np.array([30.0, 30.0]), sbf_color=np.array([1.4, 1.0]),
-                  ebv_used=np.zeros(2), R_mag=R_F850LP, R_blue=R_F475W, R_red=R_F850LP,
+                  **_extinction(np.zeros(2), np.zeros(2), R_F850LP, R_F475W, R_F850LP),
                   K_mag=0.0, K_blue=0.0, K_red=0.0)
     out = sbf_distance(inputs, cal, NO_MC)
     assert out["sbf_abs_mag"] == pytest.approx([-1.86928, -2.32944], abs=1e-10)
@@ -171,8 +176,8 @@ def test_out_of_range_flagged_not_extrapolated():
     # Tonry et al. 1997: valid 1.0 < (V-I)_0 < 1.3 (secondary copy); ends treated as inside
     cal = load_calibration(TONRY)
     colors = np.array([0.95, 1.0, 1.2, 1.3, 1.35])
-    inputs = dict(sbf_mag=np.full(5, 30.0), sbf_color=colors, ebv_used=np.zeros(5),
-                  R_mag=R_I_LANDOLT, R_blue=R_V_LANDOLT, R_red=R_I_LANDOLT,
+    inputs = dict(sbf_mag=np.full(5, 30.0), sbf_color=colors,
+                  **_extinction(np.zeros(5), np.zeros(5), R_I_LANDOLT, R_V_LANDOLT, R_I_LANDOLT),
                   K_mag=0.0, K_blue=0.0, K_red=0.0)
     out = sbf_distance(inputs, cal, NO_MC)
     oor = F.has(out["sbf_flags"], F.Method.OUT_OF_RANGE)
@@ -206,7 +211,7 @@ def test_blakeslee_out_of_range():
     # Blakeslee et al. 2009 valid range ~0.8-1.6 (from memory)
     cal = load_calibration(BLAKESLEE)
     inputs = dict(sbf_mag=np.full(3, 31.0), sbf_color=np.array([0.7, 1.2, 1.7]),
-                  ebv_used=np.zeros(3), R_mag=R_F850LP, R_blue=R_F475W, R_red=R_F850LP,
+                  **_extinction(np.zeros(3), np.zeros(3), R_F850LP, R_F475W, R_F850LP),
                   K_mag=0.0, K_blue=0.0, K_red=0.0)
     out = sbf_distance(inputs, cal, NO_MC)
     assert F.has(out["sbf_flags"], F.Method.OUT_OF_RANGE).tolist() == [True, False, True]
@@ -223,7 +228,7 @@ def test_ebv_error_is_one_correlated_source(tmp_path):
     cal = _tmp_calibration(tmp_path, TONRY, name="tonry_exact", coefficient_errors=[0.0, 0.0], scatter=0.0)
     n = 200
     inputs = _tonry_inputs(n, sbf_mag_err=np.zeros(n), sbf_color_err=np.zeros(n),
-                           ebv_used_err=np.full(n, 0.02))
+                           ebv_err=0.02)
     out = sbf_distance(inputs, cal, SBFSettings(mc_draws=1000, mc_seed=3))
     # hand: 4.0615 * 0.02 = 0.08123 ; treating the two uses as independent would give
     # sqrt(1.505^2 + 5.5665^2) * 0.02 = 0.11533 (wrong)
@@ -241,8 +246,8 @@ def test_analytic_matches_monte_carlo_linear():
     n = 300
     inputs = dict(sbf_mag=rng.uniform(28, 33, n), sbf_mag_err=rng.uniform(0.02, 0.2, n),
                   sbf_color=rng.uniform(1.18, 1.27, n), sbf_color_err=rng.uniform(0.005, 0.04, n),
-                  ebv_used=rng.uniform(0.0, 0.1, n), ebv_used_err=rng.uniform(0.0, 0.02, n),
-                  R_mag=R_I_LANDOLT, R_blue=R_V_LANDOLT, R_red=R_I_LANDOLT,
+                  **_extinction(rng.uniform(0.0, 0.1, n), rng.uniform(0.0, 0.02, n),
+                                R_I_LANDOLT, R_V_LANDOLT, R_I_LANDOLT),
                   K_mag=rng.uniform(0, 0.03, n), K_blue=rng.uniform(0, 0.05, n), K_red=rng.uniform(0, 0.03, n))
     out = sbf_distance(inputs, cal, SBFSettings(mc_draws=1000, mc_seed=5))
     ratio = out["sbf_mu_err_mc"] / out["sbf_mu_err"]
@@ -259,8 +264,7 @@ def test_analytic_matches_monte_carlo_cubic_small_errors():
     n = 300
     inputs = dict(sbf_mag=rng.uniform(29, 33, n), sbf_mag_err=rng.uniform(0.02, 0.1, n),
                   sbf_color=rng.uniform(1.0, 1.5, n), sbf_color_err=np.full(n, 0.01),
-                  ebv_used=rng.uniform(0.0, 0.05, n), ebv_used_err=np.full(n, 0.005),
-                  R_mag=R_F850LP, R_blue=R_F475W, R_red=R_F850LP,
+                  **_extinction(rng.uniform(0.0, 0.05, n), np.full(n, 0.005), R_F850LP, R_F475W, R_F850LP),
                   K_mag=0.0, K_blue=0.0, K_red=0.0)
     out = sbf_distance(inputs, cal, SBFSettings(mc_draws=1000, mc_seed=9))
     ratio = out["sbf_mu_err_mc"] / out["sbf_mu_err"]
@@ -293,8 +297,8 @@ def _simulate(rng, n, truth_abs_mag, c0_range, R_mag, R_blue, R_red, sig_m, sig_
     c_obs = c0_true + (R_blue - R_red) * ebv_true + (k_blue - k_red) + sig_c * rng.standard_normal(n)
     ebv_obs = ebv_true + sig_e * rng.standard_normal(n)
     inputs = dict(sbf_mag=m_obs, sbf_mag_err=np.full(n, sig_m), sbf_color=c_obs,
-                  sbf_color_err=np.full(n, sig_c), ebv_used=ebv_obs, ebv_used_err=np.full(n, sig_e),
-                  R_mag=R_mag, R_blue=R_blue, R_red=R_red, K_mag=k_mag, K_blue=k_blue, K_red=k_red)
+                  sbf_color_err=np.full(n, sig_c), **_extinction(ebv_obs, np.full(n, sig_e), R_mag, R_blue, R_red),
+                  K_mag=k_mag, K_blue=k_blue, K_red=k_red)
     return inputs, mu_true
 
 
@@ -351,7 +355,7 @@ def test_flags_inherited_and_missing_inputs():
     inp["sbf_mag"][1] = np.nan
     q[1] = F.Quality.SBF_MAG_INVALID
     e[2] = F.Ext.HIGH_EXTINCTION
-    inp["ebv_used"][3] = np.nan
+    inp["A_mag"][3] = inp["A_blue"][3] = inp["A_red"][3] = np.nan  # no E(B-V): every A is NaN
     e[3] = F.Ext.NO_EBV
     k[4] = F.KCorr.COLOR_CLIPPED
     inp["K_mag"][5] = np.nan
@@ -423,7 +427,7 @@ def test_malmquist(tmp_path):
     # only intrinsic scatter 0.4 mag -> sigma_mu = 0.4; homogeneous Malmquist (mean) factor
     # exp(3.5 (ln10/5 * 0.4)^2) = 1.126 (Lynden-Bell et al. 1988, ApJ 326, 19; from memory)
     cal = _tmp_calibration(tmp_path, TONRY, name="tonry_s04", coefficient_errors=[0.0, 0.0], scatter=0.4)
-    inp = _tonry_inputs(1, sbf_mag_err=np.zeros(1), sbf_color_err=np.zeros(1), ebv_used_err=np.zeros(1))
+    inp = _tonry_inputs(1, sbf_mag_err=np.zeros(1), sbf_color_err=np.zeros(1), ebv_err=0.0)
     off = sbf_distance(inp, cal, NO_MC)
     on = sbf_distance(inp, cal, SBFSettings(mc_draws=0, malmquist=True))
     assert off["sbf_mu_err"][0] == pytest.approx(0.4, abs=1e-12)
@@ -464,9 +468,9 @@ def test_structural_errors(tmp_path):
         sbf_distance(inp, cal, NO_MC)
     with pytest.raises(ValueError, match="sbf_color"):
         sbf_distance(_tonry_inputs(1, sbf_color=np.array([1.1, 1.2])), cal, NO_MC)
-    with pytest.raises(ValueError, match="R_mag"):
-        sbf_distance(_tonry_inputs(R_mag=float("nan")), cal, NO_MC)
+    with pytest.raises(ValueError, match="R_mag"):  # extinction comes as A_<band>, not R and E(B-V)
+        sbf_distance(_tonry_inputs(R_mag=1.505), cal, NO_MC)
     tf = _tmp_calibration(tmp_path, TONRY, name="not_sbf", method="tully_fisher", form="luminosity")
     with pytest.raises(ValueError, match="method"):
         sbf_distance(_tonry_inputs(), tf, NO_MC)
-    assert set(INPUTS) >= {"sbf_mag", "sbf_color", "ebv_used", "R_mag", "R_blue", "R_red"}
+    assert set(INPUTS) >= {"sbf_mag", "sbf_color", "A_mag", "A_blue", "A_red"}

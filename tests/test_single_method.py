@@ -23,7 +23,7 @@ import pytest
 
 from conftest import small_catalog
 from galdist import flags
-from galdist.columns import METHOD_COLUMNS
+from galdist.columns import method_columns
 
 pytestmark = pytest.mark.slow
 
@@ -36,7 +36,7 @@ def _catalog(method: str) -> pa.Table:
     """small_catalog without the other method's columns, rows shuffled so that input
     order is not the sorted order of galaxy_id."""
     cols = small_catalog(N_ROWS, seed=11)
-    for c in METHOD_COLUMNS[OTHER[method]]:
+    for c in method_columns(OTHER[method]):
         del cols[c.name]
     # bands no stage reads need no magnitude columns: Ks never, V and I only for the
     # K-correction colour (the SBF-only run sets kcorrect.colour_pair: null)
@@ -71,7 +71,7 @@ def test_every_row_in_input_order_without_the_other_method(single_run):
     p, other = PREFIX[method], PREFIX[OTHER[method]]
     names = product.column_names
     assert not [n for n in names if n.startswith(f"{other}_")]
-    assert not {c.name for c in METHOD_COLUMNS[OTHER[method]]} & set(names)
+    assert not {c.name for c in method_columns(OTHER[method])} & set(names)
     for c in ("mu", "mu_err", "flags", "dmu", "vpec", "vpec_lr"):
         assert f"{p}_{c}" in names, c
     assert np.isfinite(product.column(f"{p}_mu").to_numpy(zero_copy_only=False)).sum() > 0

@@ -163,7 +163,7 @@ def test_every_job_was_a_slurm_job(runs):
     assert all(j["state"] == "COMPLETED" for j in jobs.values()), jobs
     kinds = sorted(submitted.values())
     # One job per shard for the shard's chain, one per shard for redshift, one for assemble + plots.
-    assert kinds.count("group_shard_extinction_kcorrect_sbf_tully_fisher") == 2, kinds
+    assert kinds.count("group_shard_distance_extinction_kcorrect") == 2, kinds
     assert kinds.count("rule_redshift") == 2, kinds
     assert kinds.count("group_product_assemble_plots") == 1, kinds
     for rule in ("demo_catalog", "ingest", "mu_grid", "extinction_coefficients", "kcorrect_grid",
@@ -177,9 +177,10 @@ def test_profile_resources_reach_sbatch(runs):
     by_kind = {}
     for jid, kind in submitted.items():
         by_kind.setdefault(kind, []).append(jobs[jid])
-    # A shard's job runs its four steps one after the other on one core (cores: 1): the
-    # memory of the largest, the sum of their wall times (10 + 10 + 15 + 15 min).
-    for job in by_kind["group_shard_extinction_kcorrect_sbf_tully_fisher"]:
+    # A shard's job runs its four jobs one after the other on one core (cores: 1): the
+    # memory of the largest, the sum of their wall times (extinction 10 + kcorrect 10 +
+    # one distance job per method, 15 + 15 min).
+    for job in by_kind["group_shard_distance_extinction_kcorrect"]:
         assert (job["cpus"], job["min_memory"], job["time_limit"]) == ("1", "2000M", "50:00"), job
     for job in by_kind["rule_redshift"]:
         assert (job["cpus"], job["min_memory"], job["time_limit"]) == ("1", "2000M", "10:00"), job

@@ -16,10 +16,10 @@ import pytest
 from galdist import flags
 from galdist.calibration import load_calibration
 from galdist.flags import Ext, KCorr, Method, Quality
-from galdist.tully_fisher import (OUTPUT_COLUMNS, TFSettings, convert_system, deproject,
-                                  inclination, internal_extinction, redshift_broadening,
-                                  resolution_correction, tully_fisher_distance,
-                                  turbulence_correction)
+from galdist.photometry import convert as convert_system
+from galdist.tully_fisher import (OUTPUT_COLUMNS, TFSettings, deproject, inclination,
+                                  internal_extinction, redshift_broadening, resolution_correction,
+                                  tully_fisher_distance, turbulence_correction)
 
 CAL_DIR = Path(__file__).resolve().parent.parent / "workflow" / "galdist" / "data" / "calibrations"
 

@@ -5,7 +5,7 @@ from galdist import calibration, io, product, redshift
 from galdist.logs import logged
 
 with logged(snakemake.log[0], "assemble") as log:
-    inp, cfg = snakemake.input, snakemake.params.crosscheck
+    inp, cfg, min_cz = snakemake.input, snakemake.params.crosscheck, snakemake.params.min_cz
     stages = ["extinction", "kcorrect", "redshift", *snakemake.params.methods]
     shards = [{"shard": s} | {st: inp[st][i] for st in stages} for i, s in enumerate(inp.shards)]
     stats, ingest_summary = io.read_json(inp.statistics), io.read_json(inp.ingest_summary)
@@ -16,7 +16,7 @@ with logged(snakemake.log[0], "assemble") as log:
     info = product.provenance(snakemake.config, cals, ingest_summary, Path(snakemake.scriptdir).parents[1])
     counts = product.assemble(shards, snakemake.output.distances, snakemake.output.plot_sample,
                               redshift.MuGrid.load(inp.grid), stats, snakemake.params.methods, info,
-                              min_cz=cfg["min_cz_kms"], clip_sigma=cfg["clip_sigma"],
+                              min_cz=min_cz, clip_sigma=cfg["clip_sigma"],
                               plot_max_points=cfg["plot_max_points"], total_rows=ingest_summary["rows_out"])
     if counts["rows"] != ingest_summary["rows_in"]:
         raise RuntimeError(f"row count changed: {ingest_summary['rows_in']} in, {counts['rows']} out")

@@ -2,7 +2,7 @@
 (colour after Galactic extinction; colour error from the magnitude and E(B-V) errors)."""
 import numpy as np
 
-from galdist import io, kcorrect
+from galdist import io, kcorrect, stages
 from galdist.logs import logged
 
 with logged(snakemake.log[0], f"K-corrections, shard {snakemake.wildcards.shard}"):
@@ -26,4 +26,4 @@ with logged(snakemake.log[0], f"K-corrections, shard {snakemake.wildcards.shard}
                              + np.where(np.isfinite(ext_err), ext_err, 0.0) ** 2)
     out = kcorrect.assign(grid, cols["z_helio"], colour, cfg["default_template"], cfg["clip_tolerance"],
                           colour_err=colour_err)
-    io.write_stage_columns(out, snakemake.output[0], fp, {k: "mag" for k in out if k.startswith("K_")})
+    io.write_stage_columns(out, snakemake.output[0], fp, stages.output_units("kcorrect", snakemake.config["bands"]))

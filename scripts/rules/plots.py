@@ -1,15 +1,15 @@
 """Rule script: the diagnostic plots of the configured methods, from the product's plotting subsample."""
 import pyarrow.parquet as pq
 
-from galdist import calibration, plots, redshift
+from galdist import calibration, methods, plots, redshift
 from galdist.logs import logged
-from galdist.product import METHOD_PREFIX
 
 with logged(snakemake.log[0], "plots") as log:
     df = pq.read_table(snakemake.input.sample).to_pandas()
-    cals = {METHOD_PREFIX[m]: calibration.load_calibration(p) for m, p in snakemake.params.calibrations.items()}
+    cals = {methods.REGISTRY[m].prefix: calibration.load_calibration(p)
+            for m, p in snakemake.params.calibrations.items()}
     grid = redshift.MuGrid.load(snakemake.input.grid)
-    prefixes = [METHOD_PREFIX[m] for m in snakemake.params.methods]
+    prefixes = methods.prefixes(snakemake.params.methods)
     outputs = dict(snakemake.output.items())
     if sorted(outputs) != sorted(plots.plot_names(prefixes)):
         raise ValueError(f"plots rule outputs {sorted(outputs)} are not the plots of methods {prefixes}: "

@@ -2,7 +2,10 @@
 
 A calibration is loaded with ``yaml.safe_load``, checked against
 ``workflow/schemas/calibration.schema.yaml`` and returned as a frozen
-``Calibration``. The distance methods evaluate it; nothing here knows a method.
+``Calibration``, which evaluates its relation in any form (polynomial, quadratic term
+above a break, inverse), with its slope, its variance from the coefficient covariance
+and that covariance's square root for Monte Carlo draws: one implementation for
+every method. Nothing here knows a method.
 """
 
 from __future__ import annotations
@@ -17,8 +20,7 @@ import yaml
 
 from . import shipped
 from .errors import CalibrationError, ConfigError
-
-SCHEMA_PATH = Path(__file__).resolve().parent.parent / "schemas" / "calibration.schema.yaml"
+from .schema import calibration_schema, check_size, method_calibration_keys, non_finite
 
 
 @dataclass(frozen=True)
@@ -43,6 +45,8 @@ class Calibration:
     color_bands: tuple[str, str] | None = None
     magnitude_pivot: float | None = None
     notes: str = ""
+    #: the keys only this calibration's method has (calibration schema, $defs/method_keys)
+    extra: dict = field(default_factory=dict)
     path: str = ""
     sha256: str = ""
     text: str = field(default="", repr=False)
@@ -57,10 +61,15 @@ class Calibration:
         x = np.asarray(x, dtype=float)
         return (x >= lo) & (x <= hi)
 
-    def polynomial(self, x) -> np.ndarray:
-        """sum_k a_k (x - pivot)^k, vectorised."""
+    def polynomial(self, x, coefficients=None) -> np.ndarray:
+        """sum_k a_k (x - pivot)^k, vectorised (Horner). ``coefficients`` may replace the
+        file's, coefficients on the last axis (one set per Monte Carlo draw or per row)."""
+        c = self.coefficients if coefficients is None else np.asarray(coefficients, dtype=float)
         t = np.asarray(x, dtype=float) - self.pivot
-        return np.polynomial.polynomial.polyval(t, self.coefficients)
+        out = np.zeros(np.shape(t)) + c[..., -1]
+        for k in range(c.shape[-1] - 2, -1, -1):
+            out = out * t + c[..., k]
+        return out
 
     def polynomial_slope(self, x) -> np.ndarray:
         """d/dx of ``polynomial``."""
@@ -73,6 +82,60 @@ class Calibration:
         t = np.asarray(x, dtype=float) - self.pivot
         basis = np.stack([t**k for k in range(self.coefficients.size)], axis=-1)
         return np.einsum("...i,ij,...j->...", basis, self.covariance, basis)
+
+    def relation(self, x, coefficients=None, quadratic=None) -> np.ndarray:
+        """The relation at predictor x, whatever the form: M(x), or log10 M_b for the
+        baryonic form.
+
+        Polynomial forms (luminosity, baryonic, colour_polynomial): ``polynomial`` plus,
+        above ``quadratic.break``, c (x - break)^2; inverse: x - pivot = a_0 + a_1 (M -
+        magnitude_pivot) solved for M (degree 1). ``coefficients`` and ``quadratic`` (the
+        quadratic coefficient) may replace the file's values (Monte Carlo draws).
+        """
+        x = np.asarray(x, dtype=float)
+        if self.form == "inverse":
+            c = self.coefficients if coefficients is None else np.asarray(coefficients, dtype=float)
+            return self.magnitude_pivot + (x - self.pivot - c[..., 0]) / c[..., 1]
+        out = self.polynomial(x, coefficients)
+        if self.quadratic is not None:
+            q = self.quadratic["coefficient"] if quadratic is None else quadratic
+            dt = x - self.quadratic["break"]
+            out = out + np.where(dt > 0.0, q * dt * dt, 0.0)
+        return out
+
+    def relation_slope(self, x) -> np.ndarray:
+        """d relation / dx."""
+        x = np.asarray(x, dtype=float)
+        if self.form == "inverse":
+            return np.full_like(x, 1.0 / self.coefficients[1])
+        slope = self.polynomial_slope(x)
+        if self.quadratic is not None:
+            dt = x - self.quadratic["break"]
+            slope = slope + np.where(dt > 0.0, 2.0 * self.quadratic["coefficient"] * dt, 0.0)
+        return slope
+
+    def relation_variance(self, x) -> np.ndarray:
+        """Variance of the relation at x from its coefficient (co)variance and the
+        quadratic coefficient's error."""
+        x = np.asarray(x, dtype=float)
+        if self.form == "inverse":
+            a1 = self.coefficients[1]
+            value = self.relation(x)
+            jac = np.stack([np.full_like(x, -1.0 / a1), -(value - self.magnitude_pivot) / a1], axis=-1)
+            return np.einsum("...i,ij,...j->...", jac, self.covariance, jac)
+        var = self.polynomial_variance(x)
+        if self.quadratic is not None:
+            dt = x - self.quadratic["break"]
+            err = float(self.quadratic.get("error", 0.0))
+            var = var + np.where(dt > 0.0, (dt * dt * err) ** 2, 0.0)
+        return var
+
+    def covariance_root(self) -> np.ndarray:
+        """L (k, r) with L L^T = covariance, over its non-zero directions only (r may be
+        0): coefficients drawn as a + L u, u standard normal of length r."""
+        w, v = np.linalg.eigh(self.covariance)
+        keep = w > 1e-15 * max(float(np.max(np.abs(w))), 1e-300)
+        return v[:, keep] * np.sqrt(w[keep])
 
 
 def _fail(path, message):
@@ -98,13 +161,11 @@ def load_calibration(spec: str | Path) -> Calibration:
         data = yaml.safe_load(text)
     except yaml.YAMLError as exc:
         _fail(path, f"is not valid YAML: {exc}")
-    from .config import check_size, non_finite  # size first: both walk the expanded structure
-    try:
+    try:  # size first: the schema check and the others walk the expanded structure
         check_size(data, f"calibration file {path}")
     except ConfigError as exc:
         _fail(path, str(exc).split(": ", 1)[1])
-    schema = yaml.safe_load(SCHEMA_PATH.read_text(encoding="utf-8"))
-    errors = sorted(jsonschema.Draft202012Validator(schema).iter_errors(data), key=lambda e: list(e.path))
+    errors = sorted(jsonschema.Draft202012Validator(calibration_schema()).iter_errors(data), key=lambda e: list(e.path))
     if errors:
         e = errors[0]
         key = ".".join(str(p) for p in e.path) or "(top level)"
@@ -144,5 +205,6 @@ def load_calibration(spec: str | Path) -> Calibration:
         velocity_definition=data.get("velocity_definition"),
         color_bands=tuple(colors) if colors else None,
         magnitude_pivot=data.get("magnitude_pivot"), notes=data.get("notes", ""),
+        extra={k: data[k] for k in method_calibration_keys().get(data["method"], {}) if k in data},
         path=str(path), sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(), text=text,
     )

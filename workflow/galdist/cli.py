@@ -33,7 +33,9 @@ DEFAULT_OUTPUT_DIR = "galdist-results"
 RUN_LOCK = ".galdist-run.lock"
 RUN_LOG = "galdist-run.log"
 #: rules with one job per shard (their progress is counted in shards)
-PER_SHARD = ("extinction", "kcorrect", "redshift", "tully_fisher", "sbf")
+PER_SHARD = ("extinction", "kcorrect", "redshift")
+#: the rule with one job per shard and distance method (workflow/rules/methods.smk)
+METHOD_RULE = "distance"
 DASH = "–"
 
 
@@ -183,8 +185,8 @@ class Progress:
     STAT = re.compile(r"^(?P<rule>\w+)\s+(?P<count>\d+)$")
     FAILED = re.compile(r"Error in rule (?P<rule>\w+):")
 
-    def __init__(self, run_dir: Path):
-        self.run_dir = run_dir
+    def __init__(self, run_dir: Path, n_methods: int = 1):
+        self.run_dir, self.n_methods = run_dir, n_methods
         self.planned: dict[str, int] = {}
         self.done: Counter = Counter()
         self.in_stats = False
@@ -237,6 +239,9 @@ class Progress:
         if rule in PER_SHARD:
             total = self.planned.get(rule) or self.shards() or "?"
             return f"[{rule}] {self.done[rule]}/{total} shards"
+        if rule == METHOD_RULE:  # the plan before ingest cannot know the shards
+            total = self.planned.get(rule) or self.n_methods * self.shards() or "?"
+            return f"[{rule}] {self.done[rule]}/{total} jobs (one per method and shard)"
         return f"[{rule}] done"
 
 
@@ -313,7 +318,7 @@ def cmd_run(args) -> int:
             log.write(f"\n=== galdist run {_dt.datetime.now().isoformat(timespec='seconds')}: {' '.join(cmd)}\n")
             log.flush()
             _clear_stale_snakemake_lock(workdir, cmd + ["--unlock"], log)
-            rc, tail = _stream(cmd, env, log, Progress(run_dir))
+            rc, tail = _stream(cmd, env, log, Progress(run_dir, len(result.config["methods"])))
     finally:
         lock.close()
     shown = os.path.relpath(run_dir, workdir) if run_dir.is_relative_to(workdir) else str(run_dir)
@@ -425,8 +430,8 @@ def cmd_summary(args) -> int:
     if not isinstance(methods, dict) or not methods:
         _say(f"  methods             {DASH} (no statistics in summary.json)")
         methods = {}
-    from .product import METHOD_PREFIX
-    method_of = {prefix: method for method, prefix in METHOD_PREFIX.items()}
+    from .methods import REGISTRY
+    method_of = {spec.prefix: name for name, spec in REGISTRY.items()}
     for m, st in methods.items():
         st = st if isinstance(st, dict) else {}
         method = method_of.get(m, m)

@@ -1,7 +1,9 @@
 """The canonical input columns: names, units, and which ones a run needs.
 
 A user's columns are mapped onto these names in config (``columns:``); units are
-converted on ingest to the canonical unit given here.
+converted on ingest to the canonical unit given here. The distance methods declare
+their own catalog columns in their registry entries (``galdist.methods``); ingest
+adds the Galactic coordinates (``DERIVED``), computed once for every stage.
 """
 
 from __future__ import annotations
@@ -14,6 +16,10 @@ class Column:
     name: str
     unit: str  # canonical unit ("" for dimensionless, "string" for text)
     meaning: str
+    #: a distance method's input: (low, high) bounds of a usable value in ``unit``, and the
+    #: ``flags.Quality`` bit ingest sets outside them (METHOD_INPUT_INVALID if None)
+    valid: tuple[float, float] | None = None
+    quality: str | None = None
 
     @property
     def is_text(self) -> bool:
@@ -43,19 +49,18 @@ OPTIONAL = [
     _c("hi_flux", "Jy km / s", "integrated HI line flux"),
     _c("w50_resolution", "km / s", "instrumental velocity resolution of the HI spectrum"),
 ]
-TULLY_FISHER = [
-    _c("w50", "km / s", "observed HI width at 50% of peak"),
-    _c("w50_err", "km / s", "error of w50"),
-    _c("axis_ratio", "", "optical b/a"),
-    _c("axis_ratio_err", "", "error of axis_ratio"),
+#: computed at ingest from ra, dec (galdist.ebv_maps.galactic_coordinates), once for all stages
+DERIVED = [
+    _c("gal_l", "deg", "Galactic longitude"),
+    _c("gal_b", "deg", "Galactic latitude"),
 ]
-SBF = [
-    _c("sbf_mag", "mag", "fluctuation magnitude in the SBF calibration's band"),
-    _c("sbf_mag_err", "mag", "error of sbf_mag"),
-    _c("sbf_color", "mag", "the SBF calibration's colour, as observed"),
-    _c("sbf_color_err", "mag", "error of sbf_color"),
-]
-METHOD_COLUMNS = {"tully_fisher": TULLY_FISHER, "sbf": SBF}
+
+
+def method_columns(method: str) -> list[Column]:
+    """The catalog columns of a registered distance method."""
+    from .methods import REGISTRY
+
+    return list(REGISTRY[method].catalog_columns)
 
 
 def band_columns(label: str) -> list[Column]:
@@ -67,18 +72,17 @@ def required_columns(bands: list[str], methods: list[str], extra=()) -> list[Col
     """Columns the catalog must have: the base ones, the methods' inputs, and ``extra``
     (optional or band columns that the configured stages make required). A band's
     magnitudes are required only where a stage uses them (``config.extra_required_columns``)."""
-    cols = list(BASE)
-    for m in methods:
-        cols += METHOD_COLUMNS[m]
+    cols = _unique(BASE + [c for m in methods for c in method_columns(m)])
     pool = {c.name: c for c in OPTIONAL + [bc for b in bands for bc in band_columns(b)]}
     return cols + [pool[name] for name in extra if pool[name] not in cols]
 
 
 def all_columns(bands: list[str], methods: list[str]) -> list[Column]:
     """Every canonical column a shard carries (absent ones are NaN): base, bands, methods, optional."""
-    cols = list(BASE)
-    for b in bands:
-        cols += band_columns(b)
-    for m in methods:
-        cols += METHOD_COLUMNS[m]
-    return cols + OPTIONAL
+    return _unique(BASE + [c for b in bands for c in band_columns(b)]
+                   + [c for m in methods for c in method_columns(m)] + OPTIONAL)
+
+
+def _unique(cols: list[Column]) -> list[Column]:
+    """``cols`` without repeats of a name (two methods may read one column)."""
+    return list({c.name: c for c in reversed(cols)}.values())[::-1]

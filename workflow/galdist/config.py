@@ -6,7 +6,6 @@ allowed, so a run never starts on a configuration it would choke on later.
 from __future__ import annotations
 
 import copy
-import math
 from pathlib import Path
 
 import jsonschema
@@ -14,9 +13,8 @@ import yaml
 
 from . import shipped
 from .errors import ConfigError
+from .schema import check_size, config_schema, explain, key_of, non_finite
 
-SCHEMA_DIR = Path(__file__).resolve().parent.parent / "schemas"
-CONFIG_SCHEMA = SCHEMA_DIR / "config.schema.yaml"
 #: The workflow's default configuration (the demo run); a user's config is laid over it.
 DEFAULT_CONFIG = shipped.WORKFLOW_ROOT / "config" / "config.yaml"
 #: Keys whose value in a user's config replaces the default whole instead of being
@@ -54,37 +52,6 @@ def _with_defaults(validator_class):
 _Validator = _with_defaults(jsonschema.Draft202012Validator)
 
 
-def _key(error) -> str:
-    return ".".join(str(p) for p in error.absolute_path) or "(top level)"
-
-
-def _explain(error) -> str:
-    """One line naming the key, what is wrong and what is allowed."""
-    key = _key(error)
-    schema = error.schema
-    if error.validator == "additionalProperties":
-        allowed = sorted(schema.get("properties", {}))
-        extra = sorted(set(error.instance) - set(allowed))
-        where = f"in '{key}'" if key != "(top level)" else "at the top level"
-        hint = f"; allowed keys: {', '.join(allowed)}" if allowed else ""
-        return f"unknown config key {', '.join(repr(e) for e in extra)} {where}{hint}"
-    if error.validator == "required":
-        return f"config key '{key}' is missing a required entry: {error.message}"
-    if error.validator == "oneOf":
-        # explain the alternative whose type fits the value, if there is one
-        kinds = {dict: "object", list: "array", str: "string"}
-        kind = kinds.get(type(error.instance))
-        for sub in error.context or []:
-            if error.schema["oneOf"][sub.relative_schema_path[0]].get("type") == kind and sub.validator != "type":
-                return _explain(sub)
-        if key == "catalog":
-            return ("config key 'catalog': give a path, a list of paths, or "
-                    "{paths: [...], format: auto|parquet|fits|csv|ecsv|votable}")
-    desc = schema.get("description")
-    tail = f" ({desc.strip()})" if desc and len(desc) < 200 else ""
-    return f"config key '{key}': {error.message}{tail}"
-
-
 def _coerce(instance, schema):
     """Turn command-line strings into the number or boolean the schema expects.
 
@@ -117,62 +84,22 @@ def _coerce(instance, schema):
     return instance
 
 
-def validate(config: dict, schema_path: Path = CONFIG_SCHEMA) -> dict:
+def validate(config: dict) -> dict:
     """Validate ``config`` in place (filling defaults) and return it.
 
     Raises ConfigError with every problem found, one per line.
     """
     check_size(config, "configuration")
-    schema = yaml.safe_load(schema_path.read_text(encoding="utf-8"))
+    schema = config_schema()
     _coerce(config, schema)
-    errors = sorted(_Validator(schema).iter_errors(config), key=lambda e: (_key(e), e.validator))
+    errors = sorted(_Validator(schema).iter_errors(config), key=lambda e: (key_of(e), e.validator))
     # NaN passes every minimum/maximum test of the schema (all comparisons are false)
-    lines = {_explain(e) for e in errors} | {
+    lines = {explain(e) for e in errors} | {
         f"config key '{key}': {value} is not a finite number (use a finite value)"
         for key, value in non_finite(config)}
     if lines:
         raise ConfigError("invalid configuration:\n  - " + "\n  - ".join(sorted(lines)))
     return config
-
-
-#: More values than any real configuration or calibration holds: a YAML file whose
-#: aliases expand past this (the "billion laughs" pattern) is refused unread.
-MAX_VALUES = 100_000
-
-
-def check_size(data, what: str, limit: int = MAX_VALUES) -> None:
-    """Refuse ``data`` whose values, with YAML aliases expanded, number more than ``limit``.
-
-    Counted with each shared (aliased) node's size computed once, so the count of a
-    maliciously nested file costs as little as the file itself.
-    """
-    sizes: dict[int, int] = {}
-
-    def size(node) -> int:
-        if not isinstance(node, (dict, list)):
-            return 1
-        if id(node) not in sizes:
-            sizes[id(node)] = 0  # a self-referencing node counts once (YAML allows it)
-            children = node.values() if isinstance(node, dict) else node
-            sizes[id(node)] = 1 + sum(min(size(c), limit + 1) for c in children)
-        return sizes[id(node)]
-
-    n = size(data)
-    if n > limit:
-        raise ConfigError(f"{what}: YAML aliases expand to more than {limit} values; write the values out "
-                          "plainly (anchors and aliases that multiply are refused)")
-
-
-def non_finite(data, path: str = ""):
-    """(dotted key, value) of every NaN or infinite number in nested dicts and lists."""
-    if isinstance(data, float) and not math.isfinite(data):
-        yield path or "(top level)", data
-    elif isinstance(data, dict):
-        for k, v in data.items():
-            yield from non_finite(v, f"{path}.{k}" if path else str(k))
-    elif isinstance(data, list):
-        for i, v in enumerate(data):
-            yield from non_finite(v, f"{path}.{i}" if path else str(i))
 
 
 def catalog_spec(config: dict) -> tuple[list[str], str]:
@@ -239,16 +166,21 @@ def load(path: str | Path) -> dict:
 def extra_required_columns(config: dict) -> dict[str, str]:
     """Optional and band columns that the configured stages make required: column -> why.
 
-    A band's magnitudes are needed where a stage reads them (the Tully-Fisher band, the
+    A band's magnitudes are needed where a stage reads them (a method's registry entry
+    says which of its bands it reads from the catalog, e.g. the Tully-Fisher band; the
     K-correction colour); a band used only as a filter curve (the SBF band and colour
     bands, bands no stage uses) needs no magnitude column.
     """
+    from .methods import REGISTRY
+
     extra = {}
     if config["extinction"]["source"] == "catalog":
         extra["ebv"] = "extinction.source is catalog; or use a map (extinction.source healpix or zea)"
     users = {}
-    if "tully_fisher" in config["methods"]:
-        users.setdefault(config["tully_fisher"]["band"], []).append("tully_fisher.band")
+    for method in config["methods"]:
+        for column, key in REGISTRY[method].catalog_band_columns(config[method]).items():
+            if not column.endswith("_err"):
+                users.setdefault(column.removeprefix("mag_"), []).append(key)
     for label in config["kcorrect"]["colour_pair"] or []:
         users.setdefault(label, []).append("kcorrect.colour_pair")
     for label, keys in users.items():
@@ -306,6 +238,7 @@ def check_stages(config: dict) -> dict:
     exist; calibration files must validate and belong to their method.
     """
     from .calibration import load_calibration
+    from .methods import REGISTRY
 
     bands = set(config["bands"])
     problems = []
@@ -345,7 +278,6 @@ def check_stages(config: dict) -> dict:
         problems.append(f"config key 'kcorrect.templates': no regular file at {kc['templates']}")
 
     calibrations = {}
-    expected = {"tully_fisher": "tully_fisher", "sbf": "sbf"}
     for method in config["methods"]:
         section = config[method]
         try:
@@ -359,12 +291,12 @@ def check_stages(config: dict) -> dict:
                             "to the directory galdist runs in; a bare name is a shipped calibration)")
             continue
         cal = load_calibration(path)
-        if cal.method != expected[method]:
+        if cal.method != method:
             problems.append(f"config key '{method}.calibration': {path} is a {cal.method} calibration")
         calibrations[method] = cal
-        need_band(f"{method}.band", section["band"])
-        for label in section.get("color_bands", []):
-            need_band(f"{method}.color_bands", label)
+        for key in REGISTRY[method].band_keys():
+            for label in section[key] if isinstance(section[key], list) else [section[key]]:
+                need_band(f"{method}.{key}", label)
     if problems:
         raise ConfigError("invalid configuration:\n  - " + "\n  - ".join(problems))
     return calibrations

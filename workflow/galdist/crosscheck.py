@@ -1,7 +1,7 @@
 """Cross-check of method distances against the Hubble flow, and between methods.
 
-Per method M (a column prefix: "tf", "sbf", later "fp"; nothing here is
-specific to one method):
+Per method M (a column prefix of ``galdist.methods.REGISTRY``: "tf", "sbf"; nothing
+here is specific to one method):
 
 * dmu = mu_M - mu_z and the log-distance ratio eta = log10(d_z / d_M) = -dmu/5
   (both luminosity distances);
@@ -28,13 +28,16 @@ import numpy as np
 import pyarrow as pa
 
 from . import flags as _flags
+from . import clipped_stats as cs
+from .clipped_stats import json_float, records
 from .flags import Method
+from .methods import prefixes
 from .redshift import C_KMS, MuGrid
 
 LN10 = np.log(10.0)
 
 #: methods tried, in this order, by ``crosscheck`` (those without a <M>_mu column are skipped)
-DEFAULT_METHODS = ("tf", "sbf", "fp")
+DEFAULT_METHODS = tuple(prefixes())
 
 
 def _bits(names: Iterable[str | Method] | int | None, key: str = "crosscheck.best_ignore_flags") -> int:
@@ -57,12 +60,6 @@ def _bits(names: Iterable[str | Method] | int | None, key: str = "crosscheck.bes
 
 
 ALL_METHOD_BITS = _bits(list(Method))
-
-
-def _f(x) -> float | None:
-    """JSON-ready float: None for NaN/inf."""
-    x = float(x)
-    return x if np.isfinite(x) else None
 
 
 # --------------------------------------------------------------------------- per galaxy
@@ -165,188 +162,14 @@ def peculiar_velocity_log_ratio(mu, mu_err, z_cmb, z_cmb_err, h0: float, q0: flo
     return v, np.where(np.isfinite(v), err, np.nan)
 
 
-# --------------------------------------------------------------------------- sample statistics
-#
-# The statistics run over a *sample*: records of (value, error, z, flags), one per
-# measured galaxy, given as any re-iterable of record arrays (a list of per-shard
-# arrays, or chunks read back from disk by ``io.RecordSpill``). Every statistic is
-# computed pass by pass over those chunks, the median exactly by a radix selection
-# on the float32 bit patterns, so memory is one chunk whatever the catalog's size.
-
-#: one sample record: dmu (or mu_a - mu_b), its expected error, z_cmb (NaN for a
-#: pair), and the method flags (for a pair, the OR of both methods' flags)
-RECORD = np.dtype([("value", "<f4"), ("error", "<f4"), ("z", "<f4"), ("flags", "<u4")])
-
-
-def records(value, error, z, flags) -> np.ndarray:
-    """Pack per-row arrays into sample records (float32: 1e-7 mag is far below any error)."""
-    out = np.empty(np.shape(value), dtype=RECORD)
-    out["value"], out["error"], out["z"], out["flags"] = value, error, z, flags
-    return out
-
-
-class _Rows:
-    """Which rows of a sample count: candidates have a finite value (and c z >= min_cz
-    unless min_cz is None); usable ones also a finite positive error and none of the
-    ``exclude`` flags; a clipping window (centre, half-width) keeps |value - centre| <= half."""
-
-    def __init__(self, exclude: int, min_cz: float | None):
-        self.exclude, self.min_cz = _flags.FLAG_DTYPE(exclude), min_cz
-
-    def candidate(self, rec) -> np.ndarray:
-        ok = np.isfinite(rec["value"])
-        if self.min_cz is not None:
-            ok &= C_KMS * np.nan_to_num(rec["z"].astype(float), nan=-np.inf) >= float(self.min_cz)
-        return ok
-
-    def usable(self, rec) -> np.ndarray:
-        e = rec["error"]
-        return self.candidate(rec) & np.isfinite(e) & (e > 0) & ((rec["flags"] & self.exclude) == 0)
-
-    def picker(self, window):
-        """A function of a chunk: its usable rows inside ``window`` (all usable rows for None)."""
-        if window is None:
-            return self.usable
-        centre, half = window
-        return lambda rec: self.usable(rec) & (np.abs(rec["value"].astype(float) - centre) <= half)
-
-
-def _moments(chunks, pick, other=None) -> tuple[int, float, float, int]:
-    """(n, mean, sum of squared deviations) of the picked values, merged chunk by chunk
-    (the pairwise update of Chan, Golub & LeVeque 1983), and how many rows ``other``
-    picks differently (0 when ``other`` is None)."""
-    n, mean, m2, changed = 0, 0.0, 0.0, 0
-    for rec in chunks:
-        sel = pick(rec)
-        if other is not None:
-            changed += int(np.count_nonzero(sel != other(rec)))
-        x = rec["value"][sel].astype(float)
-        if x.size == 0:
-            continue
-        k, mk = x.size, float(x.mean())
-        delta, total = mk - mean, n + x.size
-        m2 += float(np.sum((x - mk) ** 2)) + delta**2 * n * k / total
-        mean += delta * k / total
-        n = total
-    return n, mean, m2, changed
-
-
-def _sortable_keys(values) -> np.ndarray:
-    """uint32 keys that sort like the float32 values: positives get the sign bit set,
-    negatives have every bit flipped."""
-    u = np.ascontiguousarray(values, dtype=np.float32).view(np.uint32)
-    return np.where(u >> 31 == 1, ~u, u | np.uint32(0x80000000))
-
-
-def _key_value(key: int) -> float:
-    u = np.array([key], dtype=np.uint32)
-    u = u & np.uint32(0x7FFFFFFF) if key >> 31 else ~u
-    return float(u.view(np.float32)[0])
-
-
-def _median(chunks, pick, n: int) -> float:
-    """Exact median of the n picked values (mean of the middle two for even n, as
-    numpy.median): a radix selection in two passes, on the high then the low 16 bits
-    of the sortable keys, with 65536-bin histograms."""
-    if n == 0:
-        return np.nan
-    high = np.zeros(1 << 16, dtype=np.int64)
-    for rec in chunks:
-        high += np.bincount(_sortable_keys(rec["value"][pick(rec)]) >> 16, minlength=1 << 16)
-    cum = np.cumsum(high)
-    wanted = []  # (high 16 bits, rank within that bucket) of the two middle ranks
-    for rank in ((n - 1) // 2, n // 2):
-        bucket = int(np.searchsorted(cum, rank, side="right"))
-        wanted.append((bucket, rank - (int(cum[bucket - 1]) if bucket else 0)))
-    low = {bucket: np.zeros(1 << 16, dtype=np.int64) for bucket, _ in wanted}
-    for rec in chunks:
-        keys = _sortable_keys(rec["value"][pick(rec)])
-        for bucket, counts in low.items():
-            counts += np.bincount(keys[keys >> 16 == bucket] & 0xFFFF, minlength=1 << 16)
-    values = [_key_value(bucket << 16 | int(np.searchsorted(np.cumsum(low[bucket]), rank, side="right")))
-              for bucket, rank in wanted]
-    return 0.5 * (values[0] + values[1])
-
-
-def _clip(chunks, rows: _Rows, clip_sigma: float, max_iter: int):
-    """Iterative clipping about the median at clip_sigma x the sample standard
-    deviation (common practice); rejected points may re-enter. Returns the final
-    window (None: every usable row), its row count, centre, scale and iterations."""
-    window = None
-    n, _, m2, _ = _moments(chunks, rows.picker(window))
-    center = scale = np.nan
-    it = 0
-    for it in range(1, max_iter + 1):
-        if n < 3:
-            break
-        center = _median(chunks, rows.picker(window), n)
-        scale = float(np.sqrt(m2 / (n - 1)))
-        new = (center, clip_sigma * scale)
-        n_new, _, m2_new, changed = _moments(chunks, rows.picker(new), rows.picker(window))
-        if changed == 0:
-            break
-        window, n, m2 = new, n_new, m2_new
-    if n >= 1:
-        center = _median(chunks, rows.picker(window), n)
-        scale = float(np.sqrt(m2 / (n - 1))) if n > 1 else np.nan
-    return window, n, center, scale, it
-
-
-def _summary(chunks, pick, n: int, median: float, std: float) -> dict:
-    """Median, weighted mean, scatter and chi2 of the picked values and their errors
-    (``median`` and ``std`` are the clipping's final ones, of the same rows)."""
-    out = {"n_used": n}
-    if n == 0:
-        return out | dict.fromkeys(["median", "median_err", "wmean", "wmean_err",
-                                    "wmean_err_formal", "std", "rms_expected_err",
-                                    "excess_scatter", "chi2_nu"])
-    sw = swx = se2 = 0.0
-    for rec in chunks:
-        sel = pick(rec)
-        x, e = rec["value"][sel].astype(float), rec["error"][sel].astype(float)
-        sw, swx, se2 = sw + np.sum(1.0 / e**2), swx + np.sum(x / e**2), se2 + np.sum(e**2)
-    wmean = float(swx / sw)
-    chi2 = 0.0
-    for rec in chunks:
-        sel = pick(rec)
-        chi2 += float(np.sum(((rec["value"][sel].astype(float) - wmean) / rec["error"][sel].astype(float)) ** 2))
-    formal = float(1.0 / np.sqrt(sw))
-    chi2_nu = chi2 / (n - 1) if n > 1 else np.nan
-    rms_exp = float(np.sqrt(se2 / n))
-    inflate = np.sqrt(max(1.0, chi2_nu)) if np.isfinite(chi2_nu) else 1.0
-    return out | {
-        "median": _f(median),
-        # asymptotic error of a Gaussian sample's median: sqrt(pi/2) s / sqrt(n) (common practice)
-        "median_err": _f(np.sqrt(np.pi / 2.0) * std / np.sqrt(n)) if n > 1 else None,
-        "wmean": _f(wmean),
-        # formal error scaled by sqrt(chi2_nu) when the scatter exceeds the errors (common practice)
-        "wmean_err": _f(formal * inflate),
-        "wmean_err_formal": _f(formal),
-        "std": _f(std),
-        "rms_expected_err": _f(rms_exp),
-        "excess_scatter": _f(np.sqrt(max(0.0, std**2 - rms_exp**2))) if np.isfinite(std) else None,
-        "chi2_nu": _f(chi2_nu),
-    }
-
-
-def _clip_sigma(value: float) -> float:
-    if not (np.isfinite(value) and value > 0):
-        raise ValueError(f"crosscheck.clip_sigma must be > 0, got {value}")
-    return float(value)
-
-
-def _count(chunks, pick) -> int:
-    return sum(int(np.count_nonzero(pick(rec))) for rec in chunks)
-
-
 def hubble_sample_statistics(chunks, h0_assumed: float, *, min_cz: float = 3000.0, clip_sigma: float = 3.5,
                              max_iter: int = 20, exclude_flags=None) -> dict:
     """Zero point, implied H0 and scatter of one method against the Hubble flow, over
-    a sample of ``RECORD`` chunks (value dmu, error sqrt(sigma_mu^2 + sigma_mu_z^2)).
+    a sample of ``clipped_stats.RECORD`` chunks (value dmu, error sqrt(sigma_mu^2 + sigma_mu_z^2)).
 
     Sample: finite dmu with a positive error, c z_cmb >= ``min_cz`` and none of
     ``exclude_flags`` set (default: every Method bit except OUTLIER, which is
-    recomputed here). Clipped iteratively at ``clip_sigma`` (see ``_clip``).
+    recomputed here). Clipped iteratively at ``clip_sigma`` (see ``clipped_stats.clip``).
     Outliers: every candidate (finite dmu, c z_cmb >= min_cz, flagged or not)
     whose |dmu - centre| exceeds clip_sigma x the final clipped scatter.
 
@@ -355,18 +178,18 @@ def hubble_sample_statistics(chunks, h0_assumed: float, *, min_cz: float = 3000.
     H0_true = H0_assumed 10^(-0.2 <dmu>) (exact at all z when only H0 differs,
     since d_L scales as 1/H0).
     """
-    clip_sigma = _clip_sigma(clip_sigma)
+    clip_sigma = cs.checked_clip_sigma(clip_sigma)
     exclude = ((ALL_METHOD_BITS & ~int(Method.OUTLIER)) if exclude_flags is None
                else _bits(exclude_flags, "crosscheck.exclude_flags"))
-    rows = _Rows(exclude, min_cz)
-    window, n, center, scale, iters = _clip(chunks, rows, clip_sigma, int(max_iter))
-    n_usable = _count(chunks, rows.usable)
-    clip = {"clip_center": _f(center), "clip_scale": _f(scale)}
-    stats = {"n_rows": sum(len(rec) for rec in chunks), "n_candidates": _count(chunks, rows.candidate),
+    rows = cs.Rows(exclude, min_cz)
+    window, n, center, scale, iters = cs.clip(chunks, rows, clip_sigma, int(max_iter))
+    n_usable = cs.count(chunks, rows.usable)
+    final = {"clip_center": json_float(center), "clip_scale": json_float(scale)}
+    stats = {"n_rows": sum(len(rec) for rec in chunks), "n_candidates": cs.count(chunks, rows.candidate),
              "n_usable": n_usable, "n_clipped": n_usable - n,
-             "n_outliers": _count(chunks, lambda rec: _outliers(rec["value"], rec["z"], clip, min_cz, clip_sigma)),
-             "clip_sigma": clip_sigma, "clip_iterations": int(iters), "min_cz": float(min_cz)} | clip
-    stats |= _summary(chunks, rows.picker(window), n, center, scale)
+             "n_outliers": cs.count(chunks, lambda rec: _outliers(rec["value"], rec["z"], final, min_cz, clip_sigma)),
+             "clip_sigma": clip_sigma, "clip_iterations": int(iters), "min_cz": float(min_cz)} | final
+    stats |= cs.summary(chunks, rows.picker(window), n, center, scale)
     wm, wm_err = stats["wmean"], stats["wmean_err"]
     h0 = float(h0_assumed)
     stats["h0_assumed"] = h0
@@ -374,8 +197,8 @@ def hubble_sample_statistics(chunks, h0_assumed: float, *, min_cz: float = 3000.
         stats["h0_implied"] = stats["h0_implied_err"] = None
     else:
         h = h0 * 10.0 ** (-0.2 * wm)
-        stats["h0_implied"] = _f(h)
-        stats["h0_implied_err"] = _f(h * 0.2 * LN10 * wm_err) if wm_err is not None else None
+        stats["h0_implied"] = json_float(h)
+        stats["h0_implied_err"] = json_float(h * 0.2 * LN10 * wm_err) if wm_err is not None else None
     return stats
 
 
@@ -391,7 +214,7 @@ def hubble_statistics(dmu, dmu_err, method_flags, z_cmb, h0_assumed: float, *,
 
 def pair_sample_statistics(chunks, *, clip_sigma: float = 3.5, max_iter: int = 20,
                            exclude_flags=None) -> dict:
-    """Offset mu_a - mu_b and its scatter over a sample of ``RECORD`` chunks (value
+    """Offset mu_a - mu_b and its scatter over a sample of ``clipped_stats.RECORD`` chunks (value
     mu_a - mu_b, error sqrt(sigma_a^2 + sigma_b^2), flags of both OR-ed).
 
     Rows need a finite value and error and none of ``exclude_flags`` in either method
@@ -399,14 +222,14 @@ def pair_sample_statistics(chunks, *, clip_sigma: float = 3.5, max_iter: int = 2
     nearby galaxy still has a valid distance to compare). Clipped like the Hubble
     statistics.
     """
-    clip_sigma = _clip_sigma(clip_sigma)
+    clip_sigma = cs.checked_clip_sigma(clip_sigma)
     exclude = (ALL_METHOD_BITS & ~int(Method.OUTLIER | Method.LOCAL_FLOW)
                if exclude_flags is None else _bits(exclude_flags, "crosscheck.pair_exclude_flags"))
-    rows = _Rows(exclude, None)
-    window, n, center, scale, iters = _clip(chunks, rows, clip_sigma, int(max_iter))
-    n_usable = _count(chunks, rows.usable)
-    return {"n_both": _count(chunks, rows.candidate), "n_usable": n_usable, "n_clipped": n_usable - n,
-            "clip_sigma": clip_sigma, "clip_iterations": int(iters)} | _summary(
+    rows = cs.Rows(exclude, None)
+    window, n, center, scale, iters = cs.clip(chunks, rows, clip_sigma, int(max_iter))
+    n_usable = cs.count(chunks, rows.usable)
+    return {"n_both": cs.count(chunks, rows.candidate), "n_usable": n_usable, "n_clipped": n_usable - n,
+            "clip_sigma": clip_sigma, "clip_iterations": int(iters)} | cs.summary(
         chunks, rows.picker(window), n, center, scale)
 
 
@@ -484,7 +307,7 @@ def _method_flags(columns, m, z_flags) -> np.ndarray:
 
 
 def method_sample(columns: Mapping[str, Sequence], methods: Sequence[str] = DEFAULT_METHODS) -> dict:
-    """What the sample statistics need from one shard: ``RECORD`` arrays of the measured rows.
+    """What the sample statistics need from one shard: ``clipped_stats.RECORD`` arrays of the measured rows.
 
     Returns {"methods": {M: records of dmu}, "pairs": {"A-B": records of mu_A - mu_B}},
     16 bytes per measured row, for one method or for galaxies measured by both.
@@ -525,7 +348,7 @@ def sample_statistics(sample: dict, n_rows: int, h0_assumed: float, *, min_cz: f
     """Per-method Hubble statistics and per-pair offsets of a sample.
 
     ``sample`` is shaped like ``collect_samples``'s result; each method or pair
-    maps to any re-iterable of ``RECORD`` arrays (a list, or chunks read from disk);
+    maps to any re-iterable of ``clipped_stats.RECORD`` arrays (a list, or chunks read from disk);
     a missing group or name is an empty sample. ``methods`` (prefixes) fixes which
     methods get statistics, and so which pairs: every one of them gets an entry,
     measured or not, and "pairs" is an empty mapping when fewer than two ran

@@ -14,7 +14,6 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 
-from .columns import Z_HELIO_RANGE
 from .io import write_parquet
 
 C_KMS = 299792.458
@@ -88,6 +87,7 @@ def _observed_width(w_r, w_t, w_c):
 def _disc(rng, n, cal, band_cfg, z_helio, mu, a_gal, k_corr, tf_cfg):
     """Observed magnitude, width and axis ratio of discs following a TF calibration."""
     from . import tully_fisher as tf
+    from .photometry import convert
 
     lo, hi = cal.valid_range
     logw_i = np.clip(rng.normal(0.5 * (lo + hi), 0.15, n), lo + 0.02, hi - 0.02)
@@ -100,40 +100,36 @@ def _disc(rng, n, cal, band_cfg, z_helio, mu, a_gal, k_corr, tf_cfg):
     w_t, w_c = tf.TURBULENCE_CONSTANTS[tf_cfg["width_definition"]]
     w50 = _observed_width(10.0**logw_i * np.sqrt(1.0 - cos_i**2), w_t, w_c) * (1.0 + z_helio)
     m_cal = abs_mag + mu + a_gal + k_corr + a_int
-    mag = tf.convert_system(m_cal, cal.system, band_cfg["system"], band_cfg["ab_minus_vega"])
+    mag = convert(m_cal, cal.system, band_cfg["system"], band_cfg["ab_minus_vega"])
     return mag, w50, axis_ratio
 
 
 def _observe(rng, ra, dec, z_cos, v_pec, is_disc, conf):
     """Observables generated forward through every correction the pipeline undoes,
     with the run's extinction law, K-correction templates and calibrations."""
-    from . import extinction, filters, kcorrect, redshift, sbf
+    from . import kcorrect, redshift, stages
     from .calibration import load_calibration
+    from .ebv_maps import galactic_coordinates
+    from .photometry import color_system_offset, system_offset
 
     n = len(ra)
     bands = conf["bands"]
     rcfg = conf["redshift"]
-    grid = redshift.MuGrid.build(redshift.make_cosmology(**rcfg["cosmology"]))
+    grid = stages.mu_grid(rcfg)
     mu = grid.mu(z_cos)
     z_cmb = (1.0 + z_cos) * (1.0 + v_pec / C_KMS) - 1.0
-    l, b = redshift.galactic_coordinates(ra, dec)
+    l, b = galactic_coordinates(ra, dec)
     apex = 1.0 + rcfg["v_sun_kms"] / C_KMS * redshift.cos_angle_to_apex(l, b, rcfg["apex_l_deg"], rcfg["apex_b_deg"])
     z_helio = (1.0 + z_cmb) / apex - 1.0
     # dust: E(B-V) on the input scale; a few galaxies behind an invented dust lane
     ebv = 0.012 + rng.gamma(2.0, 0.012, n)
     dusty = rng.uniform(size=n) < 0.01
     ebv[dusty] = rng.uniform(0.5, 1.0, dusty.sum())
-    ecfg = conf["extinction"]
-    r = extinction.law_coefficients(filters.load_bands(bands), law=ecfg["law"], r_v=ecfg["r_v"],
-                                    source_temperature=ecfg["source_temperature"],
-                                    normalisation=ecfg["normalisation"]).per_true_ebv()
-    a = {band: r[band] * ecfg["ebv_scale"] * ebv for band in bands}
+    r = stages.extinction_coefficients(conf).per_true_ebv()
+    a = {band: r[band] * conf["extinction"]["ebv_scale"] * ebv for band in bands}
     # K-corrections: discs star-forming templates, early types passive ones
     kcfg = conf["kcorrect"]
-    offsets = {k: v["ab_minus_vega"] if v["system"] == "Vega" else 0.0 for k, v in bands.items()}
-    kgrid = kcorrect.build_grids(kcorrect.load_templates(kcfg["templates"]), filters.load_bands(bands),
-                                 kcfg["colour_pair"], offsets, z_min=Z_HELIO_RANGE[0], z_max=kcfg["z_max"],
-                                 dz=kcfg["dz"])
+    kgrid = stages.kcorrect_grid(conf)
     nt = kgrid.n_steps  # templates per track; evaluate() takes a position along the first
     template = np.where(is_disc, rng.uniform(nt / 2.0, nt - 1.0, n), rng.uniform(0.0, 1.5, n))
     k, colour = kcorrect.evaluate(kgrid, z_helio, template)
@@ -179,9 +175,9 @@ def _observe(rng, ra, dec, z_cos, v_pec, is_disc, conf):
     lo, hi = cal.valid_range
     color_0 = rng.uniform(lo + 0.02, hi - 0.02, n)
     abs_sbf = cal.polynomial(color_0) + rng.normal(0.0, cal.scatter, n)
-    m_off = sbf.system_offset(bands[sb]["system"], cal.system, bands[sb]["ab_minus_vega"])
-    c_off = sbf.color_system_offset(bands[cb]["system"], bands[cb]["ab_minus_vega"], bands[cr]["system"],
-                                    bands[cr]["ab_minus_vega"], cal.system)
+    m_off = system_offset(bands[sb]["system"], cal.system, bands[sb]["ab_minus_vega"])
+    c_off = color_system_offset(bands[cb]["system"], bands[cb]["ab_minus_vega"], bands[cr]["system"],
+                                bands[cr]["ab_minus_vega"], cal.system)
     sbf_mag = abs_sbf + mu + a[sb] + k[sb] - m_off
     sbf_color = color_0 + (a[cb] - a[cr]) + (k[cb] - k[cr]) - c_off
     m_err, c_err = rng.uniform(0.04, 0.10, n), np.full(n, 0.02)

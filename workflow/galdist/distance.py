@@ -37,6 +37,26 @@ def malmquist_factor(mu_err, kind: str = "mean"):
     return np.exp(coeff * delta**2)
 
 
+def finish(prefix: str, mu, mu_err, mu_err_mc, method_flags, malmquist: bool = False,
+           malmquist_kind: str = "mean") -> dict:
+    """The columns every distance method ends with, ``<prefix>_``: mu, mu_err,
+    mu_err_mc, d_mpc and d_err_mpc (first order), malmquist_applied, flags.
+
+    With ``malmquist``, d and its error are multiplied by ``malmquist_factor`` where
+    both mu and its error are finite; mu itself is never corrected.
+    """
+    mu, mu_err = np.asarray(mu, dtype=float), np.asarray(mu_err, dtype=float)
+    d = mpc_from_mu(mu)
+    d_err = mpc_err_from_mu(d, mu_err)
+    applied = np.isfinite(d) & np.isfinite(mu_err) & bool(malmquist)
+    if malmquist:
+        factor = np.where(applied, malmquist_factor(mu_err, malmquist_kind), 1.0)
+        d, d_err = d * factor, d_err * factor
+    return {f"{prefix}_mu": mu, f"{prefix}_mu_err": mu_err, f"{prefix}_mu_err_mc": mu_err_mc,
+            f"{prefix}_d_mpc": d, f"{prefix}_d_err_mpc": d_err, f"{prefix}_malmquist_applied": applied,
+            f"{prefix}_flags": method_flags}
+
+
 # IAU 2015 Resolution B2: zero point of the absolute bolometric magnitude scale.
 IAU_L0_WATT = 3.0128e28
 # IAU 2015 Resolution B3: nominal solar luminosity.

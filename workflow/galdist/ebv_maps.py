@@ -212,6 +212,13 @@ class HealpixMap:
             lon, lat = galactic_coordinates(ra_deg, dec_deg)
         return self._lookup_native(lon, lat, interpolation)
 
+    def lookup_at(self, ra_deg, dec_deg, l_deg, b_deg, interpolation: str = "nearest"):
+        """E(B-V) at a position given in both frames (as ingest gives it) -> (values,
+        outside); the map's own frame is used, so no coordinates are transformed."""
+        _check_interpolation(interpolation)
+        lon, lat = (l_deg, b_deg) if self.frame == "galactic" else (ra_deg, dec_deg)
+        return self._lookup_native(*np.broadcast_arrays(_as_float(lon), _as_float(lat)), interpolation)
+
     def _lookup_native(self, lon, lat, interpolation):
         lon = np.asarray(lon, dtype=float)
         lat = np.asarray(lat, dtype=float)
@@ -305,6 +312,10 @@ class ZeaPair:
         """E(B-V) at ICRS (ra, dec) in degrees -> (values, outside)."""
         l, b = galactic_coordinates(ra_deg, dec_deg)
         return self.lookup(l, b, interpolation)
+
+    def lookup_at(self, ra_deg, dec_deg, l_deg, b_deg, interpolation: str = "nearest"):
+        """E(B-V) at a position given in both frames -> (values, outside); Galactic used."""
+        return self.lookup(l_deg, b_deg, interpolation)
 
 
 def _sample(img: np.ndarray, x: np.ndarray, y: np.ndarray, interpolation: str) -> np.ndarray:

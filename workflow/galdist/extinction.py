@@ -314,7 +314,8 @@ def apply_extinction(ebv_in, ebv_in_err, coefficients: ExtinctionCoefficients,
                      ebv_scale: float = 0.86, *, ebv_scale_included: float | None = None,
                      high_limit: float = 0.5, outside=None,
                      ebv_fractional_error: float | None = None) -> dict:
-    """Per-row extinction columns: ebv_used, ebv_used_err, A_<band>, ext_flags.
+    """Per-row extinction columns: ebv_used, ebv_used_err, A_<band> and A_<band>_err
+    (= R_<band> ebv_used_err: the errors of all bands are one source), ext_flags.
 
     ``ebv_in`` (and ``ebv_in_err``, may be None) are on the input's scale; ``ebv_scale``
     turns them into true E(B-V) (0.86 for raw 1998-map values, 1 if already true).
@@ -359,8 +360,9 @@ def apply_extinction(ebv_in, ebv_in_err, coefficients: ExtinctionCoefficients,
     err = np.where(np.isfinite(ebv_used), err, np.nan)
 
     out = {"ebv_used": ebv_used, "ebv_used_err": err}
-    for label, r in per_true.items():
+    for label, r in per_true.items():  # one error source for every band: E(B-V)'s
         out[f"A_{label}"] = r * ebv_used
+        out[f"A_{label}_err"] = r * err
     ext = _flags.new(n)
     no_ebv = ~np.isfinite(ebv_used)
     _flags.set_where(ext, no_ebv, _flags.Ext.NO_EBV)

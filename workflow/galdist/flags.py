@@ -14,9 +14,12 @@ column              enum           written by
 ``ext_flags``       ``Ext``        Galactic extinction
 ``kcorr_flags``     ``KCorr``      K-corrections
 ``z_flags``         ``Redshift``   redshift distances
-``tf_flags``        ``Method``     Tully-Fisher
-``sbf_flags``       ``Method``     surface-brightness fluctuations
+``<prefix>_flags``  ``Method``     each distance method (``tf_flags``, ``sbf_flags``,
+                                   one per entry of ``galdist.methods.REGISTRY``)
 ==================  =============  ==========================================
+
+``inherited`` is the one rule by which every method takes bits from the stages
+before it.
 """
 
 from __future__ import annotations
@@ -90,6 +93,11 @@ class Quality(_Documented):
     OPTIONAL_INVALID = (13, "an optional numeric column (hi_flux, w50_resolution) is negative, infinite or "
                             "absurdly large (hi_flux > 1e7 Jy km/s, w50_resolution > 500 km/s)",
                         "the step that needs it is skipped for this row")
+    METHOD_INPUT_INVALID = (14, "an input column of a distance method without bits of its own above is outside "
+                                "the bounds its entry in galdist.methods declares, infinite, or missing while "
+                                "the method's other inputs are given",
+                            "no distance from that method for this row; the method's columns in the README "
+                            "give the bounds")
 
 
 class Ext(_Documented):
@@ -132,7 +140,7 @@ class Method(_Documented):
                     "extrapolated (if allowed) or NaN: the calibration does not cover this galaxy")
     LOW_INCLINATION = (2, "inclination below the configured limit (default 45 deg)",
                        "TF only: deprojection blows up for face-on discs; do not use the distance")
-    HIGH_EXTINCTION = (3, "inherited: Galactic E(B-V) above the limit, or no E(B-V)",
+    HIGH_EXTINCTION = (3, "inherited: Galactic E(B-V) above the limit, missing, or outside the map",
                        "extinction corrections are unreliable")
     KCORR_PROBLEM = (4, "inherited: K-correction clipped, defaulted or missing",
                      "check the K-correction flags")
@@ -147,8 +155,33 @@ class Method(_Documented):
                          "expect a zero-point offset of the size of the colour term between the passbands")
 
 
-ALL = {"quality_flags": Quality, "ext_flags": Ext, "kcorr_flags": KCorr,
-       "z_flags": Redshift, "tf_flags": Method, "sbf_flags": Method}
+#: The flag columns of the stages before the methods, and their bits.
+STAGE_FLAGS = {"quality_flags": Quality, "ext_flags": Ext, "kcorr_flags": KCorr, "z_flags": Redshift}
+
+
+def __getattr__(name):
+    """``ALL``: every flag column and its enum, the stages' then one ``<prefix>_flags``
+    per registered method (built on first use: the registry imports this module)."""
+    if name == "ALL":
+        from .methods import REGISTRY
+
+        return STAGE_FLAGS | {spec.flags_column: Method for spec in REGISTRY.values()}
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
+
+def inherited(ext_flags, kcorr_flags, *, extinction: bool = True, kcorrection: bool = True) -> np.ndarray:
+    """The Method bits a distance takes from the stages it used, the same for every method:
+    HIGH_EXTINCTION where the extinction stage set any bit (E(B-V) missing, above the
+    limit, or outside the map), KCORR_PROBLEM where the K-correction stage set any
+    (colour clipped or missing, redshift beyond the grid). A correction the method
+    switched off (``extinction``/``kcorrection`` false) passes nothing on."""
+    ext = np.asarray(ext_flags, dtype=FLAG_DTYPE)
+    out = new(ext.shape[0] if ext.ndim else 1)
+    if extinction:
+        set_where(out, ext != 0, Method.HIGH_EXTINCTION)
+    if kcorrection:
+        set_where(out, np.asarray(kcorr_flags, dtype=FLAG_DTYPE) != 0, Method.KCORR_PROBLEM)
+    return out
 
 
 def set_where(flags: np.ndarray, mask: np.ndarray, flag: enum.IntFlag) -> None:
@@ -169,7 +202,7 @@ def new(n: int) -> np.ndarray:
 def markdown_table() -> str:
     """The flag table of the README."""
     lines = []
-    for column, enum_cls in ALL.items():
+    for column, enum_cls in __getattr__("ALL").items():
         lines.append(f"\n**`{column}`**\n")
         lines.append("| bit | name | meaning | what to do |")
         lines.append("|---|---|---|---|")

@@ -1,4 +1,5 @@
-"""Ingest: map a local catalog onto the canonical columns, flag bad values, shard.
+"""Ingest: map a local catalog onto the canonical columns, flag bad values, add the
+Galactic coordinates (computed once here for every later stage), shard.
 
 Structural problems (a missing or non-numeric column, duplicate or missing IDs)
 stop with an ``IngestError`` naming the column, rows or IDs. Row-level problems
@@ -22,7 +23,7 @@ import pyarrow.compute as pc
 
 from . import flags as F
 from .catalog import CatalogError, describe, detect_format, iter_batches, source_files
-from .columns import OPTIONAL, Z_HELIO_RANGE, Column, all_columns, required_columns
+from .columns import DERIVED, OPTIONAL, Z_HELIO_RANGE, Column, all_columns, method_columns, required_columns
 from .errors import IngestError
 from .io import field as arrow_field
 from .io import (INTERMEDIATE_COMPRESSION, AtomicParquetWriter, Fingerprint, RecordSpill, is_arrow_text,
@@ -36,15 +37,7 @@ C_KMS = 299792.458
 # unless a source is named; the flag texts in galdist.flags.Quality say the same.
 MAG_RANGE = (-10.0, 40.0)
 MAG_ERR_MAX = 10.0  # mag: an error of 10 mag carries no information about the magnitude
-SBF_MAG_RANGE = (-10.0, 50.0)
-SBF_COLOR_RANGE = (-2.0, 5.0)
-SBF_ERR_MAX = 10.0  # mag
 Z_ERR_MAX = 1.0  # larger than the whole allowed range of z_helio
-W50_MIN = 1.0  # km/s: narrower than the thermal FWHM of cold (100 K) HI, 2.1 km/s (kinetic theory)
-W50_MAX = 2000.0  # km/s
-W50_ERR_MAX = W50_MAX  # km/s: an error wider than the widest line
-AXIS_RATIO_MIN = 0.01  # no observed disc is that thin (the flattest edge-on discs reach b/a ~ 0.05, from memory)
-AXIS_RATIO_ERR_MAX = 1.0  # larger than the whole range of b/a
 EBV_MAX = 10.0  # mag: A_V ~ 31 mag; no extinction correction of that size is usable
 HI_FLUX_MAX = 1e7  # Jy km/s: ~10x the Large Magellanic Cloud, the brightest HI source in the sky (~1e6, from memory)
 W50_RESOLUTION_MAX = 500.0  # km/s: 10x coarser than any HI survey's channels (tens of km/s at most)
@@ -98,7 +91,10 @@ def plan(paths: list[str], fmt: str, mapping: dict, units: dict, bands: list[str
     each file of a Parquet directory included, is checked on its own; a unit the file
     declares applies to that file where config gives none.
     """
-    known = {c.name for c in all_columns(bands, ["tully_fisher", "sbf"])}
+    from .methods import REGISTRY
+
+    every = all_columns(bands, list(REGISTRY))
+    known = {c.name for c in every}
     unknown = sorted(set(mapping) - known)
     if unknown:
         raise IngestError(f"config key 'columns': unknown canonical name(s) {', '.join(unknown)}; "
@@ -106,7 +102,7 @@ def plan(paths: list[str], fmt: str, mapping: dict, units: dict, bands: list[str
     unknown = sorted(set(units) - known)
     if unknown:
         raise IngestError(f"config key 'units': unknown canonical name(s) {', '.join(unknown)}")
-    by_name = {c.name: c for c in all_columns(bands, ["tully_fisher", "sbf"])}
+    by_name = {c.name: c for c in every}
     for name, unit in units.items():
         _check_unit(by_name[name], unit)
     required = {c.name for c in required_columns(bands, methods, list(extra_required))}
@@ -205,9 +201,8 @@ def _problem_message(problems: list[tuple[str, str]]) -> str:
 
 
 def _needed_by(name: str, methods, extra_required) -> str:
-    from .columns import METHOD_COLUMNS
     for m in methods:
-        if any(c.name == name for c in METHOD_COLUMNS[m]):
+        if any(c.name == name for c in method_columns(m)):
             return f"needed by method {m}; or drop {m} from config 'methods'"
     if isinstance(extra_required, dict) and name in extra_required:
         return extra_required[name]
@@ -319,13 +314,14 @@ def _observed(cols, names) -> np.ndarray:
     return np.logical_or.reduce([~np.isnan(cols[n]) for n in names])
 
 
-def quality(cols: dict[str, np.ndarray], bands: list[str], present: set[str]) -> np.ndarray:
+def quality(cols: dict[str, np.ndarray], bands: list[str], present: set[str], methods=()) -> np.ndarray:
     """Set the Quality bits and NaN the offending values in ``cols`` (in place).
 
     Position and redshift are needed for every row, so missing counts as invalid.
-    Method inputs come in groups (a magnitude and its error; the four TF inputs; the
-    four SBF inputs): a group that is entirely missing means "not observed" and
-    sets no bit; a partly missing or out-of-range group does.
+    Method inputs come in groups (a magnitude and its error; the catalog columns of
+    each of ``methods``, bounded by its registry entry): a group that is entirely
+    missing means "not observed" and sets no bit; a partly missing or out-of-range
+    group does.
     """
     n = len(cols["ra"])
     q = F.new(n)
@@ -345,21 +341,12 @@ def quality(cols: dict[str, np.ndarray], bands: list[str], present: set[str]) ->
             seen = _observed(cols, [f"mag_{b}", f"mag_{b}_err"])
             _flag_invalid(m, (m < MAG_RANGE[0]) | (m > MAG_RANGE[1]), q, Q.MAG_INVALID, seen)
             _flag_invalid(e, (e < 0) | (e > MAG_ERR_MAX), q, Q.MAG_ERR_INVALID, seen)
-        if "w50" in cols:
-            seen = _observed(cols, ["w50", "w50_err", "axis_ratio", "axis_ratio_err"])
-            w, we, ba, bae = cols["w50"], cols["w50_err"], cols["axis_ratio"], cols["axis_ratio_err"]
-            _flag_invalid(w, (w < W50_MIN) | (w > W50_MAX), q, Q.WIDTH_INVALID, seen)
-            _flag_invalid(we, (we < 0) | (we > W50_ERR_MAX), q, Q.WIDTH_ERR_INVALID, seen)
-            _flag_invalid(ba, (ba < AXIS_RATIO_MIN) | (ba > 1), q, Q.AXIS_RATIO_INVALID, seen)
-            _flag_invalid(bae, (bae < 0) | (bae > AXIS_RATIO_ERR_MAX), q, Q.AXIS_RATIO_ERR_INVALID, seen)
-        if "sbf_mag" in cols:
-            seen = _observed(cols, ["sbf_mag", "sbf_mag_err", "sbf_color", "sbf_color_err"])
-            m, c = cols["sbf_mag"], cols["sbf_color"]
-            _flag_invalid(m, (m < SBF_MAG_RANGE[0]) | (m > SBF_MAG_RANGE[1]), q, Q.SBF_MAG_INVALID, seen)
-            _flag_invalid(c, (c < SBF_COLOR_RANGE[0]) | (c > SBF_COLOR_RANGE[1]), q, Q.SBF_COLOR_INVALID, seen)
-            for name in ("sbf_mag_err", "sbf_color_err"):
-                e = cols[name]
-                _flag_invalid(e, (e < 0) | (e > SBF_ERR_MAX), q, Q.SBF_ERR_INVALID, seen)
+        for method in methods:  # each method's inputs, as its registry entry bounds them
+            group = method_columns(method)
+            seen = _observed(cols, [c.name for c in group])
+            for c in group:
+                v, (lo, hi) = cols[c.name], c.valid or (-np.inf, np.inf)
+                _flag_invalid(v, (v < lo) | (v > hi), q, Q[c.quality or "METHOD_INPUT_INVALID"], seen)
         for name, err in (("ebv", "ebv_err"),):
             if name in present:
                 seen = _observed(cols, [name] + ([err] if err in present else []))
@@ -414,7 +401,7 @@ def canonical_batch(raw: dict, p: IngestPlan, first_row: int,
 
 def _arrow_schema(p: IngestPlan) -> pa.Schema:
     fields = []
-    for col in p.columns:
+    for col in p.columns + DERIVED:
         fields.append(arrow_field(col.name, pa.string() if col.is_text else pa.float64(),
                                   None if col.is_text or not col.unit else col.unit))
     fields.append(pa.field("quality_flags", pa.uint32()))
@@ -506,6 +493,8 @@ def run(p: IngestPlan, out_dir: str | Path, summary_path: str | Path, shard_rows
     appears only when every shard and the duplicate-ID check are done (it is written
     beside its final place under a temporary name, then renamed).
     """
+    from .ebv_maps import galactic_coordinates  # astropy.coordinates: only the job that needs it
+
     out_dir = Path(out_dir)
     tmp_dir = out_dir.parent / f".{out_dir.name}.tmp"
     shutil.rmtree(tmp_dir, ignore_errors=True)
@@ -521,7 +510,8 @@ def run(p: IngestPlan, out_dir: str | Path, summary_path: str | Path, shard_rows
             in_file = 0
             for raw in iter_batches(source.path, p.fmt, needed, max(1, min(batch_rows, shard_rows))):
                 cols = canonical_batch(raw, p, in_file, source)
-                q = quality(cols, p.bands, present)
+                q = quality(cols, p.bands, present, p.methods)
+                cols["gal_l"], cols["gal_b"] = galactic_coordinates(cols["ra"], cols["dec"])
                 for member in F.Quality:
                     counts[member.name] += int(F.has(q, member).sum())
                 flagged += int(np.count_nonzero(q))

@@ -21,12 +21,12 @@ import numpy as np  # noqa: E402
 
 from .flags import Method  # noqa: E402
 from .io import atomic_path  # noqa: E402
+from .methods import REGISTRY, by_prefix, plot_names  # noqa: E402
 
 DPI = 110
 MAX_ERRORBARS = 3000  # above this, points only (error bars would hide the data)
-METHOD_STYLE = {"tf": ("Tully-Fisher", "tab:blue"), "sbf": ("SBF", "tab:red"),
-                "fp": ("Fundamental plane", "tab:green")}
 _NOT_A_PROBLEM = int(Method.LOCAL_FLOW)
+_DEFAULT_METHODS = tuple(s.prefix for s in REGISTRY.values())
 
 
 #: Beyond this magnitude no plotted quantity (mag, km/s, deg, z) is physical: such
@@ -52,7 +52,9 @@ def _flagged(df, method) -> np.ndarray:
 
 
 def _label(method) -> tuple[str, str]:
-    return METHOD_STYLE.get(method, (method.upper(), "tab:purple"))
+    """Title and colour of a method prefix (its registry entry's)."""
+    spec = by_prefix(method)
+    return (spec.title, spec.colour) if spec else (method.upper(), "tab:purple")
 
 
 def _no_data(ax, text="no data"):
@@ -82,7 +84,7 @@ def _points(ax, x, y, yerr, good, bad, color, label, size=12):
                    linewidths=0.8, label=f"{label} flagged ({bad.sum()})", rasterized=True, zorder=2)
 
 
-def hubble_diagram(df, path, grid, methods: Sequence[str] = ("tf", "sbf")) -> int:
+def hubble_diagram(df, path, grid, methods: Sequence[str] = _DEFAULT_METHODS) -> int:
     """mu against z_cmb (log axis) for each method, with the grid's mu(z) curve."""
     z = _col(df, "z_cmb")
     fig, ax = plt.subplots(figsize=(7, 5))
@@ -120,12 +122,7 @@ def _calibration_curve(calibration, x):
     """Absolute magnitude of the calibration along predictor x (luminosity,
     colour_polynomial and inverse forms; None for the baryonic form)."""
     if calibration.form in ("luminosity", "colour_polynomial"):
-        y = calibration.polynomial(x)
-        q = calibration.quadratic
-        if q:
-            t = np.asarray(x, dtype=float) - q["break"]
-            y = y + np.where(t > 0, q["coefficient"] * t**2, 0.0)
-        return x, y
+        return x, calibration.relation(x)
     if calibration.form == "inverse" and calibration.magnitude_pivot is not None:
         # x - pivot = sum a_k (M - M_pivot)^k: trace it along M
         mags = np.linspace(-25.0, -12.0, 400)
@@ -178,22 +175,22 @@ def _relation(df, path, calibration, xcol, magcol, flagcol, xlabel, title, color
     return n
 
 
-def tf_relation(df, path, calibration=None) -> int:
-    """Tully-Fisher: tf_mag_corr - mu_z against tf_logw_i with the calibration line and scatter band."""
-    return _relation(df, path, calibration, "tf_logw_i", "tf_mag_corr", "tf",
-                     r"$\log_{10} W^i$ (W in km/s)", "Tully-Fisher relation", "tab:blue")
-
-
-def sbf_relation(df, path, calibration=None) -> int:
-    """SBF: sbf_mag_0 - mu_z (fluctuation magnitude) against sbf_color_0 with the calibration."""
+def relation(df, path, prefix: str, calibration=None) -> int:
+    """The calibration-relation plot of the method with ``prefix`` (its registry entry's
+    ``relation_plot``): <prefix>_<y> - mu_z against <prefix>_<x>, with the calibration's
+    line and scatter band."""
+    spec = by_prefix(prefix)
+    if spec is None or spec.relation_plot is None:
+        raise ValueError(f"unknown plot '{prefix}_relation'; known: "
+                         f"{', '.join(plot_names([s.prefix for s in REGISTRY.values()]))}")
+    rp = spec.relation_plot
     colour = "-".join(calibration.color_bands) if calibration is not None and calibration.color_bands else \
         (calibration.predictor if calibration is not None else "colour")
-    return _relation(df, path, calibration, "sbf_color_0", "sbf_mag_0", "sbf",
-                     f"dereddened colour ({colour})$_0$ (mag)",
-                     r"SBF: $\bar M$ against colour", "tab:red")
+    return _relation(df, path, calibration, f"{prefix}_{rp.x}", f"{prefix}_{rp.y}", prefix,
+                     rp.xlabel.replace("{colour}", colour), rp.title, spec.colour)
 
 
-def dmu_histograms(df, path, methods: Sequence[str] = ("tf", "sbf"), min_cz: float = 3000.0) -> int:
+def dmu_histograms(df, path, methods: Sequence[str] = _DEFAULT_METHODS, min_cz: float = 3000.0) -> int:
     """Histogram of dmu per method (usable rows with c z_cmb >= min_cz) against the
     Gaussian expected from the errors alone: mean 0, sigma the rms of
     sqrt(mu_err^2 + mu_z_err^2), scaled to the counts."""
@@ -237,7 +234,7 @@ def dmu_histograms(df, path, methods: Sequence[str] = ("tf", "sbf"), min_cz: flo
     return total
 
 
-def vpec_sky(df, path, methods: Sequence[str] = ("tf", "sbf"), column: str = "vpec") -> int:
+def vpec_sky(df, path, methods: Sequence[str] = _DEFAULT_METHODS, column: str = "vpec") -> int:
     """Peculiar velocities on the sky: Mollweide, galactic coordinates, l = 0 at
     the centre increasing to the left; colour is v (km/s), flagged rows grey crosses."""
     lon, lat = _col(df, "gal_l"), _col(df, "gal_b")
@@ -280,43 +277,27 @@ def vpec_sky(df, path, methods: Sequence[str] = ("tf", "sbf"), column: str = "vp
     return total
 
 
-#: the calibration-relation plot of each method prefix, "<prefix>_relation", drawn only
-#: for a method that ran
-RELATION_PLOTS = {"tf": tf_relation, "sbf": sbf_relation}
-
-
-def plot_names(methods: Sequence[str] = ("tf", "sbf")) -> list[str]:
-    """The plots of a run with these method prefixes: the Hubble diagram, one relation
-    plot per method that has one, the dmu histograms and the sky map (one panel per
-    method); none when no method ran (every plot would be empty)."""
-    if not methods:
-        return []
-    return ["hubble_diagram", *(f"{m}_relation" for m in methods if m in RELATION_PLOTS),
-            "dmu_histograms", "vpec_sky"]
-
-
-def draw(name: str, df, path, grid, *, methods: Sequence[str] = ("tf", "sbf"),
+def draw(name: str, df, path, grid, *, methods: Sequence[str] = _DEFAULT_METHODS,
          calibrations: dict | None = None, min_cz: float = 3000.0) -> int:
     """Draw the plot called ``name`` (one of ``plot_names``) to ``path``; ``calibrations``
     maps a method prefix to its calibration. Returns the number of galaxies drawn."""
-    prefix = name.removesuffix("_relation")
     if name == "hubble_diagram":
         return hubble_diagram(df, path, grid, methods)
-    if name.endswith("_relation") and prefix in RELATION_PLOTS:
-        return RELATION_PLOTS[prefix](df, path, (calibrations or {}).get(prefix))
+    if name.endswith("_relation"):
+        prefix = name.removesuffix("_relation")
+        return relation(df, path, prefix, (calibrations or {}).get(prefix))
     if name == "dmu_histograms":
         return dmu_histograms(df, path, methods, min_cz)
     if name == "vpec_sky":
         return vpec_sky(df, path, methods)
-    raise ValueError(f"unknown plot {name!r}; known: {', '.join(plot_names(list(RELATION_PLOTS)))}")
+    raise ValueError(f"unknown plot {name!r}; known: {', '.join(plot_names(_DEFAULT_METHODS))}")
 
 
-def write_all(df, out_dir, grid, *, methods: Sequence[str] = ("tf", "sbf"), tf_calibration=None,
-              sbf_calibration=None, min_cz: float = 3000.0) -> dict[str, str]:
+def write_all(df, out_dir, grid, *, methods: Sequence[str] = _DEFAULT_METHODS, calibrations: dict | None = None,
+              min_cz: float = 3000.0) -> dict[str, str]:
     """The plots of ``plot_names(methods)`` into ``out_dir``; returns {plot name: path}."""
     out = Path(out_dir)
-    cals = {"tf": tf_calibration, "sbf": sbf_calibration}
     paths = {k: str(out / f"{k}.png") for k in plot_names(methods)}
     for name, path in paths.items():
-        draw(name, df, path, grid, methods=methods, calibrations=cals, min_cz=min_cz)
+        draw(name, df, path, grid, methods=methods, calibrations=calibrations, min_cz=min_cz)
     return paths

@@ -144,17 +144,14 @@ def _passbands(cfg, cals) -> dict:
 
 
 def _method_settings(cfg, cals) -> None:
-    """The settings each method will require, checked now rather than inside a job."""
-    from . import sbf, tully_fisher
+    """The settings each method will require, checked now rather than inside a job
+    (each registry entry's ``check``)."""
+    from .methods import REGISTRY
 
     problems = []
-    checks = {"tully_fisher": lambda cal: tully_fisher.check_setup(cal, tully_fisher.TFSettings.from_config(
-                  cfg["tully_fisher"], ignore=tully_fisher.WORKFLOW_KEYS)),
-              "sbf": lambda cal: (sbf.check_calibration(cal),
-                                  sbf.SBFSettings.from_config(cfg["sbf"], ignore=sbf.WORKFLOW_KEYS))}
     for method, cal in cals.items():
         try:
-            checks[method](cal)
+            REGISTRY[method].check(cfg, cal)
         except ValueError as exc:
             problems.append(f"{method}: {exc}")
     if problems:

@@ -25,11 +25,13 @@ import pyarrow as pa
 from . import crosscheck
 from . import flags as F
 from .io import AtomicParquetWriter, iter_shard, table_from_columns, write_parquet
+from .methods import REGISTRY
 
 log = logging.getLogger(__name__)
 
-METHOD_PREFIX = {"tully_fisher": "tf", "sbf": "sbf"}
-FLAG_COLUMNS = ("quality_flags", "ext_flags", "kcorr_flags", "z_flags", "tf_flags", "sbf_flags")
+#: config name -> column prefix of every registered method
+METHOD_PREFIX = {name: spec.prefix for name, spec in REGISTRY.items()}
+FLAG_COLUMNS = tuple(F.ALL)
 LEADING = ["galaxy_id", "ra", "dec", "gal_l", "gal_b", "galaxy_class", *FLAG_COLUMNS,
            "z_helio", "z_helio_err", "z_cmb", "z_cmb_err", "mu_z", "mu_z_err", "d_z_mpc",
            "ebv", "ebv_err", "ebv_used", "ebv_used_err"]
@@ -49,9 +51,9 @@ CAUTIONS = (
     "not a measurement.",
     "Calibrations marked 'from memory' in their files must be checked against the papers before publication.",
 )
-PLOT_COLUMNS = ["galaxy_id", "gal_l", "gal_b", "z_cmb", "mu_z", "mu_z_err", "tf_logw_i", "tf_mag_corr",
-                "sbf_color_0", "sbf_mag_0"] + [f"{p}_{c}" for p in METHOD_PREFIX.values()
-                                              for c in ("mu", "mu_err", "flags", "dmu", "vpec")]
+PLOT_COLUMNS = ["galaxy_id", "gal_l", "gal_b", "z_cmb", "mu_z", "mu_z_err"] + [
+    f"{s.prefix}_{c}" for s in REGISTRY.values() if s.relation_plot for c in (s.relation_plot.x, s.relation_plot.y)
+] + [f"{p}_{c}" for p in METHOD_PREFIX.values() for c in ("mu", "mu_err", "flags", "dmu", "vpec")]
 PACKAGES = ("galdist", "numpy", "pandas", "pyarrow", "astropy", "scipy", "speclite",
             "dust_extinction", "astropy-healpix", "matplotlib", "snakemake")
 

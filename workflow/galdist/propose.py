@@ -414,12 +414,12 @@ def propose(catalog: str, run: str | None = None, output_dir: str = "galdist-res
             p.todo.append(f"no column found for {role}: map yours in 'columns' (galdist needs it)")
 
     # 6. the column mapping to write: what the configured bands and methods read
-    from .columns import BASE, OPTIONAL, METHOD_COLUMNS, band_columns
+    from .columns import BASE, OPTIONAL, band_columns, method_columns
     wanted = [c.name for c in BASE + OPTIONAL]
     for label in p.bands:
         wanted += [c.name for c in band_columns(label)]
     for m in p.methods:
-        wanted += [c.name for c in METHOD_COLUMNS[m]]
+        wanted += [c.name for c in method_columns(m)]
     for role in wanted:
         if role in chosen:
             name, m = chosen[role]

@@ -26,7 +26,6 @@ from astropy import constants as _const
 from astropy import units as _u
 
 from . import flags as _flags
-from .ebv_maps import galactic_coordinates
 from .distance import mpc_from_mu
 from .io import atomic_path, reading_grid
 from .uncertainty import quadrature
@@ -263,21 +262,22 @@ def mu_z_error(grid: MuGrid, z_cmb, z_cmb_err, sigma_v: float = 250.0) -> np.nda
     return np.abs(grid.dmu_dz(z)) * sig_z
 
 
-def redshift_distances(ra, dec, z_helio, z_helio_err, grid: MuGrid, *,
+def redshift_distances(gal_l, gal_b, z_helio, z_helio_err, grid: MuGrid, *,
                        v_sun: float = V_SUN_KMS, apex_l: float = APEX_L_DEG,
                        apex_b: float = APEX_B_DEG, sigma_v: float = 250.0,
                        min_cz: float = 3000.0) -> dict[str, np.ndarray]:
-    """The redshift stage's columns for one shard.
+    """The redshift stage's columns for one shard, from Galactic coordinates (ingest's
+    gal_l, gal_b, deg) and heliocentric redshifts.
 
-    Returns gal_l, gal_b, z_cmb, z_cmb_err, mu_z, mu_z_err, d_z_mpc (luminosity
-    distance of z_cmb, Mpc) and z_flags (``flags.Redshift``): NO_REDSHIFT where
-    z_helio or the position is invalid, or z_cmb lies beyond the grid's z_max;
-    LOCAL_FLOW where c z_cmb < ``min_cz`` (km/s). Where z_cmb <= 0 (blueshifted
-    nearby galaxies) mu_z is NaN and only LOCAL_FLOW is set.
+    Returns z_cmb, z_cmb_err, mu_z, mu_z_err, d_z_mpc (luminosity distance of
+    z_cmb, Mpc) and z_flags (``flags.Redshift``): NO_REDSHIFT where z_helio or the
+    position is invalid, or z_cmb lies beyond the grid's z_max; LOCAL_FLOW where
+    c z_cmb < ``min_cz`` (km/s). Where z_cmb <= 0 (blueshifted nearby galaxies) mu_z
+    is NaN and only LOCAL_FLOW is set.
     """
     z_helio = np.asarray(z_helio, dtype=float)
     n = z_helio.shape[0]
-    l, b = galactic_coordinates(ra, dec)
+    l, b = np.asarray(gal_l, dtype=float), np.asarray(gal_b, dtype=float)
     z_cmb, z_cmb_err = cmb_redshift(z_helio, l, b, z_helio_err, v_sun, apex_l, apex_b)
     mu_z = grid.mu(z_cmb)
     mu_z_err = np.where(np.isfinite(mu_z), mu_z_error(grid, z_cmb, z_cmb_err, sigma_v), np.nan)
@@ -287,6 +287,6 @@ def redshift_distances(ra, dec, z_helio, z_helio_err, grid: MuGrid, *,
     _flags.set_where(zf, ~no_z & (C_KMS * np.nan_to_num(z_cmb, nan=np.inf) < float(min_cz)),
                      _flags.Redshift.LOCAL_FLOW)
     return {
-        "gal_l": l, "gal_b": b, "z_cmb": z_cmb, "z_cmb_err": z_cmb_err,
+        "z_cmb": z_cmb, "z_cmb_err": z_cmb_err,
         "mu_z": mu_z, "mu_z_err": mu_z_err, "d_z_mpc": mpc_from_mu(mu_z), "z_flags": zf,
     }

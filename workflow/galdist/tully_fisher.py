@@ -41,15 +41,14 @@ Malmquist-corrected.
 
 from __future__ import annotations
 
-import dataclasses
-from collections.abc import Iterable, Mapping
-from dataclasses import dataclass
+from collections.abc import Mapping
 
 import numpy as np
 
-from galdist import distance, flags, uncertainty
+from galdist import distance, flags, photometry, uncertainty
 from galdist.calibration import Calibration
-from galdist.flags import Ext, Method, Quality
+from galdist.flags import Method, Quality
+from galdist.settings import method_settings
 
 LN10 = np.log(10.0)
 
@@ -72,9 +71,6 @@ OUTPUT_COLUMNS = ("tf_inclination_deg", "tf_w_z", "tf_w_r", "tf_logw_i", "tf_a_i
                   "tf_mag_corr", "tf_abs_mag", "tf_mu", "tf_mu_err", "tf_mu_err_mc",
                   "tf_d_mpc", "tf_d_err_mpc", "tf_malmquist_applied", "tf_flags")
 
-#: Keys of the ``tully_fisher:`` config section that the workflow handles, not TFSettings.
-WORKFLOW_KEYS = ("calibration", "band", "mc_max_rows", "accept_passband_mismatch")
-
 _REQUIRED_INPUTS = ("mag", "w50", "axis_ratio", "z_helio")
 _OPTIONAL_INPUTS = ("mag_err", "w50_err", "axis_ratio_err", "a_gal", "a_gal_err", "k_corr",
                     "k_corr_err", "w50_resolution", "hi_flux", "hi_flux_err",
@@ -83,103 +79,20 @@ _OPTIONAL_INPUTS = ("mag_err", "w50_err", "axis_ratio_err", "a_gal", "a_gal_err"
 
 # --------------------------------------------------------------------------- settings
 
-@dataclass(frozen=True)
-class TFSettings:
-    """Options of the Tully-Fisher stage (the ``tully_fisher:`` config section).
+class TFSettings(method_settings("tully_fisher", {
+        "input_system": ({"enum": [None, "AB", "Vega"]}, None),
+        "ab_minus_vega": ({"type": ["number", "null"]}, None)})):
+    """Options of the Tully-Fisher stage: the keys of the ``tully_fisher:`` section of
+    the config schema, with its defaults and rules (``galdist.settings``).
 
     ``None`` for ``turbulence_wt``/``turbulence_wc`` means "by width definition"
     (``TURBULENCE_CONSTANTS``); for ``gamma0``/``gamma1`` "by calibration band"
-    (``INTERNAL_EXTINCTION_GAMMA``); for ``input_system`` "the magnitudes are already
-    in the calibration's system". ``mass_to_light`` and ``abs_mag_sun`` (the band's
+    (``INTERNAL_EXTINCTION_GAMMA``). ``mass_to_light`` and ``abs_mag_sun`` (the band's
     solar absolute magnitude, in the calibration's system) are needed only by the
-    baryonic form.
+    baryonic form. Derived from the bands config, not keys of the section:
+    ``input_system``, the system of the magnitudes (None: already the calibration's),
+    and the band's ``ab_minus_vega``.
     """
-
-    q0: float = 0.2
-    min_inclination_deg: float = 45.0
-    width_definition: str = "w50"
-    apply_resolution: bool = True
-    apply_redshift_broadening: bool = True
-    apply_turbulence: bool = True
-    turbulence_wt: float | None = None
-    turbulence_wc: float | None = None
-    apply_internal_extinction: bool = True
-    gamma0: float | None = None
-    gamma1: float | None = None
-    apply_galactic_extinction: bool = True
-    apply_kcorrection: bool = True
-    input_system: str | None = None
-    ab_minus_vega: float | None = None
-    allow_extrapolation: bool = True
-    malmquist: bool = False
-    malmquist_kind: str = "mean"
-    mc_draws: int = 200
-    mc_seed: int = 12345
-    mass_to_light: float | None = None
-    mass_to_light_err: float = 0.0
-    abs_mag_sun: float | None = None
-    hi_mass_factor: float = 1.33
-    hi_mass_coefficient: float = HI_MASS_COEFFICIENT
-    velocity_width_factor: float = 0.5
-
-    def __post_init__(self):
-        def bad(key, allowed):
-            raise ValueError(f"tully_fisher.{key} = {getattr(self, key)!r}: must be {allowed}")
-
-        if not (isinstance(self.q0, (int, float)) and 0.0 <= self.q0 < 1.0):
-            bad("q0", "a number in [0, 1)")
-        if not (isinstance(self.min_inclination_deg, (int, float)) and 0.0 <= self.min_inclination_deg <= 90.0):
-            bad("min_inclination_deg", "a number in [0, 90]")
-        if self.width_definition not in TURBULENCE_CONSTANTS:
-            bad("width_definition", f"one of {sorted(TURBULENCE_CONSTANTS)}")
-        for key in ("apply_resolution", "apply_redshift_broadening", "apply_turbulence",
-                    "apply_internal_extinction", "apply_galactic_extinction", "apply_kcorrection",
-                    "allow_extrapolation", "malmquist"):
-            if not isinstance(getattr(self, key), bool):
-                bad(key, "true or false")
-        for key in ("turbulence_wt", "turbulence_wc"):
-            v = getattr(self, key)
-            if v is not None and not (isinstance(v, (int, float)) and v >= 0 and np.isfinite(v)):
-                bad(key, "null or a finite number >= 0 (km/s)")
-        if self.turbulence_wc is not None and self.turbulence_wc == 0:
-            bad("turbulence_wc", "> 0 km/s")
-        for key in ("gamma0", "gamma1", "ab_minus_vega", "abs_mag_sun"):
-            v = getattr(self, key)
-            if v is not None and not (isinstance(v, (int, float)) and np.isfinite(v)):
-                bad(key, "null or a finite number")
-        if self.input_system not in (None, "AB", "Vega"):
-            bad("input_system", "null, 'AB' or 'Vega'")
-        if self.malmquist_kind not in ("mean", "median"):
-            bad("malmquist_kind", "'mean' or 'median'")
-        if not (isinstance(self.mc_draws, int) and not isinstance(self.mc_draws, bool)
-                and (self.mc_draws == 0 or self.mc_draws >= 2)):
-            bad("mc_draws", "an integer: 0 (no Monte Carlo) or >= 2")
-        if not (isinstance(self.mc_seed, int) and not isinstance(self.mc_seed, bool) and self.mc_seed >= 0):
-            bad("mc_seed", "an integer >= 0")
-        if self.mass_to_light is not None and not (isinstance(self.mass_to_light, (int, float)) and self.mass_to_light > 0):
-            bad("mass_to_light", "null or a number > 0 (M_sun / L_sun)")
-        for key in ("mass_to_light_err", "hi_mass_factor", "hi_mass_coefficient"):
-            v = getattr(self, key)
-            if not (isinstance(v, (int, float)) and v >= 0 and np.isfinite(v)):
-                bad(key, "a finite number >= 0")
-        if not (isinstance(self.velocity_width_factor, (int, float)) and self.velocity_width_factor > 0):
-            bad("velocity_width_factor", "a number > 0")
-
-    @classmethod
-    def from_config(cls, config: Mapping | None, ignore: Iterable[str] = ()) -> "TFSettings":
-        """Settings from the ``tully_fisher:`` config mapping; unknown keys raise.
-
-        ``ignore`` names keys that belong to the workflow (e.g. the list of
-        calibrations) and are skipped here.
-        """
-        config = dict(config or {})
-        for key in ignore:
-            config.pop(key, None)
-        known = {f.name for f in dataclasses.fields(cls)}
-        unknown = sorted(set(config) - known)
-        if unknown:
-            raise ValueError(f"tully_fisher: unknown key(s) {unknown}; allowed: {sorted(known)}")
-        return cls(**config)
 
     def turbulence_constants(self) -> tuple[float, float]:
         wt, wc = TURBULENCE_CONSTANTS[self.width_definition]
@@ -267,22 +180,6 @@ def internal_extinction(axis_ratio, logw_i, gamma0: float, gamma1: float) -> np.
         return gamma * -np.log10(q)
 
 
-def convert_system(mag, from_system: str | None, to_system: str, ab_minus_vega: float | None):
-    """Magnitude in ``to_system`` given the band's AB - Vega offset.
-
-    m_AB = m_Vega + (AB - Vega); offsets e.g. Blanton & Roweis 2007, AJ 133, 734,
-    Table 1 (2MASS Ks 1.85, Cousins I 0.45). ``from_system`` None means "already
-    in ``to_system``".
-    """
-    mag = np.asarray(mag, dtype=float)
-    if from_system is None or from_system == to_system:
-        return mag
-    if ab_minus_vega is None:
-        raise ValueError(f"tully_fisher.ab_minus_vega is required to convert {from_system} magnitudes "
-                         f"to the calibration's {to_system} system")
-    return mag - ab_minus_vega if to_system == "Vega" else mag + ab_minus_vega
-
-
 # --------------------------------------------------------------------- calibration
 
 def _check_calibration(cal: Calibration, s: TFSettings) -> None:
@@ -336,52 +233,6 @@ def _gamma(cal: Calibration, s: TFSettings) -> tuple[float, float]:
                      f"{sorted(INTERNAL_EXTINCTION_GAMMA)} in the luminosity/inverse forms")
 
 
-def _matrix_sqrt(cov: np.ndarray) -> np.ndarray:
-    vals, vecs = np.linalg.eigh(cov)
-    return vecs * np.sqrt(np.clip(vals, 0.0, None))
-
-
-def _relation(cal: Calibration, x, coeffs=None, quad=None):
-    """M(x) (luminosity, inverse) or log10 M_b(log V) (baryonic); coefficient overrides
-    may be arrays broadcastable against x (Monte Carlo)."""
-    c = cal.coefficients if coeffs is None else coeffs
-    if cal.form == "inverse":
-        return cal.magnitude_pivot + (x - cal.pivot - c[0]) / c[1]
-    t = x - cal.pivot
-    out = np.zeros_like(t)
-    for k in range(len(c) - 1, -1, -1):  # Horner, works with per-draw coefficients
-        out = out * t + c[k]
-    if cal.quadratic is not None:
-        q = cal.quadratic["coefficient"] if quad is None else quad
-        dt = x - cal.quadratic["break"]
-        out = out + np.where(dt > 0.0, q * dt * dt, 0.0)
-    return out
-
-
-def _relation_slope(cal: Calibration, x):
-    if cal.form == "inverse":
-        return np.full_like(x, 1.0 / cal.coefficients[1])
-    slope = cal.polynomial_slope(x)
-    if cal.quadratic is not None:
-        dt = x - cal.quadratic["break"]
-        slope = slope + np.where(dt > 0.0, 2.0 * cal.quadratic["coefficient"] * dt, 0.0)
-    return slope
-
-
-def _relation_variance(cal: Calibration, x, value):
-    """Variance of the relation at x from its coefficient (co)variance."""
-    if cal.form == "inverse":
-        a1 = cal.coefficients[1]
-        jac = np.stack([np.full_like(x, -1.0 / a1), -(value - cal.magnitude_pivot) / a1], axis=-1)
-        return np.einsum("...i,ij,...j->...", jac, cal.covariance, jac)
-    var = cal.polynomial_variance(x)
-    if cal.quadratic is not None:
-        dt = x - cal.quadratic["break"]
-        err = float(cal.quadratic.get("error", 0.0))
-        var = var + np.where(dt > 0.0, (dt * dt * err) ** 2, 0.0)
-    return var
-
-
 # ------------------------------------------------------------------------ the chain
 
 def _chain(cal, s, g0, g1, *, mag, a_gal, k_corr, w50, axis_ratio, z, resolution, hi_flux,
@@ -395,11 +246,11 @@ def _chain(cal, s, g0, g1, *, mag, a_gal, k_corr, w50, axis_ratio, z, resolution
     with np.errstate(divide="ignore", invalid="ignore"):
         logw_i = np.log10(deproject(w_r, incl))
     a_int = internal_extinction(axis_ratio, logw_i, g0, g1)
-    m_c = convert_system(mag, s.input_system, cal.system, s.ab_minus_vega) - a_gal - k_corr - a_int
+    m_c = photometry.convert(mag, s.input_system, cal.system, s.ab_minus_vega) - a_gal - k_corr - a_int
     out = {"incl": incl, "w_z": w_z, "w_r": w_r, "logw_i": logw_i, "a_int": a_int, "m_c": m_c}
     if cal.form == "baryonic":
         log_v = logw_i + np.log10(s.velocity_width_factor)
-        log_mb = _relation(cal, log_v, coeffs) + scatter
+        log_mb = cal.relation(log_v, coeffs) + scatter
         # beta = M_b / d^2: stellar Upsilon L / d^2 plus gas 1.33 M_HI / d^2 (d in Mpc,
         # mu = 5 log10 d + 25, so L / d^2 = 10^(-0.4 (m_c - M_sun - 25)) L_sun).
         ell = 10.0 ** (-0.4 * (m_c - s.abs_mag_sun - 25.0))
@@ -410,7 +261,7 @@ def _chain(cal, s, g0, g1, *, mag, a_gal, k_corr, w50, axis_ratio, z, resolution
         out.update(log_v=log_v, log_mb=log_mb, ell=ell, gas=gas, beta=beta,
                    mu=mu + zero_point, abs_mag=m_c - mu - zero_point)
     else:
-        abs_mag = _relation(cal, logw_i, coeffs, quad) + scatter
+        abs_mag = cal.relation(logw_i, coeffs, quad) + scatter
         out.update(abs_mag=abs_mag, mu=m_c - abs_mag + zero_point)
     return out
 
@@ -446,14 +297,14 @@ def _analytic_mu_err(cal, s, g0, g1, c, a, have_res):
         dmu_dq = -f_star * dA_dq + dmu_dx * dx_dq
         gas_term = -2.5 * s.hi_mass_factor * s.hi_mass_coefficient / (c["beta"] * LN10) * a["hi_flux_err"]
         ml_term = -2.5 * c["ell"] / (c["beta"] * LN10) * s.mass_to_light_err
-        cal_var = 6.25 * _relation_variance(cal, c["log_v"], None)
+        cal_var = 6.25 * cal.relation_variance(c["log_v"])
         scatter = 2.5 * cal.scatter
     else:
         dmu_dmc = np.ones_like(x)
-        dmu_dx = -(dA_dx + _relation_slope(cal, x))
+        dmu_dx = -(dA_dx + cal.relation_slope(x))
         dmu_dq = -dA_dq + dmu_dx * dx_dq
         gas_term = ml_term = 0.0
-        cal_var = _relation_variance(cal, x, c["abs_mag"])
+        cal_var = cal.relation_variance(x)
         scatter = cal.scatter
     return uncertainty.quadrature(
         dmu_dmc * a["mag_err"], dmu_dmc * a["a_gal_err"], dmu_dmc * a["k_corr_err"],
@@ -473,19 +324,18 @@ def _monte_carlo_mu_err(cal, s, g0, g1, a, have_res, have_hi):
         values["mass_to_light"], sigmas["mass_to_light"] = float(s.mass_to_light), s.mass_to_light_err
     # Calibration terms are scalars: one draw per Monte Carlo realisation, shared by
     # the rows of the shard (each row's spread over draws is still its own error).
-    ncoef = cal.coefficients.size
-    for k in range(ncoef):
+    root = cal.covariance_root()
+    for k in range(root.shape[1]):
         values[f"cal_{k}"], sigmas[f"cal_{k}"] = 0.0, 1.0
     if cal.quadratic is not None:
         values["cal_quad"] = float(cal.quadratic["coefficient"])
         sigmas["cal_quad"] = float(cal.quadratic.get("error", 0.0))
     values["scatter"], sigmas["scatter"] = 0.0, cal.scatter
     values["zero_point"], sigmas["zero_point"] = 0.0, cal.zero_point_error
-    root = _matrix_sqrt(cal.covariance)
     fixed_res = a["resolution"] if have_res else None
 
     def mu_of(**kw):
-        unit = np.array([kw.pop(f"cal_{k}") for k in range(ncoef)])
+        unit = np.array([kw.pop(f"cal_{k}") for k in range(root.shape[1])])
         coeffs = cal.coefficients + root @ unit
         return _chain(cal, s, g0, g1, mag=kw["mag"], a_gal=kw["a_gal"], k_corr=kw["k_corr"],
                       w50=kw["w50"], axis_ratio=kw["axis_ratio"], z=a["z"], resolution=fixed_res,
@@ -576,11 +426,7 @@ def tully_fisher_distance(inputs: Mapping[str, np.ndarray], calibration: Calibra
     flags.set_where(f, out_of_range, Method.OUT_OF_RANGE)
     if s.allow_extrapolation:
         flags.set_where(f, out_of_range & np.isfinite(predictor), Method.EXTRAPOLATED)
-    if s.apply_galactic_extinction:
-        flags.set_where(f, flags.has(ext, Ext.NO_EBV | Ext.HIGH_EXTINCTION | Ext.OUTSIDE_MAP),
-                        Method.HIGH_EXTINCTION)
-    if s.apply_kcorrection:
-        flags.set_where(f, kcf != 0, Method.KCORR_PROBLEM)
+    f |= flags.inherited(ext, kcf, extinction=s.apply_galactic_extinction, kcorrection=s.apply_kcorrection)
 
     # ---- values, errors, distances
     blank = missing_row | (out_of_range & (not s.allow_extrapolation))
@@ -594,15 +440,7 @@ def tully_fisher_distance(inputs: Mapping[str, np.ndarray], calibration: Calibra
                                                                   have_res, have_hi), np.nan)
     else:
         mu_err_mc = np.full(n, np.nan)
-    d = distance.mpc_from_mu(mu)
-    d_err = distance.mpc_err_from_mu(d, mu_err)
-    applied = np.isfinite(d) & np.isfinite(mu_err) & s.malmquist
-    if s.malmquist:
-        factor = np.where(applied, distance.malmquist_factor(mu_err, s.malmquist_kind), 1.0)
-        d, d_err = d * factor, d_err * factor
     return {
         "tf_inclination_deg": c["incl"], "tf_w_z": c["w_z"], "tf_w_r": c["w_r"],
-        "tf_logw_i": c["logw_i"], "tf_a_int": c["a_int"], "tf_mag_corr": c["m_c"],
-        "tf_abs_mag": abs_mag, "tf_mu": mu, "tf_mu_err": mu_err, "tf_mu_err_mc": mu_err_mc,
-        "tf_d_mpc": d, "tf_d_err_mpc": d_err, "tf_malmquist_applied": applied, "tf_flags": f,
-    }
+        "tf_logw_i": c["logw_i"], "tf_a_int": c["a_int"], "tf_mag_corr": c["m_c"], "tf_abs_mag": abs_mag,
+    } | distance.finish("tf", mu, mu_err, mu_err_mc, f, s.malmquist, s.malmquist_kind)

@@ -11,6 +11,7 @@ from snakemake.exceptions import WorkflowError
 from galdist import config as gconfig
 from galdist import integrity, preflight
 from galdist import kcorrect as gkcorrect
+from galdist.methods import REGISTRY, plot_names, prefixes
 
 DEMO_CATALOG = "results/demo-input/corvid_reach_survey.parquet"
 
@@ -44,8 +45,6 @@ BENCH = f"{RUN}/benchmarks"
 SHARDS = f"{RUN}/shards"
 GRIDS = f"{RUN}/grids"
 EXTINCTION_MAPS = gconfig.extinction_map_files(config)
-SBF_CAL = CALIBRATIONS["sbf"].name if "sbf" in CALIBRATIONS else None
-TF_CAL = CALIBRATIONS["tully_fisher"].name if "tully_fisher" in CALIBRATIONS else None
 # Content, not modification times: the digest of every external input is a parameter of
 # the rules that read it, so a changed file re-runs them even with an older time stamp.
 _DIGEST_CACHE = f"{config['output_dir']}/.galdist-digests.json"
@@ -75,6 +74,12 @@ EXTINCTION_TABLE = (str(gconfig.extinction_table_file(config))
                     if config["extinction"]["coefficients"] == "table" else None)
 CALIBRATION_DIGESTS = {m: cal.sha256 for m, cal in CALIBRATIONS.items()}
 TABLE_DIGEST = content_digest([EXTINCTION_TABLE])
+
+
+# each per-shard stage's file of shard {shard}; a method's are keyed by its calibration's
+# name, so two calibrations never overwrite each other
+STAGE_SHARDS = {stage: f"{SHARDS}/{stage}/part-{{shard}}.parquet" for stage in ("extinction", "kcorrect", "redshift")}
+METHOD_SHARDS = {m: f"{SHARDS}/{m}/{CALIBRATIONS[m].name}/part-{{shard}}.parquet" for m in METHODS}
 
 
 def shard_path(wildcards):

@@ -1,20 +1,16 @@
 # Cross-check and product: statistics over all shards first (zero point, clipping),
 # then the streaming assembly of distances.parquet and summary.json, then the plots.
 
-METHOD_SHARDS = {
-    "tully_fisher": f"{SHARDS}/tully_fisher/{TF_CAL}/part-{{shard}}.parquet",
-    "sbf": f"{SHARDS}/sbf/{SBF_CAL}/part-{{shard}}.parquet",
-}
-STAGE_SHARDS = {
-    "extinction": f"{SHARDS}/extinction/part-{{shard}}.parquet",
-    "kcorrect": f"{SHARDS}/kcorrect/part-{{shard}}.parquet",
-    "redshift": f"{SHARDS}/redshift/part-{{shard}}.parquet",
-} | {m: METHOD_SHARDS[m] for m in METHODS}
+# every stage file the assembly joins to a shard, the methods' included
+JOINED_SHARDS = STAGE_SHARDS | METHOD_SHARDS
 # the plots follow the configured methods: a relation plot only for a method that ran,
-# one panel per method in the others, none without a method (galdist.plots.plot_names;
-# the plots script stops if the two lists ever disagree)
-RELATION_PLOTS = {"tully_fisher": "tf_relation", "sbf": "sbf_relation"}
-PLOTS = ["hubble_diagram", *(RELATION_PLOTS[m] for m in METHODS), "dmu_histograms", "vpec_sky"] if METHODS else []
+# one panel per method in the others, none without a method (galdist.methods.plot_names)
+PLOTS = plot_names(prefixes(METHODS))
+
+
+def caption(plot):
+    """The plot's caption file; a method's relation plot without its own has the generic one."""
+    return plot if (Path(workflow.basedir) / "workflow" / "report" / f"{plot}.rst").exists() else "relation"
 
 
 rule crosscheck_statistics:
@@ -26,6 +22,7 @@ rule crosscheck_statistics:
         f"{RUN}/crosscheck_statistics.json",
     params:
         crosscheck=config["crosscheck"],
+        min_cz=config["redshift"]["min_cz_kms"],
         methods=METHODS,
     log:
         f"{LOGS}/crosscheck_statistics.log",
@@ -42,7 +39,7 @@ rule assemble:
         statistics=rules.crosscheck_statistics.output[0],
         grid=rules.mu_grid.output[0],
         calibrations=list(CALIBRATION_FILES.values()),
-        **{stage: per_shard(pattern) for stage, pattern in STAGE_SHARDS.items()},
+        **{stage: per_shard(pattern) for stage, pattern in JOINED_SHARDS.items()},
     output:
         # update(): Snakemake keeps the old product until the new one replaces it (and puts
         # it back if the job fails), instead of deleting it when the job starts
@@ -51,6 +48,7 @@ rule assemble:
         plot_sample=update(f"{RUN}/plot_sample.parquet"),
     params:
         crosscheck=config["crosscheck"],
+        min_cz=config["redshift"]["min_cz_kms"],
         methods=METHODS,
         calibrations=CALIBRATION_FILES,
         content=CALIBRATION_DIGESTS,
@@ -68,14 +66,14 @@ rule plots:
         grid=rules.mu_grid.output[0],
     output:
         **{
-            name: report(f"{RUN}/plots/{name}.png", caption=f"../report/{name}.rst", category="Distances")
+            name: report(f"{RUN}/plots/{name}.png", caption=f"../report/{caption(name)}.rst", category="Distances")
             for name in PLOTS
         },
     params:
         methods=METHODS,
         calibrations=CALIBRATION_FILES,
         content=CALIBRATION_DIGESTS,
-        min_cz=config["crosscheck"]["min_cz_kms"],
+        min_cz=config["redshift"]["min_cz_kms"],
     log:
         f"{LOGS}/plots.log",
     benchmark:

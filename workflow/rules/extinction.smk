@@ -1,4 +1,5 @@
-# Galactic extinction: band coefficients once per configuration, then E(B-V) and A_<band> per shard.
+# Galactic extinction: band coefficients once per configuration, then E(B-V), A_<band> and
+# their errors per shard.
 
 
 rule extinction_coefficients:
@@ -27,6 +28,7 @@ rule extinction:
         f"{SHARDS}/extinction/part-{{shard}}.parquet",
     params:
         extinction=config["extinction"],
+        bands=BANDS,
         content=MAPS_DIGEST,
     log:
         f"{LOGS}/extinction/part-{{shard}}.log",

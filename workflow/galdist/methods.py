@@ -1,0 +1,322 @@
+"""The distance methods galdist knows: one ``MethodSpec`` each, in ``REGISTRY``.
+
+Everything that lists methods reads this registry and nothing else: the config and
+calibration schemas' enums, ingest's columns and their checks, the pre-flight checks,
+the one per-shard rule of ``workflow/rules/methods.smk`` and its script, the product's
+prefixes and flag columns, the cross-check, the plots, the SLURM profile (one rule for
+all methods) and the contract tests (``tests/test_methods.py``).
+
+Adding a method is four things: its module (``galdist/<name>.py``, with a distance
+function ``f(inputs: dict, calibration, settings) -> dict`` that returns the method's
+own columns followed by ``distance.finish``'s), its entry here, its section in
+``workflow/schemas/config.schema.yaml`` (the keys ``COMMON_KEYS`` and its own, each with
+a default), and its calibration files (``galdist/data/calibrations/<prefix>_*.yaml``,
+with any keys of its own under ``$defs/method_keys/<name>`` of the calibration schema).
+
+A spec holds declarations only; the method's module is imported when first used, so
+reading the registry costs nothing.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import importlib
+import re
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass
+
+from .columns import Column
+
+#: Keys every method's config section has: the generic machinery reads them.
+COMMON_KEYS = ("calibration", "mc_draws", "mc_seed", "mc_max_rows", "malmquist", "malmquist_kind",
+               "allow_extrapolation", "accept_passband_mismatch")
+
+#: Columns every method writes last (``galdist.distance.finish``), after its prefix, with units.
+COMMON_OUTPUTS = {"mu": "mag", "mu_err": "mag", "mu_err_mc": "mag", "d_mpc": "Mpc", "d_err_mpc": "Mpc",
+                  "malmquist_applied": "", "flags": ""}
+
+#: The per-shard stages whose files a method may read, in DAG order.
+STAGES = ("ingest", "extinction", "kcorrect", "redshift")
+
+
+@dataclass(frozen=True)
+class Input:
+    """One input of a distance function: the stage file and column it comes from (a
+    template of the method's band roles, e.g. ``A_{band}``), its unit, the value of a
+    typical galaxy (for the contract tests and as documentation), and its kind: a
+    ``value`` without which there is no distance, an ``error``, an ``optional`` value
+    whose absence skips a step (or serves only some calibration forms), or ``flags``."""
+
+    stage: str
+    column: str
+    unit: str
+    typical: float
+    kind: str = "value"
+
+
+def _err(stage: str, column: str, unit: str, typical: float) -> Input:
+    return Input(stage, column, unit, typical, "error")
+
+
+def _flags(stage: str, column: str) -> Input:
+    return Input(stage, column, "", 0, "flags")
+
+
+@dataclass(frozen=True)
+class RelationPlot:
+    """The calibration-relation plot of a method: product column ``y`` - mu_z against
+    ``x`` (both without the prefix), with the calibration's curve. ``xlabel`` may name
+    ``{colour}``, the calibration's colour bands joined by '-'."""
+
+    x: str
+    y: str
+    xlabel: str
+    title: str
+
+
+@dataclass(frozen=True)
+class MethodSpec:
+    """What the workflow, the checks, the product and the tests know about one method."""
+
+    name: str  # the config section and the entry of config `methods`
+    prefix: str  # of every column it writes
+    title: str  # for people: logs, plots
+    colour: str  # matplotlib colour of its points
+    module: str  # galdist.<module> holds the science
+    function: str  # the distance function in the module
+    settings: str  # its settings class (``galdist.settings.MethodSettings``-like: ``from_config``)
+    forms: tuple[str, ...]  # calibration forms it accepts
+    catalog_columns: tuple[Column, ...]  # canonical catalog columns, with bounds and ingest bit
+    bands: Mapping[str, str]  # band role -> config key naming it ("color_bands.0": first of a list)
+    inputs: Mapping[str, Input]  # distance-function input -> where it comes from
+    outputs: Mapping[str, str]  # its own columns (without prefix) -> unit, before COMMON_OUTPUTS
+    derive: Callable[[dict, dict, object], dict] = lambda section, bands, calibration: {}
+    setup_check: str | None = None  # module function (calibration, settings) raising ValueError
+    relation_plot: RelationPlot | None = None
+
+    # --- declarations ------------------------------------------------------------------
+    @property
+    def flags_column(self) -> str:
+        return f"{self.prefix}_flags"
+
+    def output_units(self) -> dict[str, str]:
+        """Every column the method writes, in order, with its unit ("" dimensionless)."""
+        own = {f"{self.prefix}_{k}": u for k, u in self.outputs.items()}
+        return own | {f"{self.prefix}_{k}": u for k, u in COMMON_OUTPUTS.items()}
+
+    def band_keys(self) -> list[str]:
+        """The config keys of the section that name band labels."""
+        return list(dict.fromkeys(key.split(".")[0] for key in self.bands.values()))
+
+    def band_labels(self, section: Mapping) -> dict[str, str]:
+        """Band role -> configured band label, from the method's config section."""
+        out = {}
+        for role, key in self.bands.items():
+            name, _, index = key.partition(".")
+            value = section[name]
+            out[role] = value[int(index)] if index else value
+        return out
+
+    def stage_columns(self, section: Mapping) -> dict[str, list[str]]:
+        """Stage -> the columns of its file the method reads."""
+        labels = self.band_labels(section)
+        out: dict[str, list[str]] = {}
+        for inp in self.inputs.values():
+            out.setdefault(inp.stage, []).append(inp.column.format(**labels))
+        return {stage: list(dict.fromkeys(out[stage])) for stage in STAGES if stage in out}
+
+    def catalog_band_columns(self, section: Mapping) -> dict[str, str]:
+        """Band magnitude columns the method reads from the catalog -> the config key
+        naming the band (these columns then become required)."""
+        labels = self.band_labels(section)
+        out = {}
+        for inp in self.inputs.values():
+            role = re.search(r"\{(\w+)\}", inp.column)
+            if inp.stage == "ingest" and role:
+                out[inp.column.format(**labels)] = f"{self.name}.{self.bands[role.group(1)].split('.')[0]}"
+        return out
+
+    # --- the science, imported on use ----------------------------------------------------
+    def _attr(self, name: str):
+        return getattr(importlib.import_module(f"galdist.{self.module}"), name)
+
+    def distance_function(self):
+        return self._attr(self.function)
+
+    def settings_class(self):
+        return self._attr(self.settings)
+
+    def settings_for(self, section: Mapping, bands: Mapping, calibration):
+        """The method's settings: its config section, validated by the schema, plus what
+        follows from the bands config (``derive``)."""
+        from .settings import WORKFLOW_KEYS
+
+        return self.settings_class().from_config(section, ignore=WORKFLOW_KEYS,
+                                                 **self.derive(section, bands, calibration))
+
+    def check(self, config: Mapping, calibration):
+        """Everything the method's jobs would refuse, raised now (ValueError): the
+        calibration's method and form, the settings, the module's own set-up check.
+        Returns the settings."""
+        where = f"calibration {calibration.name} ({calibration.path or 'in memory'})"
+        if calibration.method != self.name:
+            raise ValueError(f"{where} is a {calibration.method} calibration, not {self.name}")
+        if calibration.form not in self.forms:
+            raise ValueError(f"{where}: form {calibration.form!r} is not one {self.name} accepts "
+                             f"({', '.join(self.forms)})")
+        settings = self.settings_for(config[self.name], config["bands"], calibration)
+        if self.setup_check:
+            self._attr(self.setup_check)(calibration, settings)
+        return settings
+
+    def inputs_from(self, columns: Mapping, section: Mapping) -> dict:
+        """The distance function's inputs from the stage columns read for one shard."""
+        labels = self.band_labels(section)
+        return {name: columns[inp.column.format(**labels)] for name, inp in self.inputs.items()}
+
+    def distances(self, inputs: Mapping, calibration, settings, section: Mapping, bands: Mapping) -> dict:
+        """The method's columns for one shard: every row analytically, the Monte Carlo
+        on at most ``mc_max_rows`` measured rows, PASSBAND_OVERRIDE where config
+        accepted a passband mismatch."""
+        from . import passbands, uncertainty
+
+        fn = self.distance_function()
+        no_mc = dataclasses.replace(settings, mc_draws=0)
+        out = uncertainty.monte_carlo_on_subsample(
+            lambda rows, mc: fn(rows, calibration, settings if mc else no_mc),
+            inputs, f"{self.prefix}_mu", f"{self.prefix}_mu_err_mc", section["mc_max_rows"])
+        passbands.flag_override(out[self.flags_column], self.name, calibration, section, bands)
+        return out
+
+
+def shard_distances(method: str, files: Mapping[str, str], section: Mapping, bands: Mapping,
+                    calibration_path: str, out_path: str) -> int:
+    """One method's columns for one shard, written beside the shard (``io.write_stage_columns``,
+    stamped with the shard's fingerprint and the calibration's SHA-256). ``files``: stage ->
+    its file for this shard. Returns the number of rows."""
+    from . import calibration as gcal
+    from . import io
+
+    spec = REGISTRY[method]
+    cal = gcal.load_calibration(calibration_path)
+    settings = spec.settings_for(section, bands, cal)
+    wanted = spec.stage_columns(section)
+    others = {stage: files[stage] for stage in wanted if stage != "ingest"}
+    cols, fingerprint = io.read_shard(files["ingest"], wanted.get("ingest", []), others,
+                                      {stage: wanted[stage] for stage in others})
+    out = spec.distances(spec.inputs_from(cols, section), cal, settings, section, bands)
+    io.write_stage_columns(out, out_path, fingerprint, spec.output_units(),
+                           {"galdist.calibration.sha256": cal.sha256, "galdist.calibration.name": cal.name})
+    return len(out[spec.flags_column])
+
+
+def plot_names(method_prefixes) -> list[str]:
+    """The plots of a run whose methods have these prefixes: the Hubble diagram, the
+    relation plot of each method that has one, the dmu histograms and the sky map (a panel
+    per method); none when no method ran (every plot would be empty)."""
+    if not method_prefixes:
+        return []
+    relations = [f"{p}_relation" for p in method_prefixes if (s := by_prefix(p)) and s.relation_plot]
+    return ["hubble_diagram", *relations, "dmu_histograms", "vpec_sky"]
+
+
+def by_prefix(prefix: str) -> MethodSpec | None:
+    return next((s for s in REGISTRY.values() if s.prefix == prefix), None)
+
+
+def prefixes(methods=None) -> list[str]:
+    """Column prefixes of ``methods`` (names; default every registered method), in order."""
+    return [REGISTRY[m].prefix for m in (REGISTRY if methods is None else methods)]
+
+
+# ------------------------------------------------------------------------------ entries
+
+def _tf_derive(section, bands, calibration) -> dict:
+    """The magnitudes' system and AB - Vega offset, from the band of ``tully_fisher.band``."""
+    band = bands[section["band"]]
+    return {"input_system": band["system"], "ab_minus_vega": band.get("ab_minus_vega")}
+
+
+def _sbf_derive(section, bands, calibration) -> dict:
+    """System offsets of the fluctuation magnitude and of the colour onto the calibration's."""
+    from .photometry import color_system_offset, system_offset
+
+    band, (blue, red) = bands[section["band"]], (bands[b] for b in section["color_bands"])
+    return {"mag_offset": system_offset(band["system"], calibration.system, band.get("ab_minus_vega")),
+            "color_offset": color_system_offset(blue["system"], blue.get("ab_minus_vega"), red["system"],
+                                                red.get("ab_minus_vega"), calibration.system)}
+
+
+TULLY_FISHER = MethodSpec(
+    name="tully_fisher", prefix="tf", title="Tully-Fisher", colour="tab:blue",
+    module="tully_fisher", function="tully_fisher_distance", settings="TFSettings", setup_check="check_setup",
+    forms=("luminosity", "inverse", "baryonic"),
+    # bounds of a usable value (common practice unless a source is named; the flag texts in
+    # galdist.flags.Quality say the same)
+    catalog_columns=(
+        # 1 km/s: narrower than the thermal FWHM of cold (100 K) HI, 2.1 km/s (kinetic theory)
+        Column("w50", "km / s", "observed HI width at 50% of peak", (1.0, 2000.0), "WIDTH_INVALID"),
+        # an error wider than the widest line
+        Column("w50_err", "km / s", "error of w50", (0.0, 2000.0), "WIDTH_ERR_INVALID"),
+        # no observed disc is thinner than 0.01 (the flattest edge-on discs reach b/a ~ 0.05, from memory)
+        Column("axis_ratio", "", "optical b/a", (0.01, 1.0), "AXIS_RATIO_INVALID"),
+        Column("axis_ratio_err", "", "error of axis_ratio", (0.0, 1.0), "AXIS_RATIO_ERR_INVALID"),
+    ),
+    bands={"band": "band"},
+    inputs={
+        "mag": Input("ingest", "mag_{band}", "mag", 13.2), "mag_err": _err("ingest", "mag_{band}_err", "mag", 0.05),
+        "w50": Input("ingest", "w50", "km / s", 300.0), "w50_err": _err("ingest", "w50_err", "km / s", 6.0),
+        "axis_ratio": Input("ingest", "axis_ratio", "", 0.4),
+        "axis_ratio_err": _err("ingest", "axis_ratio_err", "", 0.015),
+        "z_helio": Input("ingest", "z_helio", "", 0.01),
+        "hi_flux": Input("ingest", "hi_flux", "Jy km / s", 5.0, "optional"),  # the baryonic form's gas mass
+        "w50_resolution": Input("ingest", "w50_resolution", "km / s", 10.0, "optional"),
+        "quality_flags": _flags("ingest", "quality_flags"),
+        "a_gal": Input("extinction", "A_{band}", "mag", 0.05),
+        "a_gal_err": _err("extinction", "A_{band}_err", "mag", 0.01),
+        "ext_flags": _flags("extinction", "ext_flags"),
+        "k_corr": Input("kcorrect", "K_{band}", "mag", 0.01),
+        "kcorr_flags": _flags("kcorrect", "kcorr_flags"),
+    },
+    outputs={"inclination_deg": "deg", "w_z": "km / s", "w_r": "km / s", "logw_i": "dex(km / s)",
+             "a_int": "mag", "mag_corr": "mag", "abs_mag": "mag"},
+    derive=_tf_derive,
+    relation_plot=RelationPlot("logw_i", "mag_corr", r"$\log_{10} W^i$ (W in km/s)", "Tully-Fisher relation"),
+)
+
+SBF = MethodSpec(
+    name="sbf", prefix="sbf", title="SBF", colour="tab:red",
+    module="sbf", function="sbf_distance", settings="SBFSettings", setup_check="check_setup",
+    forms=("colour_polynomial",),
+    catalog_columns=(
+        Column("sbf_mag", "mag", "fluctuation magnitude in the SBF calibration's band", (-10.0, 50.0),
+               "SBF_MAG_INVALID"),
+        Column("sbf_mag_err", "mag", "error of sbf_mag", (0.0, 10.0), "SBF_ERR_INVALID"),
+        Column("sbf_color", "mag", "the SBF calibration's colour, as observed", (-2.0, 5.0), "SBF_COLOR_INVALID"),
+        Column("sbf_color_err", "mag", "error of sbf_color", (0.0, 10.0), "SBF_ERR_INVALID"),
+    ),
+    bands={"band": "band", "blue": "color_bands.0", "red": "color_bands.1"},
+    inputs={
+        "sbf_mag": Input("ingest", "sbf_mag", "mag", 29.5), "sbf_mag_err": _err("ingest", "sbf_mag_err", "mag", 0.05),
+        "sbf_color": Input("ingest", "sbf_color", "mag", 1.2),
+        "sbf_color_err": _err("ingest", "sbf_color_err", "mag", 0.02),
+        "quality_flags": _flags("ingest", "quality_flags"),
+        "A_mag": Input("extinction", "A_{band}", "mag", 0.075),
+        "A_mag_err": _err("extinction", "A_{band}_err", "mag", 0.012),
+        "A_blue": Input("extinction", "A_{blue}", "mag", 0.137),
+        "A_blue_err": _err("extinction", "A_{blue}_err", "mag", 0.022),
+        "A_red": Input("extinction", "A_{red}", "mag", 0.075),
+        "A_red_err": _err("extinction", "A_{red}_err", "mag", 0.012),
+        "ext_flags": _flags("extinction", "ext_flags"),
+        "K_mag": Input("kcorrect", "K_{band}", "mag", 0.01), "K_blue": Input("kcorrect", "K_{blue}", "mag", 0.03),
+        "K_red": Input("kcorrect", "K_{red}", "mag", 0.01),
+        "kcorr_flags": _flags("kcorrect", "kcorr_flags"),
+    },
+    outputs={"color_0": "mag", "mag_0": "mag", "abs_mag": "mag"},
+    derive=_sbf_derive,
+    relation_plot=RelationPlot("color_0", "mag_0", "dereddened colour ({colour})$_0$ (mag)",
+                               r"SBF: $\bar M$ against colour"),
+)
+
+#: Every distance method, by config name, in the order of the product's columns.
+REGISTRY: dict[str, MethodSpec] = {spec.name: spec for spec in (TULLY_FISHER, SBF)}

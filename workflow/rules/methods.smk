@@ -1,0 +1,35 @@
+# Distance methods: one rule for every method of galdist.methods.REGISTRY that config
+# `methods` names, one job per shard and method. A method reads the stage files its
+# registry entry names; its outputs are keyed by the calibration's name, so a different
+# calibration never overwrites another's results, and a changed calibration file or
+# setting re-runs only that method's jobs. No rule when no method is configured.
+
+
+def method_inputs(wildcards):
+    """The ingest shard, the calibration file and the stage files the method reads."""
+    spec = REGISTRY[wildcards.method]
+    stages = spec.stage_columns(config[wildcards.method])
+    return {"ingest": shard_path(wildcards), "calibration": CALIBRATION_FILES[wildcards.method]} | {
+        stage: STAGE_SHARDS[stage].format(shard=wildcards.shard) for stage in stages if stage != "ingest"}
+
+
+if METHODS:
+
+    rule distance:
+        input:
+            unpack(method_inputs),
+        output:
+            f"{SHARDS}/{{method}}/{{calibration}}/part-{{shard}}.parquet",
+        wildcard_constraints:
+            method="|".join(METHODS),
+            calibration="|".join(CALIBRATIONS[m].name for m in METHODS),
+        params:
+            section=lambda w: config[w.method],
+            bands=config["bands"],
+            content=lambda w: CALIBRATION_DIGESTS[w.method],  # an edited calibration re-runs, whatever its time stamp
+        log:
+            f"{LOGS}/{{method}}/{{calibration}}/part-{{shard}}.log",
+        benchmark:
+            f"{BENCH}/{{method}}/{{calibration}}/part-{{shard}}.tsv"
+        script:
+            "../../scripts/rules/distance.py"
