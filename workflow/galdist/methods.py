@@ -248,7 +248,7 @@ def _sbf_derive(section, bands, calibration) -> dict:
 
 
 TULLY_FISHER = MethodSpec(
-    name="tully_fisher", prefix="tf", title="Tully-Fisher", colour="tab:blue",
+    name="tully_fisher", prefix="tf", title="Tully–Fisher", colour="tab:blue",
     module="tully_fisher", function="tully_fisher_distance", settings="TFSettings", setup_check="check_setup",
     forms=("luminosity", "inverse", "baryonic"),
     # bounds of a usable value (common practice unless a source is named; the flag texts in

@@ -16,8 +16,10 @@ from pathlib import Path
 
 from . import flags as F
 from .io import atomic_path
+from .methods import REGISTRY
 
-METHOD_NAMES = {"tf": "Tully–Fisher", "sbf": "SBF", "fp": "Fundamental Plane"}
+#: column prefix -> the method's title (its registry entry's)
+METHOD_NAMES = {spec.prefix: spec.title for spec in REGISTRY.values()}
 
 _CSS = """
 body { font: 15px/1.45 system-ui, sans-serif; margin: 0 auto; max-width: 1100px; padding: 1.5em; color: #222; }
