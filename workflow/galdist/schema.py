@@ -28,9 +28,18 @@ CALIBRATION_SCHEMA = SCHEMA_DIR / "calibration.schema.yaml"
 MAX_VALUES = 100_000
 
 
+#: yaml's C implementation of the safe loader where it is built (the same safe subset as
+#: yaml.safe_load, 8x faster: every method job parses the config schema at start-up)
+_SAFE_LOADER = getattr(yaml, "CSafeLoader", yaml.SafeLoader)
+
+
 @functools.cache
 def _read(path: Path) -> dict:
-    return yaml.safe_load(path.read_text(encoding="utf-8"))
+    loader = _SAFE_LOADER(path.read_text(encoding="utf-8"))
+    try:
+        return loader.get_single_data()
+    finally:
+        loader.dispose()
 
 
 @functools.cache
