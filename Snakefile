@@ -17,6 +17,7 @@ include: "workflow/rules/kcorrect.smk"
 include: "workflow/rules/redshift.smk"
 include: "workflow/rules/methods.smk"
 include: "workflow/rules/crosscheck.smk"
+include: "workflow/rules/report.smk"
 
 
 rule all:
@@ -24,4 +25,5 @@ rule all:
         rules.assemble.output.distances,
         rules.assemble.output.summary,
         rules.plots.output,
+        rules.run_report.output,
     default_target: True

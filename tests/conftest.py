@@ -131,3 +131,39 @@ def start_and_kill(cmd: list[str], cwd: Path, env: dict, when, log: Path, timeou
                 os.killpg(proc.pid, signal.SIGKILL)
                 proc.wait()
     return False, proc.returncode
+
+
+# --- a page in a real browser (the run report) --------------------------------------------
+
+def chromium_or_skip() -> str:
+    """Debian's headless Chromium, installed here when missing (as the SLURM test installs
+    its cluster); the test is skipped, with the reason, where that cannot be done."""
+    for name in ("chromium", "chromium-browser"):
+        if shutil.which(name):
+            return shutil.which(name)
+    env = {"DEBIAN_FRONTEND": "noninteractive", "PATH": "/usr/sbin:/usr/bin:/sbin:/bin"}
+    try:
+        subprocess.run(["apt-get", "update", "-qq"], check=True, capture_output=True, timeout=600, env=env)
+        subprocess.run(["apt-get", "install", "-y", "-qq", "chromium"], check=True, capture_output=True,
+                       timeout=900, env=env)
+    except (OSError, subprocess.SubprocessError) as exc:
+        pytest.skip(f"headless Chromium cannot be installed here: {exc}")
+    return shutil.which("chromium") or pytest.skip("chromium not found after installing it")
+
+
+def open_in_browser(page: Path, workdir: Path) -> tuple[str, Path]:
+    """Render ``page`` in headless Chromium: (the DOM text it ends with, a screenshot of
+    the first screen). A copy of the page gets a probe script (the page itself has none)
+    that writes 'IMAGES LOADED' or 'IMAGES BROKEN' once every image has decoded or not."""
+    chromium = chromium_or_skip()
+    probe = ("<p id='probe'></p><script>window.onload = () => { const ok = [...document.images].every("
+             "i => i.complete && i.naturalWidth > 0); document.getElementById('probe').textContent = "
+             "'IMAGES ' + (ok ? 'LOADED' : 'BROKEN'); };</script></body>")
+    copy = workdir / "probe.html"
+    copy.write_text(page.read_text(encoding="utf-8").replace("</body>", probe), encoding="utf-8")
+    args = [chromium, "--headless", "--no-sandbox", "--disable-gpu", "--virtual-time-budget=5000"]
+    dom = subprocess.run([*args, "--dump-dom", copy.as_uri()], capture_output=True, text=True, timeout=180)
+    shot = workdir / "first_screen.png"
+    subprocess.run([*args, "--window-size=1280,1000", f"--screenshot={shot}", page.as_uri()],
+                   capture_output=True, timeout=180, cwd=workdir)
+    return dom.stdout, shot

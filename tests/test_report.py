@@ -5,8 +5,6 @@ from __future__ import annotations
 
 import base64
 import re
-import shutil
-import subprocess
 
 import matplotlib
 
@@ -14,6 +12,7 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import pytest  # noqa: E402
 
+from conftest import open_in_browser  # noqa: E402
 from galdist import report  # noqa: E402
 
 SUMMARY = {
@@ -67,38 +66,8 @@ def test_single_method_says_there_is_no_comparison(tmp_path):
     assert "no comparison between methods" in html and "SBF" not in html.split("<h2>Cautions")[0].split("Key numbers")[1]
 
 
-def _chromium():
-    for name in ("chromium", "chromium-browser"):
-        if shutil.which(name):
-            return shutil.which(name)
-    try:  # Debian's package, installed like the SLURM test installs its cluster
-        subprocess.run(["apt-get", "update", "-qq"], check=True, capture_output=True, timeout=600)
-        subprocess.run(["apt-get", "install", "-y", "-qq", "chromium"], check=True, capture_output=True, timeout=900,
-                       env={"DEBIAN_FRONTEND": "noninteractive", "PATH": "/usr/sbin:/usr/bin:/sbin:/bin"})
-    except (OSError, subprocess.SubprocessError) as exc:
-        pytest.skip(f"headless Chromium cannot be installed here: {exc}")
-    return shutil.which("chromium") or pytest.skip("chromium not found after installing it")
-
-
 @pytest.mark.slow
 def test_opens_in_a_real_browser(page, tmp_path):
-    """Headless Chromium renders the page: the text it sees holds the key numbers and
-    every image decoded (naturalWidth > 0)."""
-    chromium = _chromium()
-    probe = page.read_text().replace(
-        "</body>", "<p id='probe'></p></body>")
-    # the page itself has no script; the check is added to a copy only
-    probe = probe.replace("<p id='probe'></p>", "<p id='probe'></p><script>window.onload = () => {"
-                          "const ok = [...document.images].every(i => i.complete && i.naturalWidth > 0);"
-                          "document.getElementById('probe').textContent = 'IMAGES ' + (ok ? 'LOADED' : 'BROKEN');};"
-                          "</script>")
-    copy = tmp_path / "probe.html"
-    copy.write_text(probe)
-    args = [chromium, "--headless", "--no-sandbox", "--disable-gpu", "--virtual-time-budget=5000"]
-    dom = subprocess.run([*args, "--dump-dom", copy.as_uri()], capture_output=True, text=True, timeout=120)
-    assert "IMAGES LOADED" in dom.stdout, dom.stderr[-2000:]
-    assert "69.8 ± 0.7" in dom.stdout
-    shot = tmp_path / "first_screen.png"
-    subprocess.run([*args, "--window-size=1280,1000", f"--screenshot={shot}", page.as_uri()], capture_output=True,
-                   timeout=120)
+    dom, shot = open_in_browser(page, tmp_path)
+    assert "IMAGES LOADED" in dom and "69.8 ± 0.7" in dom
     assert shot.stat().st_size > 10_000

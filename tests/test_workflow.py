@@ -16,7 +16,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from conftest import run_snakemake, small_catalog
+from conftest import open_in_browser, run_snakemake, small_catalog
 
 pytestmark = pytest.mark.slow
 DEMO = ("--config", "demo={n_galaxies: 1500}", "shard_rows=500")
@@ -117,6 +117,22 @@ def test_plots_and_report(demo_run):
     assert "hubble_diagram.png" in html and "Peculiar velocities" in html
 
 
+def test_run_report_opens_in_a_browser(demo_run, tmp_path):
+    """results/<run>/report.html, built by the workflow: the key numbers of summary.json
+    appear as text in what Chromium renders, every image decodes, the file stays small."""
+    run = demo_run / "results" / "demo"
+    page = run / "report.html"
+    assert page.stat().st_size < 3_000_000
+    stats = json.loads((run / "summary.json").read_text())["statistics"]["methods"]
+    dom, shot = open_in_browser(page, tmp_path)
+    assert "IMAGES LOADED" in dom
+    assert dom.count("<img") == len(list((run / "plots").glob("*.png")))
+    for s in stats.values():
+        assert f"<b>{s['n_used']}</b> galaxies used" in dom
+        assert f"implied H0 = {s['h0_implied']:.1f} ± {s['h0_implied_err']:.1f}" in dom
+    assert shot.stat().st_size > 10_000
+
+
 def _jobs(dry_run_output: str) -> dict:
     """Job counts per rule from the table a dry run prints."""
     counts = {}
@@ -138,7 +154,7 @@ def test_calibration_change_reruns_only_that_method(demo_run, method, override):
     assert result.returncode == 0, out[-2000:]
     jobs = _jobs(out)
     # one distance job per shard, all of them the changed method's
-    assert jobs == {"distance": 3, "crosscheck_statistics": 1, "assemble": 1, "plots": 1, "all": 1}, jobs
+    assert jobs == {"distance": 3, "crosscheck_statistics": 1, "assemble": 1, "plots": 1, "run_report": 1, "all": 1}, jobs
     planned = [line.split("output:")[1] for line in out.splitlines() if "output:" in line and "/shards/" in line]
     assert len(planned) == 3 and all(f"/shards/{method}/" in p for p in planned), planned
 

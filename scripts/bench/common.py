@@ -29,7 +29,7 @@ METHOD_RULE = "distance"  # the one rule of every method's jobs
 ROW_RULES = ("ingest", "extinction", "kcorrect", "redshift", *METHODS, "crosscheck_statistics", "assemble")
 PER_SHARD_RULES = ("extinction", "kcorrect", "redshift", *METHODS)
 STAGE_ORDER = ["ingest", "extinction_coefficients", "kcorrect_grid", "mu_grid", "extinction", "kcorrect",
-               "redshift", *METHODS, "crosscheck_statistics", "assemble", "plots"]
+               "redshift", *METHODS, "crosscheck_statistics", "assemble", "plots", "run_report"]
 
 TARGETS = {
     "marginal_factor": 4.0,  # (wall(N2) - wall(N1)) <= 4 (floor(N2) - floor(N1))

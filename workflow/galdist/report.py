@@ -145,6 +145,16 @@ a positive offset means larger distances, hence a smaller implied H0.</p>
 """
 
 
+def read_provenance(product_path: str | Path) -> dict:
+    """The provenance the assembly wrote into the product's schema metadata."""
+    import json
+
+    import pyarrow.parquet as pq
+
+    meta = pq.read_schema(product_path).metadata or {}
+    return json.loads(meta.get(b"galdist.provenance", b"{}"))
+
+
 def caption_text(rst_path: str | Path) -> str:
     """A report caption file (reStructuredText) as plain text."""
     text = Path(rst_path).read_text(encoding="utf-8")

@@ -1,0 +1,20 @@
+# The run report: one static, self-contained HTML page (galdist.report), built at the end of
+# every run from summary.json, the product's provenance and the plots with their captions.
+
+
+rule run_report:
+    input:
+        summary=rules.assemble.output.summary,
+        distances=rules.assemble.output.distances,
+        plots=[f"{RUN}/plots/{name}.png" for name in PLOTS],
+    output:
+        f"{RUN}/report.html",
+    params:
+        run=config["run"],
+        captions=[f"{workflow.basedir}/workflow/report/{caption(name)}.rst" for name in PLOTS],
+    log:
+        f"{LOGS}/run_report.log",
+    benchmark:
+        f"{BENCH}/run_report.tsv"
+    script:
+        "../../scripts/rules/run_report.py"
