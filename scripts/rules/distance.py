@@ -6,6 +6,6 @@ from galdist.logs import logged
 method = snakemake.wildcards.method
 with logged(snakemake.log[0], f"{methods.REGISTRY[method].title}, shard {snakemake.wildcards.shard}") as log:
     files = {k: v for k, v in snakemake.input.items() if k != "calibration"}
-    rows = methods.shard_distances(method, files, snakemake.params.section, snakemake.params.bands,
-                                   snakemake.input.calibration, snakemake.output[0])
+    rows = methods.shard_distances(method, files, snakemake.params.method_config, snakemake.input.calibration,
+                                   snakemake.output[0])
     log.info("%d rows", rows)

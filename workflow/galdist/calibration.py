@@ -165,7 +165,9 @@ def load_calibration(spec: str | Path) -> Calibration:
         check_size(data, f"calibration file {path}")
     except ConfigError as exc:
         _fail(path, str(exc).split(": ", 1)[1])
-    errors = sorted(jsonschema.Draft202012Validator(calibration_schema()).iter_errors(data), key=lambda e: list(e.path))
+    # a key no method claims is reported last: a missing or wrong `method` is the cause then
+    errors = sorted(jsonschema.Draft202012Validator(calibration_schema()).iter_errors(data),
+                    key=lambda e: (e.validator == "unevaluatedProperties", list(e.path)))
     if errors:
         e = errors[0]
         key = ".".join(str(p) for p in e.path) or "(top level)"

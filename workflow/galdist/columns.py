@@ -20,6 +20,9 @@ class Column:
     #: ``flags.Quality`` bit ingest sets outside them (METHOD_INPUT_INVALID if None)
     valid: tuple[float, float] | None = None
     quality: str | None = None
+    #: False: a method's column the catalog may lack (read as missing), e.g. one of two
+    #: alternatives or an optional correlation
+    required: bool = True
 
     @property
     def is_text(self) -> bool:
@@ -72,7 +75,7 @@ def required_columns(bands: list[str], methods: list[str], extra=()) -> list[Col
     """Columns the catalog must have: the base ones, the methods' inputs, and ``extra``
     (optional or band columns that the configured stages make required). A band's
     magnitudes are required only where a stage uses them (``config.extra_required_columns``)."""
-    cols = _unique(BASE + [c for m in methods for c in method_columns(m)])
+    cols = _unique(BASE + [c for m in methods for c in method_columns(m) if c.required])
     pool = {c.name: c for c in OPTIONAL + [bc for b in bands for bc in band_columns(b)]}
     return cols + [pool[name] for name in extra if pool[name] not in cols]
 

@@ -344,9 +344,10 @@ def quality(cols: dict[str, np.ndarray], bands: list[str], present: set[str], me
         for method in methods:  # each method's inputs, as its registry entry bounds them
             group = method_columns(method)
             seen = _observed(cols, [c.name for c in group])
-            for c in group:
+            for c in group:  # an optional column's gaps are not a problem, only its impossible values
                 v, (lo, hi) = cols[c.name], c.valid or (-np.inf, np.inf)
-                _flag_invalid(v, (v < lo) | (v > hi), q, Q[c.quality or "METHOD_INPUT_INVALID"], seen)
+                _flag_invalid(v, (v < lo) | (v > hi), q, Q[c.quality or "METHOD_INPUT_INVALID"],
+                              seen if c.required else ~np.isnan(v))
         for name, err in (("ebv", "ebv_err"),):
             if name in present:
                 seen = _observed(cols, [name] + ([err] if err in present else []))

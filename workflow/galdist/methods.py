@@ -90,8 +90,9 @@ class MethodSpec:
     bands: Mapping[str, str]  # band role -> config key naming it ("color_bands.0": first of a list)
     inputs: Mapping[str, Input]  # distance-function input -> where it comes from
     outputs: Mapping[str, str]  # its own columns (without prefix) -> unit, before COMMON_OUTPUTS
-    derive: Callable[[dict, dict, object], dict] = lambda section, bands, calibration: {}
-    setup_check: str | None = None  # module function (calibration, settings) raising ValueError
+    derive: Callable[[dict, object], dict] = lambda config, calibration: {}  # from ``used_config``
+    uses: tuple[str, ...] = ()  # config sections besides its own and ``bands`` its settings derive from
+    setup_check: str | Callable | None = None  # (calibration, settings) -> raise ValueError; str: in the module
     relation_plot: RelationPlot | None = None
 
     # --- declarations ------------------------------------------------------------------
@@ -146,13 +147,18 @@ class MethodSpec:
     def settings_class(self):
         return self._attr(self.settings)
 
-    def settings_for(self, section: Mapping, bands: Mapping, calibration):
+    def used_config(self, config: Mapping) -> dict:
+        """The part of the configuration the method's jobs read: its section, the bands,
+        and the sections in ``uses`` (a change elsewhere does not re-run them)."""
+        return {key: config[key] for key in (self.name, "bands", *self.uses)}
+
+    def settings_for(self, config: Mapping, calibration):
         """The method's settings: its config section, validated by the schema, plus what
-        follows from the bands config (``derive``)."""
+        follows from the rest of ``config`` (``derive``)."""
         from .settings import WORKFLOW_KEYS
 
-        return self.settings_class().from_config(section, ignore=WORKFLOW_KEYS,
-                                                 **self.derive(section, bands, calibration))
+        return self.settings_class().from_config(config[self.name], ignore=WORKFLOW_KEYS,
+                                                 **self.derive(config, calibration))
 
     def check(self, config: Mapping, calibration):
         """Everything the method's jobs would refuse, raised now (ValueError): the
@@ -164,9 +170,10 @@ class MethodSpec:
         if calibration.form not in self.forms:
             raise ValueError(f"{where}: form {calibration.form!r} is not one {self.name} accepts "
                              f"({', '.join(self.forms)})")
-        settings = self.settings_for(config[self.name], config["bands"], calibration)
+        settings = self.settings_for(config, calibration)
         if self.setup_check:
-            self._attr(self.setup_check)(calibration, settings)
+            hook = self._attr(self.setup_check) if isinstance(self.setup_check, str) else self.setup_check
+            hook(calibration, settings)
         return settings
 
     def inputs_from(self, columns: Mapping, section: Mapping) -> dict:
@@ -174,7 +181,7 @@ class MethodSpec:
         labels = self.band_labels(section)
         return {name: columns[inp.column.format(**labels)] for name, inp in self.inputs.items()}
 
-    def distances(self, inputs: Mapping, calibration, settings, section: Mapping, bands: Mapping) -> dict:
+    def distances(self, inputs: Mapping, calibration, settings, config: Mapping) -> dict:
         """The method's columns for one shard: every row analytically, the Monte Carlo
         on at most ``mc_max_rows`` measured rows, PASSBAND_OVERRIDE where config
         accepted a passband mismatch."""
@@ -184,27 +191,29 @@ class MethodSpec:
         no_mc = dataclasses.replace(settings, mc_draws=0)
         out = uncertainty.monte_carlo_on_subsample(
             lambda rows, mc: fn(rows, calibration, settings if mc else no_mc),
-            inputs, f"{self.prefix}_mu", f"{self.prefix}_mu_err_mc", section["mc_max_rows"])
-        passbands.flag_override(out[self.flags_column], self.name, calibration, section, bands)
+            inputs, f"{self.prefix}_mu", f"{self.prefix}_mu_err_mc", config[self.name]["mc_max_rows"])
+        passbands.flag_override(out[self.flags_column], self.name, calibration, config[self.name], config["bands"])
         return out
 
 
-def shard_distances(method: str, files: Mapping[str, str], section: Mapping, bands: Mapping,
-                    calibration_path: str, out_path: str) -> int:
+def shard_distances(method: str, files: Mapping[str, str], config: Mapping, calibration_path: str,
+                    out_path: str) -> int:
     """One method's columns for one shard, written beside the shard (``io.write_stage_columns``,
     stamped with the shard's fingerprint and the calibration's SHA-256). ``files``: stage ->
-    its file for this shard. Returns the number of rows."""
+    its file for this shard; ``config``: at least the method's ``used_config``. Returns the
+    number of rows."""
     from . import calibration as gcal
     from . import io
 
     spec = REGISTRY[method]
     cal = gcal.load_calibration(calibration_path)
-    settings = spec.settings_for(section, bands, cal)
+    section = config[method]
+    settings = spec.settings_for(config, cal)
     wanted = spec.stage_columns(section)
     others = {stage: files[stage] for stage in wanted if stage != "ingest"}
     cols, fingerprint = io.read_shard(files["ingest"], wanted.get("ingest", []), others,
                                       {stage: wanted[stage] for stage in others})
-    out = spec.distances(spec.inputs_from(cols, section), cal, settings, section, bands)
+    out = spec.distances(spec.inputs_from(cols, section), cal, settings, config)
     io.write_stage_columns(out, out_path, fingerprint, spec.output_units(),
                            {"galdist.calibration.sha256": cal.sha256, "galdist.calibration.name": cal.name})
     return len(out[spec.flags_column])
@@ -231,16 +240,17 @@ def prefixes(methods=None) -> list[str]:
 
 # ------------------------------------------------------------------------------ entries
 
-def _tf_derive(section, bands, calibration) -> dict:
+def _tf_derive(config, calibration) -> dict:
     """The magnitudes' system and AB - Vega offset, from the band of ``tully_fisher.band``."""
-    band = bands[section["band"]]
+    band = config["bands"][config["tully_fisher"]["band"]]
     return {"input_system": band["system"], "ab_minus_vega": band.get("ab_minus_vega")}
 
 
-def _sbf_derive(section, bands, calibration) -> dict:
+def _sbf_derive(config, calibration) -> dict:
     """System offsets of the fluctuation magnitude and of the colour onto the calibration's."""
     from .photometry import color_system_offset, system_offset
 
+    section, bands = config["sbf"], config["bands"]
     band, (blue, red) = bands[section["band"]], (bands[b] for b in section["color_bands"])
     return {"mag_offset": system_offset(band["system"], calibration.system, band.get("ab_minus_vega")),
             "color_offset": color_system_offset(blue["system"], blue.get("ab_minus_vega"), red["system"],
@@ -318,5 +328,86 @@ SBF = MethodSpec(
                                r"SBF: $\bar M$ against colour"),
 )
 
+def _fp_derive(config, calibration) -> dict:
+    """The run's H0 (the calibration's sizes are rescaled to it) and the system offset of
+    <mu_e> and m onto the calibration's."""
+    from .photometry import system_offset
+
+    cosmology = config["redshift"]["cosmology"]
+    if cosmology["name"] is None:
+        h0 = float(cosmology["H0"])
+    else:
+        from .redshift import make_cosmology
+
+        h0 = float(make_cosmology(cosmology["name"]).H0.value)
+    band = config["bands"][config["fp"]["band"]]
+    return {"hubble_constant": h0,
+            "mag_offset": system_offset(band["system"], calibration.system, band.get("ab_minus_vega"))}
+
+
+def _fp_setup(calibration, settings) -> None:
+    """The calibration's plane terms must be complete (``fp.check_calibration``)."""
+    from .fp import check_calibration
+
+    check_calibration(calibration)
+
+
+def _optional(name, unit, meaning, valid):
+    return Column(name, unit, meaning, valid, required=False)
+
+
+FUNDAMENTAL_PLANE = MethodSpec(
+    name="fp", prefix="fp", title="Fundamental Plane", colour="tab:green",
+    module="fp", function="fp_distance", settings="FPSettings", setup_check=_fp_setup,
+    forms=("plane",),
+    # bounds as galdist.fp.PHYSICAL_BOUNDS (generous: impossible, not merely uncalibrated)
+    catalog_columns=(
+        Column("fp_sigma", "km / s", "central velocity dispersion in the spectroscopic aperture", (0.0, 1500.0)),
+        Column("fp_sigma_err", "km / s", "error of fp_sigma", (0.0, 1500.0)),
+        Column("fp_aperture_arcsec", "arcsec", "radius of the circular spectroscopic aperture", (0.0, 600.0)),
+        Column("fp_re_arcsec", "arcsec", "effective (half-light) radius, angular", (0.0, 3600.0)),
+        Column("fp_re_err", "arcsec", "error of fp_re_arcsec", (0.0, 3600.0)),
+        # <mu_e> or, where it is missing, the total magnitude: either column may be absent
+        _optional("fp_mu_e", "mag / arcsec2", "mean surface brightness within R_e, observed", (5.0, 35.0)),
+        _optional("fp_mu_e_err", "mag / arcsec2", "error of fp_mu_e", (0.0, 10.0)),
+        _optional("fp_mag", "mag", "total magnitude in the FP band, observed (where fp_mu_e is missing)",
+                  (-10.0, 40.0)),
+        _optional("fp_mag_err", "mag", "error of fp_mag", (0.0, 10.0)),
+        _optional("fp_re_mu_corr", "", "correlation of the errors of fp_re_arcsec and fp_mu_e", (-1.0, 1.0)),
+        _optional("fp_re_mag_corr", "", "correlation of the errors of fp_re_arcsec and fp_mag", (-1.0, 1.0)),
+        _optional("fp_sigma_re_corr", "", "correlation of the errors of fp_sigma and fp_re_arcsec", (-1.0, 1.0)),
+        _optional("fp_sigma_mu_corr", "", "correlation of the errors of fp_sigma and fp_mu_e", (-1.0, 1.0)),
+    ),
+    bands={"band": "band"},
+    inputs={
+        "fp_sigma": Input("ingest", "fp_sigma", "km / s", 200.0),
+        "fp_sigma_err": _err("ingest", "fp_sigma_err", "km / s", 8.0),
+        "fp_aperture_arcsec": Input("ingest", "fp_aperture_arcsec", "arcsec", 3.35),
+        "fp_re_arcsec": Input("ingest", "fp_re_arcsec", "arcsec", 5.0),
+        "fp_re_err": _err("ingest", "fp_re_err", "arcsec", 0.3),
+        "fp_mu_e": Input("ingest", "fp_mu_e", "mag / arcsec2", 17.5, "optional"),  # or fp_mag
+        "fp_mu_e_err": _err("ingest", "fp_mu_e_err", "mag / arcsec2", 0.05),
+        "fp_mag": Input("ingest", "fp_mag", "mag", float("nan"), "optional"),
+        "fp_mag_err": _err("ingest", "fp_mag_err", "mag", float("nan")),
+        **{c: Input("ingest", c, "", 0.0, "optional")
+           for c in ("fp_re_mu_corr", "fp_re_mag_corr", "fp_sigma_re_corr", "fp_sigma_mu_corr")},
+        "z_helio": Input("ingest", "z_helio", "", 0.03),
+        "quality_flags": _flags("ingest", "quality_flags"),
+        "a_gal": Input("extinction", "A_{band}", "mag", 0.02),
+        "a_gal_err": _err("extinction", "A_{band}_err", "mag", 0.005),
+        "ext_flags": _flags("extinction", "ext_flags"),
+        "k_corr": Input("kcorrect", "K_{band}", "mag", 0.03),
+        "k_corr_err": _err("kcorrect", "K_{band}_err", "mag", 0.01),
+        "kcorr_flags": _flags("kcorrect", "kcorr_flags"),
+        # eta needs the redshift distance (and the gaussian estimator both)
+        "z_cmb": Input("redshift", "z_cmb", "", 0.03, "optional"),
+        "mu_z": Input("redshift", "mu_z", "mag", 35.6, "optional"),
+    },
+    outputs={"sigma_0": "km / s", "mu_e_0": "mag / arcsec2", "log_sigma_0": "dex(km / s)",
+             "log_ie": "dex(Lsun / pc2)", "log_re_z": "dex(kpc)", "log_re_pred": "dex(kpc)", "eta": "dex",
+             "eta_err": "dex", "eta_post_std": "dex", "eta_post_mode": "dex"},
+    derive=_fp_derive, uses=("redshift",),
+)
+
 #: Every distance method, by config name, in the order of the product's columns.
-REGISTRY: dict[str, MethodSpec] = {spec.name: spec for spec in (TULLY_FISHER, SBF)}
+REGISTRY: dict[str, MethodSpec] = {spec.name: spec for spec in (TULLY_FISHER, SBF, FUNDAMENTAL_PLANE)}

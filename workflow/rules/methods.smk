@@ -24,8 +24,7 @@ if METHODS:
             method="|".join(METHODS),
             calibration="|".join(CALIBRATIONS[m].name for m in METHODS),
         params:
-            section=lambda w: config[w.method],
-            bands=config["bands"],
+            method_config=lambda w: REGISTRY[w.method].used_config(config),  # its section, the bands, what it uses
             content=lambda w: CALIBRATION_DIGESTS[w.method],  # an edited calibration re-runs, whatever its time stamp
         log:
             f"{LOGS}/{{method}}/{{calibration}}/part-{{shard}}.log",
