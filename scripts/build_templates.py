@@ -34,7 +34,7 @@ Recipe (documented in workflow/galdist/data/templates/README.md):
 4. The continuum (stars + nebular continuum) is trimmed to the rest wavelengths K
    needs, rebinned flux-conservingly onto a log-uniform grid and rounded; the lines
    are kept as a list (wavelength, luminosity per template) in the file's metadata
-   and added back exactly by ``galdist.kcorrect.load_templates``. The K error of the
+   and added back exactly by ``galdist.kcorr.load_templates``. The K error of the
    compact file against the full-resolution spectra is measured and stored.
 
 The library is a set of tracks (metallicity x dust), each the same sequence of
@@ -391,7 +391,7 @@ def main(argv=None) -> int:
     # --- checks on the spectra as galdist will read them (continuum + lines)
     sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "workflow"))
     from galdist.filters import load_filter
-    from galdist.kcorrect import add_emission_lines, k_correction, model_colour_ab
+    from galdist.kcorr import add_emission_lines, k_correction, model_colour_ab
 
     pad = (wave > 0.9 * args.wave_min) & (wave < 1.1 * args.wave_max)
     with_lines = add_emission_lines(centres, compact, line_wave, lum)
@@ -464,7 +464,7 @@ def main(argv=None) -> int:
                         "nebular continuum and lines x 10^(-0.4 k E_s / 0.44) (their eq. 3); track level = E_s(B-V)"),
         "resampling": f"continuum: flux-conserving bin averages on a log-uniform grid, lambda/dlambda = "
                       f"{args.resolution:g}, {args.wave_min:g}-{args.wave_max:g} A, {args.digits} significant "
-                      "figures; lines: emission_lines (added by galdist.kcorrect.load_templates)",
+                      "figures; lines: emission_lines (added by galdist.kcorr.load_templates)",
         "emission_lines": {
             "unit": "L_sun per M_sun of stars formed (after dust)",
             "wavelength": [float(w) for w in line_wave],

@@ -2,7 +2,7 @@
 
 - init reads a CSV, a FITS file and a Parquet directory whose columns have foreign
   names and units (cz as 'vhel' in km/s, RA in hours or radians, widths in m/s, b/a in
-  per cent, 'Imag', 'KMAG', 'objname', ...) and writes a commented config that
+  per cent, 'Imag', 'KMAG', 'galaxy_name', ...) and writes a commented config that
   ``galdist check`` accepts; a catalog no shipped calibration fits gets a TODO that
   check refuses; a log width is never taken for w50.
 - run works from a folder outside the checkout, puts every input row in
@@ -52,7 +52,7 @@ def write_csv(folder: Path) -> Path:
     """cz in km/s as 'vhel', RA in hours, widths in m/s, Cousins magnitudes 'Imag'/'Vmag', SBF, E(B-V)."""
     c = small_catalog(N_ROWS, seed=11)
     df = pd.DataFrame({
-        "objname": c["galaxy_id"], "RAJ2000": c["ra"] / 15.0, "DEJ2000": c["dec"],
+        "galaxy_name": c["galaxy_id"], "RAJ2000": c["ra"] / 15.0, "DEJ2000": c["dec"],
         "vhel": c["z_helio"] * C_KMS, "e_vhel": c["z_helio_err"] * C_KMS,
         "W50": c["w50"] * 1000.0, "e_W50": c["w50_err"] * 1000.0, "logW": np.log10(c["w50"]),
         "ba": c["axis_ratio"], "e_ba": c["axis_ratio_err"],
@@ -98,7 +98,7 @@ def write_parquet_dir(folder: Path) -> Path:
 # expected proposals: columns, units, methods, calibrations
 EXPECTED = {
     "csv": (write_csv,
-            {"galaxy_id": "objname", "ra": "RAJ2000", "z_helio": "vhel", "z_helio_err": "e_vhel", "w50": "W50",
+            {"galaxy_id": "galaxy_name", "ra": "RAJ2000", "z_helio": "vhel", "z_helio_err": "e_vhel", "w50": "W50",
              "w50_err": "e_W50", "axis_ratio": "ba", "mag_I": "Imag", "mag_V_err": "e_Vmag", "sbf_mag": "mbar",
              "sbf_color": "V-I", "sbf_color_err": "e_V-I", "ebv": "E(B-V)", "ebv_err": "e_E(B-V)"},
             {"z_helio": "km/s", "z_helio_err": "km/s", "ra": "hourangle", "w50": "m/s", "w50_err": "m/s"},
@@ -154,7 +154,7 @@ def test_init_details_of_the_csv_proposal(tmp_path, monkeypatch):
     assert cfg["catalog"] == {"paths": ["survey.csv"], "format": "csv"}
     assert cfg["bands"] == {"V": {"filter": "bessell-V", "system": "Vega", "ab_minus_vega": 0.02},
                             "I": {"filter": "bessell-I", "system": "Vega", "ab_minus_vega": 0.45}}
-    assert cfg["kcorrect"]["colour_pair"] == ["V", "I"]
+    assert cfg["kcorr"]["colour_pair"] == ["V", "I"]
     assert cfg["sbf"]["color_bands"] == ["V", "I"] and cfg["sbf"]["band"] == "I"
     assert "logW" not in cfg["columns"].values()
     assert "logW: a logarithm" in text
@@ -196,11 +196,11 @@ def test_init_takes_a_w20_width_and_says_so(tmp_path):
     assert p.columns["w50"].value == "W20" and p.columns["w50_err"].value == "e_W20"
     cfg = yaml.safe_load(propose.render(p))
     assert cfg["tully_fisher"] == {"calibration": "tf_ks_masters_2008", "band": "Ks", "width_definition": "w20"}
-    assert cfg["kcorrect"]["colour_pair"] is None  # one band: no colour
+    assert cfg["kcorr"]["colour_pair"] is None  # one band: no colour
 
 
 @pytest.mark.parametrize("name, role", [
-    ("objname", "galaxy_id"), ("PGC", "galaxy_id"), ("_RAJ2000", "ra"), ("DEJ2000", "dec"), ("decl", "dec"),
+    ("PGC", "galaxy_id"), ("_RAJ2000", "ra"), ("DEJ2000", "dec"), ("decl", "dec"),
     ("vhel", "z_helio"), ("V_helio", "z_helio"), ("cz", "z_helio"), ("W50", "w50"), ("wHI", "w50"),
     ("b/a", "axis_ratio"), ("gmag", "mag_g"), ("mag_g", "mag_g"), ("g_mag", "mag_g"), ("Imag", "mag_I"),
     ("imag", "mag_i"), ("Ks", "mag_Ks"), ("kmag", "mag_Ks"), ("Kmag", "mag_Ks"), ("m_bar", "sbf_mag"),
@@ -313,7 +313,7 @@ def test_run_puts_every_row_in_the_product(clean):
     run = folder / "galdist-results" / RUN
     table = pq.read_table(run / "distances.parquet", columns=["galaxy_id"])
     source = pd.read_csv(folder / "survey.csv")
-    assert table.column("galaxy_id").to_pylist() == source["objname"].tolist()
+    assert table.column("galaxy_id").to_pylist() == source["galaxy_name"].tolist()
     assert not (REPO / "galdist-results" / RUN).exists()
     out = result.stdout
     assert "[ingest] done" in out and "[distance] 6/6 jobs" in out and "[assemble] done" in out

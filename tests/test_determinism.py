@@ -354,7 +354,7 @@ def test_calibration_paths_resolve_against_the_working_directory(tmp_path, monke
     conf = gconfig.validate(gconfig.load(REPO / "config" / "config.yaml"))
     conf["methods"] = ["sbf"]
     conf["sbf"]["calibration"] = "cals/mine.yaml"
-    conf["kcorrect"]["colour_pair"] = ["V", "I"]
+    conf["kcorr"]["colour_pair"] = ["V", "I"]
     cals = gconfig.check_stages(conf)
     assert Path(cals["sbf"].path) == Path("cals/mine.yaml")
     conf["sbf"]["calibration"] = "$(touch PWNED).yaml"

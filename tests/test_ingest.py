@@ -35,12 +35,12 @@ def run_ingest(tmp_path, paths, fmt="auto", mapping=None, units=None, shard_rows
 
 def test_mapping_and_units(tmp_path):
     cols = small_catalog(10)
-    renamed = {("objname" if k == "galaxy_id" else "CZ" if k == "z_helio" else "W50_HI" if k == "w50" else k): v
+    renamed = {("survey_label" if k == "galaxy_id" else "CZ" if k == "z_helio" else "W50_HI" if k == "w50" else k): v
                for k, v in cols.items()}
     renamed["CZ"] = cols["z_helio"] * 299792.458  # a velocity column, km/s
     renamed["ra"] = np.radians(cols["ra"])
     path = write_parquet(renamed, tmp_path / "cat.parquet")
-    table, _ = run_ingest(tmp_path, [path], mapping={"galaxy_id": "objname", "z_helio": "CZ", "w50": "W50_HI"},
+    table, _ = run_ingest(tmp_path, [path], mapping={"galaxy_id": "survey_label", "z_helio": "CZ", "w50": "W50_HI"},
                           units={"z_helio": "km/s", "ra": "rad"})
     assert table.column("galaxy_id").to_pylist() == list(cols["galaxy_id"])
     np.testing.assert_allclose(table.column("z_helio").to_numpy(), cols["z_helio"], rtol=1e-12)

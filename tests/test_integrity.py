@@ -132,7 +132,7 @@ def test_stage_file_from_a_shard_with_other_redshifts_is_refused(tmp_path):
 def test_every_stale_file_is_named_at_once(tmp_path):
     old, new = _shard_pair(tmp_path), _shard_pair(tmp_path, 1.1)
     stages = {}
-    for name in ("extinction", "kcorrect"):
+    for name in ("extinction", "kcorr"):
         stages[name] = tmp_path / f"{name}.parquet"
         io.write_stage_columns({"x": np.zeros(30)}, stages[name], io.read_fingerprint(old))
     with pytest.raises(StaleInputError, match="2 file") as err:
@@ -206,13 +206,13 @@ def test_run_names_are_restricted(run):
 
 @pytest.mark.parametrize("user, expect", [
     ({"tully_fisher": {"width_definition": "w20"}}, "width_definition"),
-    ({"kcorrect": {"default_template": "exp_tau5gry"}}, "kcorrect.default_template"),
+    ({"kcorr": {"default_template": "exp_tau5gry"}}, "kcorr.default_template"),
     ({"redshift": {"cosmology": {"name": "Planck99"}}}, "redshift.cosmology.name"),
     ({"extinction": {"coefficients": "table", "table_keys": {"V": "landolt-V", "I": "landolt-Q", "Ks": "ukirt-K"}}},
      "landolt-Q"),
     ({"extinction": {"r_v": -3.1}}, "extinction.r_v"),
     ({"extinction": {"law": "G23", "r_v": 2.1}}, "extinction.r_v"),
-    ({"kcorrect": {"dz": 0.0007}}, "kcorrect.dz"),
+    ({"kcorr": {"dz": 0.0007}}, "kcorr.dz"),
     ({"redshift": {"grid_z_max": 0.5}}, "redshift.grid_z_max"),
     ({"tully_fisher": {"band": "V"}}, "tully_fisher.band"),
 ])

@@ -84,7 +84,7 @@ def test_units_on_every_column_and_input(spec):
     bands = list(config["bands"])
     declared = {c.name: c.unit for c in columns.all_columns(bands, list(methods.REGISTRY)) + columns.DERIVED}
     declared["quality_flags"] = ""
-    for stage in ("extinction", "kcorrect", "redshift"):
+    for stage in ("extinction", "kcorr", "redshift"):
         declared |= stages.output_units(stage, bands)
     labels = spec.band_labels(config[spec.name])
     for name, inp in spec.inputs.items():
@@ -214,7 +214,7 @@ def test_every_list_of_methods_follows_the_registry():
 # ------------------------------------------------------------------- the stages before
 
 def test_every_stage_writes_the_columns_it_declares():
-    from galdist import extinction, kcorrect, redshift
+    from galdist import extinction, kcorr, redshift
 
     bands = list(CONFIG["bands"])
     n = 4
@@ -225,6 +225,6 @@ def test_every_stage_writes_the_columns_it_declares():
     grid = redshift.MuGrid.build(redshift.make_cosmology(), z_max=0.2, n=200)
     z = redshift.redshift_distances(np.full(n, 10.0), np.full(n, 45.0), np.full(n, 0.02), np.full(n, 1e-4), grid)
     assert set(z) == set(stages.output_units("redshift", bands))
-    kc = dict(CONFIG, kcorrect=dict(CONFIG["kcorrect"], z_max=0.045, dz=0.005))
-    k = kcorrect.assign(stages.kcorrect_grid(kc), np.full(n, 0.02), None, CONFIG["kcorrect"]["default_template"])
-    assert set(k) == set(stages.output_units("kcorrect", bands))
+    kc = dict(CONFIG, kcorr=dict(CONFIG["kcorr"], z_max=0.045, dz=0.005))
+    k = kcorr.assign(stages.kcorr_grid(kc), np.full(n, 0.02), None, CONFIG["kcorr"]["default_template"])
+    assert set(k) == set(stages.output_units("kcorr", bands))

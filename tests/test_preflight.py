@@ -48,7 +48,7 @@ def test_user_bands_replace_the_default_bands(tmp_path):
     """A g/i catalog: the default V, I, Ks must not be merged in and asked for."""
     user = {"catalog": sdss_catalog(tmp_path), "bands": SDSS, "methods": ["tully_fisher"],
             "tully_fisher": {"band": "i", "accept_passband_mismatch": True},
-            "kcorrect": {"colour_pair": ["g", "i"]}}
+            "kcorr": {"colour_pair": ["g", "i"]}}
     user["bands"] = {k: v | {"ab_minus_vega": 0.37 if k == "i" else 0.08} for k, v in SDSS.items()}
     result = preflight.check(user)
     assert list(result.config["bands"]) == ["g", "i"]
@@ -75,7 +75,7 @@ def test_only_bands_a_stage_reads_need_magnitude_columns(tmp_path):
     path = write(cols, tmp_path / "nov.parquet", drop=("mag_V", "mag_V_err", "mag_Ks", "mag_Ks_err"))
     result = preflight.check({"catalog": path, "methods": ["sbf"]})
     (msg,) = {m for m in errors(result, "catalog structure") if "'mag_V'" in m}
-    assert "kcorrect.colour_pair" in msg
+    assert "kcorr.colour_pair" in msg
 
 
 def test_shipped_calibrations_by_name_from_any_folder(tmp_path, monkeypatch):
@@ -95,7 +95,7 @@ def test_sdss_i_against_the_cousins_i_calibration_is_refused(tmp_path):
     """The measured case: a g/i (AB) catalog against the Cousins-I Vega relation of
     Tully & Courtois 2012 (ApJ 749, 78) gave a +0.36 mag bias with no warning."""
     user = {"catalog": sdss_catalog(tmp_path), "bands": SDSS, "methods": ["tully_fisher"],
-            "tully_fisher": {"band": "i"}, "kcorrect": {"colour_pair": None}}
+            "tully_fisher": {"band": "i"}, "kcorr": {"colour_pair": None}}
     msgs = errors(preflight.check(user), "passbands and systems")
     assert any("'tully_fisher.band'" in m and "SDSS i" in m and "Cousins I" in m for m in msgs), msgs
     assert any("'bands.i.ab_minus_vega'" in m and "AB" in m and "Vega" in m for m in msgs), msgs
@@ -134,7 +134,7 @@ def test_vega_colour_band_needs_an_offset(tmp_path):
     path = write(small_catalog(20), tmp_path / "cat.parquet")
     bands = JC | {"V": {"filter": "bessell-V", "system": "Vega"}}
     msgs = errors(preflight.check({"catalog": path, "bands": bands, "methods": ["tully_fisher"]}))
-    assert any("bands.V.ab_minus_vega" in m and "kcorrect.colour_pair" in m for m in msgs), msgs
+    assert any("bands.V.ab_minus_vega" in m and "kcorr.colour_pair" in m for m in msgs), msgs
 
 
 # --- method settings up front -------------------------------------------------------------
@@ -153,7 +153,7 @@ def test_gamma_for_a_band_without_a_default(tmp_path):
     cal.write_text(text.replace("band: Cousins I", "band: SDSS i").replace("system: Vega", "system: AB")
                    .replace("name: tf_i_tully_courtois_2012", "name: tf_sdss_i_test"))
     user = {"catalog": sdss_catalog(tmp_path), "bands": SDSS, "methods": ["tully_fisher"],
-            "tully_fisher": {"band": "i", "calibration": str(cal)}, "kcorrect": {"colour_pair": None}}
+            "tully_fisher": {"band": "i", "calibration": str(cal)}, "kcorr": {"colour_pair": None}}
     result = preflight.check(user)
     (msg,) = errors(result, "method settings")
     assert "gamma0/gamma1" in msg
@@ -202,3 +202,9 @@ def test_mistake_stops_snakemake_before_any_job(tmp_path):
     assert result.returncode != 0
     assert "set units: {z_helio: km/s}" in result.stderr
     assert not (wf / "results" / "cz").exists()
+
+
+def test_old_name_of_the_k_correction_section_names_the_new_one(tmp_path):
+    path = write(small_catalog(20), tmp_path / "cat.parquet")
+    (msg,) = errors(preflight.check({"catalog": path, "kcorrect": {"colour_pair": None}}), "config")
+    assert "'kcorrect' is now 'kcorr'" in msg

@@ -154,11 +154,11 @@ def test_mu_grid_is_written_atomically(tmp_path, monkeypatch):
 
 
 def test_kcorrect_grid_is_written_atomically(tmp_path, monkeypatch):
-    from galdist import kcorrect
-    grid = kcorrect.KGrid(z=np.linspace(0.0, 0.2, 3), k={"V": np.zeros((1, 3))}, names=("flat",))
+    from galdist import kcorr
+    grid = kcorr.KGrid(z=np.linspace(0.0, 0.2, 3), k={"V": np.zeros((1, 3))}, names=("flat",))
     monkeypatch.setattr(np, "savez_compressed", _partial_write_then_fail)
     with pytest.raises(OSError, match="disk full"):
-        grid.to_file(tmp_path / "kcorrect_grid.npz")
+        grid.to_file(tmp_path / "kcorr_grid.npz")
     assert list(tmp_path.iterdir()) == []
 
 
@@ -218,7 +218,7 @@ def _exists(p: Path) -> bool:
 def _phases(run: Path, demo: Path):
     """(name, when to kill, what must still be missing right after the kill)."""
     shards = run / "shards"
-    stage_files = [shards / stage / f"part-{s}.parquet" for stage in ("extinction", "kcorrect", "redshift")
+    stage_files = [shards / stage / f"part-{s}.parquet" for stage in ("extinction", "kcorr", "redshift")
                    for s in SHARD_IDS]
     return [
         ("demo catalog",
@@ -336,7 +336,7 @@ def test_failed_shard_names_itself_others_finish_and_only_it_reruns(reference, k
     workdir, run = killed["workdir"], killed["run"]
     assert run_snakemake(workdir, *ARGS).returncode == 0  # complete (nothing to do)
     # the state of a run that has finished the extinction stage and nothing after it...
-    for name in ("shards/kcorrect", "shards/tully_fisher", "shards/sbf", "plots"):
+    for name in ("shards/kcorr", "shards/tully_fisher", "shards/sbf", "plots"):
         shutil.rmtree(run / name)
     for name in ("crosscheck_statistics.json", "distances.parquet", "summary.json", "plot_sample.parquet"):
         (run / name).unlink()
@@ -351,13 +351,13 @@ def test_failed_shard_names_itself_others_finish_and_only_it_reruns(reference, k
     assert "K-corrections, shard 00001 failed" in out, out[-3000:]
     assert "shards/extinction/part-00001.parquet: not a readable Parquet file" in out
     assert not re.search(r"shard 0000[023] failed", out)  # only that shard's job failed
-    log = (run / "logs" / "kcorrect" / "part-00001.log").read_text()
+    log = (run / "logs" / "kcorr" / "part-00001.log").read_text()
     assert "part-00001.parquet: not a readable Parquet file" in log
     # the other shards' jobs ran to the end; nothing after the failed shard's job ran
     for shard in ("00000", "00002", "00003"):
-        for stage in ("kcorrect", "tully_fisher/tf_i_tully_courtois_2012", "sbf/sbf_tonry1997_cousins_i"):
+        for stage in ("kcorr", "tully_fisher/tf_i_tully_courtois_2012", "sbf/sbf_tonry1997_cousins_i"):
             assert (run / "shards" / stage / f"part-{shard}.parquet").exists(), (stage, shard)
-    assert not (run / "shards" / "kcorrect" / "part-00001.parquet").exists()
+    assert not (run / "shards" / "kcorr" / "part-00001.parquet").exists()
     assert not (run / "distances.parquet").exists()
 
     # the fix: remove the bad file; only shard 00001's jobs and the gathering steps are planned
@@ -366,7 +366,7 @@ def test_failed_shard_names_itself_others_finish_and_only_it_reruns(reference, k
     planned = plan.stdout + plan.stderr
     assert plan.returncode == 0, planned[-2000:]
     assert _job_counts(planned) == {
-        "extinction": 1, "kcorrect": 1, "distance": 2, "crosscheck_statistics": 1,
+        "extinction": 1, "kcorr": 1, "distance": 2, "crosscheck_statistics": 1,
         "assemble": 1, "plots": 1, "run_report": 1, "all": 1}
     outputs = [line for line in planned.splitlines() if line.strip().startswith("output:")]
     assert any("part-00001.parquet" in line for line in outputs)

@@ -39,7 +39,7 @@ def _catalog(method: str) -> pa.Table:
     for c in method_columns(OTHER[method]):
         del cols[c.name]
     # bands no stage reads need no magnitude columns: Ks never, V and I only for the
-    # K-correction colour (the SBF-only run sets kcorrect.colour_pair: null)
+    # K-correction colour (the SBF-only run sets kcorr.colour_pair: null)
     unused = ("Ks",) if method == "tully_fisher" else ("V", "I", "Ks")
     for b in unused:
         del cols[f"mag_{b}"], cols[f"mag_{b}_err"]
@@ -55,7 +55,7 @@ def single_run(request, tmp_path_factory):
     pq.write_table(catalog, folder / "cat.parquet")
     conf = {"catalog": "cat.parquet", "run": "single", "methods": [method], "shard_rows": 100}
     if method == "sbf":
-        conf["kcorrect"] = {"colour_pair": None}
+        conf["kcorr"] = {"colour_pair": None}
     (folder / "run.yaml").write_text(json.dumps(conf))
     env = {k: v for k, v in os.environ.items() if k != "SNAKEMAKE_PROFILE"}
     result = subprocess.run([sys.executable, "-m", "galdist.cli", "run", "run.yaml", "--cores", "2"],

@@ -166,7 +166,7 @@ def test_every_job_was_a_slurm_job(runs):
     assert kinds.count("group_shard_distance_extinction_kcorrect") == 2, kinds
     assert kinds.count("rule_redshift") == 2, kinds
     assert kinds.count("group_product_assemble_plots") == 1, kinds
-    for rule in ("demo_catalog", "ingest", "mu_grid", "extinction_coefficients", "kcorrect_grid",
+    for rule in ("demo_catalog", "ingest", "mu_grid", "extinction_coefficients", "kcorr_grid",
                  "crosscheck_statistics"):
         assert kinds.count(f"rule_{rule}") == 1, (rule, kinds)
 
@@ -178,7 +178,7 @@ def test_profile_resources_reach_sbatch(runs):
     for jid, kind in submitted.items():
         by_kind.setdefault(kind, []).append(jobs[jid])
     # A shard's job runs its four jobs one after the other on one core (cores: 1): the
-    # memory of the largest, the sum of their wall times (extinction 10 + kcorrect 10 +
+    # memory of the largest, the sum of their wall times (extinction 10 + kcorr 10 +
     # one distance job per method, 15 + 15 min).
     for job in by_kind["group_shard_distance_extinction_kcorrect"]:
         assert (job["cpus"], job["min_memory"], job["time_limit"]) == ("1", "2000M", "50:00"), job

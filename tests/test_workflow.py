@@ -40,7 +40,7 @@ def test_every_row_in_every_product(demo_run):
     product = pq.read_table(run / "distances.parquet")
     source = pq.read_table(demo_run / "results" / "demo-input" / "corvid_reach_survey.parquet")
     assert product.column("galaxy_id").to_pylist() == source.column("galaxy_id").to_pylist()  # input order
-    for stage in ("extinction", "kcorrect", "redshift"):
+    for stage in ("extinction", "kcorr", "redshift"):
         files = sorted((run / "shards" / stage).glob("part-*.parquet"))
         assert sum(pq.read_metadata(f).num_rows for f in files) == 1500, stage
     summary = json.loads((run / "summary.json").read_text())
@@ -78,7 +78,7 @@ def test_interpolated_values_match_their_direct_computation(demo_run):
     galdist's own requirements: mu(z) grid within 1e-4 mag of astropy's distmod
     (galdist.redshift docstring), K(z) tables within 1e-3 mag (the benchmark's target),
     A exact to rounding."""
-    from galdist import filters, kcorrect, redshift, stages
+    from galdist import filters, kcorr, redshift, stages
 
     run = demo_run / "results" / "demo"
     path = run / "distances.parquet"
@@ -96,12 +96,12 @@ def test_interpolated_values_match_their_direct_computation(demo_run):
         np.testing.assert_allclose(col[f"A_{b}"], r[b] * col["ebv_used"], rtol=1e-12, atol=0, err_msg=b)
     # K(z): the grid's tables, linear in z, against direct synthetic photometry at the
     # galaxies' redshifts, for every template (tests the grid, not the template matching)
-    grid = kcorrect.KGrid.from_file(run / "grids" / "kcorrect_grid.npz")
-    templates = kcorrect.load_templates(config["kcorrect"]["templates"])
+    grid = kcorr.KGrid.from_file(run / "grids" / "kcorr_grid.npz")
+    templates = kcorr.load_templates(config["kcorr"]["templates"])
     curves = filters.load_bands(config["bands"])
     z = col["z_helio"][np.isfinite(col["z_helio"])][:200]
     for b in bands:
-        direct = kcorrect.k_correction(curves[b], templates.wave, templates.flux_lambda, z)  # (templates, z)
+        direct = kcorr.k_correction(curves[b], templates.wave, templates.flux_lambda, z)  # (templates, z)
         for i, name in enumerate(templates.names):
             table = grid.k[b][grid.index(name)]
             assert np.max(np.abs(np.interp(z, grid.z, table) - direct[i])) < 1e-3, (b, name)

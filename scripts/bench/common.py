@@ -26,9 +26,9 @@ DEFAULT_SHARD_ROWS = 1_000_000  # the schema's default (config/config.yaml sets 
 METHODS = tuple(REGISTRY)  # benchmark entries per method (benchmarks/<method>/...)
 METHOD_RULE = "distance"  # the one rule of every method's jobs
 # Rules whose work grows with N (rows/s is meaningful); the others run once per configuration.
-ROW_RULES = ("ingest", "extinction", "kcorrect", "redshift", *METHODS, "crosscheck_statistics", "assemble")
-PER_SHARD_RULES = ("extinction", "kcorrect", "redshift", *METHODS)
-STAGE_ORDER = ["ingest", "extinction_coefficients", "kcorrect_grid", "mu_grid", "extinction", "kcorrect",
+ROW_RULES = ("ingest", "extinction", "kcorr", "redshift", *METHODS, "crosscheck_statistics", "assemble")
+PER_SHARD_RULES = ("extinction", "kcorr", "redshift", *METHODS)
+STAGE_ORDER = ["ingest", "extinction_coefficients", "kcorr_grid", "mu_grid", "extinction", "kcorr",
                "redshift", *METHODS, "crosscheck_statistics", "assemble", "plots", "run_report"]
 
 TARGETS = {

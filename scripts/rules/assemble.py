@@ -6,7 +6,7 @@ from galdist.logs import logged
 
 with logged(snakemake.log[0], "assemble") as log:
     inp, cfg, min_cz = snakemake.input, snakemake.params.crosscheck, snakemake.params.min_cz
-    stages = ["extinction", "kcorrect", "redshift", *snakemake.params.methods]
+    stages = ["extinction", "kcorr", "redshift", *snakemake.params.methods]
     shards = [{"shard": s} | {st: inp[st][i] for st in stages} for i, s in enumerate(inp.shards)]
     stats, ingest_summary = io.read_json(inp.statistics), io.read_json(inp.ingest_summary)
     cals = {m: calibration.load_calibration(p) for m, p in snakemake.params.calibrations.items()}

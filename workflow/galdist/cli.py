@@ -33,7 +33,7 @@ DEFAULT_OUTPUT_DIR = "galdist-results"
 RUN_LOCK = ".galdist-run.lock"
 RUN_LOG = "galdist-run.log"
 #: rules with one job per shard (their progress is counted in shards)
-PER_SHARD = ("extinction", "kcorrect", "redshift")
+PER_SHARD = ("extinction", "kcorr", "redshift")
 #: the rule with one job per shard and distance method (workflow/rules/methods.smk)
 METHOD_RULE = "distance"
 DASH = "–"

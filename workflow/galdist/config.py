@@ -84,12 +84,21 @@ def _coerce(instance, schema):
     return instance
 
 
+#: Top-level config keys renamed: the old name gets a message naming the new one.
+RENAMED_KEYS = {"kcorrect": "kcorr"}
+
+
 def validate(config: dict) -> dict:
     """Validate ``config`` in place (filling defaults) and return it.
 
     Raises ConfigError with every problem found, one per line.
     """
     check_size(config, "configuration")
+    renamed = sorted(set(config) & set(RENAMED_KEYS))
+    if renamed:
+        raise ConfigError("invalid configuration:\n  - " + "\n  - ".join(
+            f"config key '{old}' is now '{RENAMED_KEYS[old]}': rename the section (the old name was a widely "
+            "used program's name; galdist 0.2 renamed it)" for old in renamed))
     schema = config_schema()
     _coerce(config, schema)
     errors = sorted(_Validator(schema).iter_errors(config), key=lambda e: (key_of(e), e.validator))
@@ -181,8 +190,8 @@ def extra_required_columns(config: dict) -> dict[str, str]:
         for column, key in REGISTRY[method].catalog_band_columns(config[method]).items():
             if not column.endswith("_err"):
                 users.setdefault(column.removeprefix("mag_"), []).append(key)
-    for label in config["kcorrect"]["colour_pair"] or []:
-        users.setdefault(label, []).append("kcorrect.colour_pair")
+    for label in config["kcorr"]["colour_pair"] or []:
+        users.setdefault(label, []).append("kcorr.colour_pair")
     for label, keys in users.items():
         for name in (f"mag_{label}", f"mag_{label}_err"):
             extra[name] = f"band {label} is named in config {' and '.join(keys)}"
@@ -204,11 +213,11 @@ def _stage_settings(config: dict) -> list[str]:
     """Settings the stages would refuse inside a job, checked now. The slow-to-import
     checks (extinction law, named cosmology, template library) run only where the
     setting differs from the schema default, which is valid by construction."""
-    from . import extinction, kcorrect
+    from . import extinction, kcorr
     from .columns import Z_HELIO_RANGE
 
     problems = []
-    ext, kc, cosmo = config["extinction"], config["kcorrect"], config["redshift"]["cosmology"]
+    ext, kc, cosmo = config["extinction"], config["kcorr"], config["redshift"]["cosmology"]
 
     def attempt(fn, *args):
         try:
@@ -216,7 +225,7 @@ def _stage_settings(config: dict) -> list[str]:
         except (ValueError, FileNotFoundError) as exc:
             problems.append(f"config: {exc}")
 
-    attempt(kcorrect.grid_redshifts, Z_HELIO_RANGE[0], kc["z_max"], kc["dz"])
+    attempt(kcorr.grid_redshifts, Z_HELIO_RANGE[0], kc["z_max"], kc["dz"])
     if ext["coefficients"] == "law" and ext["r_v"] != 3.1:
         attempt(extinction.extinction_law, ext["law"], ext["r_v"])
     if ext["coefficients"] == "table" and set(config["bands"]) <= set(ext["table_keys"]):
@@ -227,7 +236,7 @@ def _stage_settings(config: dict) -> list[str]:
         attempt(make_cosmology, cosmo["name"], cosmo["H0"], cosmo["Om0"])
     if kc["templates"] is not None or kc["default_template"] != "exp_tau5gyr":
         if kc["templates"] is None or Path(kc["templates"]).is_file():
-            attempt(lambda: kcorrect.load_templates(kc["templates"]).index(kc["default_template"]))
+            attempt(lambda: kcorr.load_templates(kc["templates"]).index(kc["default_template"]))
     return problems
 
 
@@ -271,11 +280,11 @@ def check_stages(config: dict) -> dict:
             problems.append(f"config key 'extinction.table_keys': give the table key of band(s) "
                             f"{', '.join(missing)} (e.g. {{V: landolt-V}})")
     problems += _stage_settings(config)
-    kc = config["kcorrect"]
+    kc = config["kcorr"]
     for label in kc["colour_pair"] or []:
-        need_band("kcorrect.colour_pair", label)
+        need_band("kcorr.colour_pair", label)
     if kc["templates"] and not Path(kc["templates"]).is_file():
-        problems.append(f"config key 'kcorrect.templates': no regular file at {kc['templates']}")
+        problems.append(f"config key 'kcorr.templates': no regular file at {kc['templates']}")
 
     calibrations = {}
     for method in config["methods"]:

@@ -107,7 +107,7 @@ def _disc(rng, n, cal, band_cfg, z_helio, mu, a_gal, k_corr, tf_cfg):
 def _observe(rng, ra, dec, z_cos, v_pec, is_disc, conf):
     """Observables generated forward through every correction the pipeline undoes,
     with the run's extinction law, K-correction templates and calibrations."""
-    from . import kcorrect, redshift, stages
+    from . import kcorr, redshift, stages
     from .calibration import load_calibration
     from .ebv_maps import galactic_coordinates
     from .photometry import color_system_offset, system_offset
@@ -128,11 +128,11 @@ def _observe(rng, ra, dec, z_cos, v_pec, is_disc, conf):
     r = stages.extinction_coefficients(conf).per_true_ebv()
     a = {band: r[band] * conf["extinction"]["ebv_scale"] * ebv for band in bands}
     # K-corrections: discs star-forming templates, early types passive ones
-    kcfg = conf["kcorrect"]
-    kgrid = stages.kcorrect_grid(conf)
+    kcfg = conf["kcorr"]
+    kgrid = stages.kcorr_grid(conf)
     nt = kgrid.n_steps  # templates per track; evaluate() takes a position along the first
     template = np.where(is_disc, rng.uniform(nt / 2.0, nt - 1.0, n), rng.uniform(0.0, 1.5, n))
-    k, colour = kcorrect.evaluate(kgrid, z_helio, template)
+    k, colour = kcorr.evaluate(kgrid, z_helio, template)
     z_err = np.full(n, 3e-5)
     cols = {"ra": ra, "dec": dec, "z_helio": z_helio + rng.normal(0.0, 1.0, n) * z_err, "z_helio_err": z_err}
     ebv_err = 0.002 + 0.05 * ebv

@@ -36,7 +36,7 @@ COMMON_OUTPUTS = {"mu": "mag", "mu_err": "mag", "mu_err_mc": "mag", "d_mpc": "Mp
                   "malmquist_applied": "", "flags": ""}
 
 #: The per-shard stages whose files a method may read, in DAG order.
-STAGES = ("ingest", "extinction", "kcorrect", "redshift")
+STAGES = ("ingest", "extinction", "kcorr", "redshift")
 
 
 @dataclass(frozen=True)
@@ -285,8 +285,8 @@ TULLY_FISHER = MethodSpec(
         "a_gal": Input("extinction", "A_{band}", "mag", 0.05),
         "a_gal_err": _err("extinction", "A_{band}_err", "mag", 0.01),
         "ext_flags": _flags("extinction", "ext_flags"),
-        "k_corr": Input("kcorrect", "K_{band}", "mag", 0.01),
-        "kcorr_flags": _flags("kcorrect", "kcorr_flags"),
+        "k_corr": Input("kcorr", "K_{band}", "mag", 0.01),
+        "kcorr_flags": _flags("kcorr", "kcorr_flags"),
     },
     outputs={"inclination_deg": "deg", "w_z": "km / s", "w_r": "km / s", "logw_i": "dex(km / s)",
              "a_int": "mag", "mag_corr": "mag", "abs_mag": "mag"},
@@ -318,9 +318,9 @@ SBF = MethodSpec(
         "A_red": Input("extinction", "A_{red}", "mag", 0.075),
         "A_red_err": _err("extinction", "A_{red}_err", "mag", 0.012),
         "ext_flags": _flags("extinction", "ext_flags"),
-        "K_mag": Input("kcorrect", "K_{band}", "mag", 0.01), "K_blue": Input("kcorrect", "K_{blue}", "mag", 0.03),
-        "K_red": Input("kcorrect", "K_{red}", "mag", 0.01),
-        "kcorr_flags": _flags("kcorrect", "kcorr_flags"),
+        "K_mag": Input("kcorr", "K_{band}", "mag", 0.01), "K_blue": Input("kcorr", "K_{blue}", "mag", 0.03),
+        "K_red": Input("kcorr", "K_{red}", "mag", 0.01),
+        "kcorr_flags": _flags("kcorr", "kcorr_flags"),
     },
     outputs={"color_0": "mag", "mag_0": "mag", "abs_mag": "mag"},
     derive=_sbf_derive,
@@ -396,9 +396,9 @@ FUNDAMENTAL_PLANE = MethodSpec(
         "a_gal": Input("extinction", "A_{band}", "mag", 0.02),
         "a_gal_err": _err("extinction", "A_{band}_err", "mag", 0.005),
         "ext_flags": _flags("extinction", "ext_flags"),
-        "k_corr": Input("kcorrect", "K_{band}", "mag", 0.03),
-        "k_corr_err": _err("kcorrect", "K_{band}_err", "mag", 0.01),
-        "kcorr_flags": _flags("kcorrect", "kcorr_flags"),
+        "k_corr": Input("kcorr", "K_{band}", "mag", 0.03),
+        "k_corr_err": _err("kcorr", "K_{band}_err", "mag", 0.01),
+        "kcorr_flags": _flags("kcorr", "kcorr_flags"),
         # eta needs the redshift distance (and the gaussian estimator both)
         "z_cmb": Input("redshift", "z_cmb", "", 0.03, "optional"),
         "mu_z": Input("redshift", "mu_z", "mag", 35.6, "optional"),

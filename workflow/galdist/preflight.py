@@ -133,11 +133,11 @@ def _passbands(cfg, cals) -> dict:
         else:
             problems += found
         problems += passbands.system_problems(method, cal, section, cfg["bands"])
-    for label in cfg["kcorrect"]["colour_pair"] or []:
+    for label in cfg["kcorr"]["colour_pair"] or []:
         band = cfg["bands"].get(label)
         if band and band["system"] == "Vega" and band.get("ab_minus_vega") is None:
             problems.append(f"config key 'bands.{label}.ab_minus_vega': band {label} (Vega) is in "
-                            "kcorrect.colour_pair and the templates' colours are AB; give m_AB - m_Vega")
+                            "kcorr.colour_pair and the templates' colours are AB; give m_AB - m_Vega")
     if problems:
         raise ConfigError("passbands:\n  - " + "\n  - ".join(problems))
     return {"warnings": warnings}

@@ -29,7 +29,7 @@ C_KMS = 299792.458
 
 #: canonical name -> usual spellings, best first (lower case, runs of other characters as "_")
 ALIASES = {
-    "galaxy_id": ["galaxy_id", "objname", "obj_name", "name", "galaxy", "galaxy_name", "object", "objid",
+    "galaxy_id": ["galaxy_id", "obj_name", "name", "galaxy", "galaxy_name", "object", "objid",
                   "obj_id", "id", "pgc", "pgc_id", "pgcid", "pgc_no", "designation", "source_id"],
     "ra": ["ra", "raj2000", "ra_j2000", "ra2000", "ra_deg", "radeg", "ra_icrs", "alpha", "alpha_j2000"],
     "dec": ["dec", "dej2000", "de_j2000", "decj2000", "dec_j2000", "dec2000", "decl", "delta", "dec_deg",
@@ -383,11 +383,11 @@ def propose(catalog: str, run: str | None = None, output_dir: str = "galdist-res
         ordered = sorted(with_errors, key=BAND_ORDER.index)
         pair = (ordered[0], ordered[-1])
     if pair:
-        p.sections["kcorrect"] = [("colour_pair", list(pair),
+        p.sections["kcorr"] = [("colour_pair", list(pair),
                                    f"the {pair[0]} - {pair[1]} colour picks each galaxy's template (two bands with "
                                    "magnitudes and errors)")]
     else:
-        p.sections["kcorrect"] = [("colour_pair", None, "no two bands with magnitudes, errors and a known AB offset: "
+        p.sections["kcorr"] = [("colour_pair", None, "no two bands with magnitudes, errors and a known AB offset: "
                                    "every galaxy gets the default template (flagged COLOR_MISSING)")]
     if "ebv" in chosen:
         p.sections["extinction"] = [
@@ -569,7 +569,7 @@ def render(p: Proposal) -> str:
     else:
         out += ["bands: {}  # TODO: no magnitude column recognised; add at least one band"]
     out += ["", _line(0, "methods", p.methods, p.methods_why)]
-    for section in ("tully_fisher", "sbf", "kcorrect", "extinction"):
+    for section in ("tully_fisher", "sbf", "kcorr", "extinction"):
         items = p.sections.get(section)
         if not items or (section in ("tully_fisher", "sbf") and section not in p.methods):
             continue

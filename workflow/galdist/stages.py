@@ -16,7 +16,7 @@ from __future__ import annotations
 _OUTPUTS = {
     "extinction": {"ebv_used": "mag", "ebv_used_err": "mag", "A_{band}": "mag", "A_{band}_err": "mag",
                    "ext_flags": ""},
-    "kcorrect": {"K_{band}": "mag", "K_{band}_err": "mag", "kcorr_template": "", "kcorr_flags": ""},
+    "kcorr": {"K_{band}": "mag", "K_{band}_err": "mag", "kcorr_template": "", "kcorr_flags": ""},
     "redshift": {"z_cmb": "", "z_cmb_err": "", "mu_z": "mag", "mu_z_err": "mag", "d_z_mpc": "Mpc",
                  "z_flags": ""},
 }
@@ -70,15 +70,15 @@ def extinction_columns(cols: dict, coefficients, extinction_config: dict, sky=No
                             outside=outside, ebv_fractional_error=ext["ebv_fractional_error"])
 
 
-def kcorrect_grid(config: dict):
+def kcorr_grid(config: dict):
     """K(z) and model-colour grids of every configured band x template, from the lowest
-    z_helio ingest accepts to ``kcorrect.z_max``."""
-    from . import filters, kcorrect
+    z_helio ingest accepts to ``kcorr.z_max``."""
+    from . import filters, kcorr
     from .columns import Z_HELIO_RANGE
 
-    kc, bands = config["kcorrect"], config["bands"]
+    kc, bands = config["kcorr"], config["bands"]
     vega = {b: v["ab_minus_vega"] for b, v in bands.items() if v["system"] == "Vega" and v["ab_minus_vega"] is not None}
-    return kcorrect.build_grids(kcorrect.load_templates(kc["templates"]), filters.load_bands(bands),
+    return kcorr.build_grids(kcorr.load_templates(kc["templates"]), filters.load_bands(bands),
                                 kc["colour_pair"], vega, z_min=Z_HELIO_RANGE[0], z_max=kc["z_max"], dz=kc["dz"])
 
 

@@ -10,7 +10,7 @@ from snakemake.exceptions import WorkflowError
 
 from galdist import config as gconfig
 from galdist import integrity, preflight
-from galdist import kcorrect as gkcorrect
+from galdist import kcorr as gkcorrect
 from galdist.methods import REGISTRY, plot_names, prefixes
 
 DEMO_CATALOG = "results/demo-input/corvid_reach_survey.parquet"
@@ -56,7 +56,7 @@ def content_digest(paths):
 
 CATALOG_DIGEST = ("built by the workflow" if CATALOG_PATHS == [DEMO_CATALOG]
                   else content_digest(CATALOG_PATHS))
-TEMPLATES_DIGEST = content_digest([config["kcorrect"]["templates"] or gkcorrect.DEFAULT_TEMPLATE_FILE])
+TEMPLATES_DIGEST = content_digest([config["kcorr"]["templates"] or gkcorrect.DEFAULT_TEMPLATE_FILE])
 MAPS_DIGEST = content_digest(EXTINCTION_MAPS)
 FILTERS_DIGEST = content_digest([b["filter"] for b in config["bands"].values() if Path(b["filter"]).is_file()])
 # a missing, truncated or replaced ingest shard: ingest runs again, and everything after
@@ -78,7 +78,7 @@ TABLE_DIGEST = content_digest([EXTINCTION_TABLE])
 
 # each per-shard stage's file of shard {shard}; a method's are keyed by its calibration's
 # name, so two calibrations never overwrite each other
-STAGE_SHARDS = {stage: f"{SHARDS}/{stage}/part-{{shard}}.parquet" for stage in ("extinction", "kcorrect", "redshift")}
+STAGE_SHARDS = {stage: f"{SHARDS}/{stage}/part-{{shard}}.parquet" for stage in ("extinction", "kcorr", "redshift")}
 METHOD_SHARDS = {m: f"{SHARDS}/{m}/{CALIBRATIONS[m].name}/part-{{shard}}.parquet" for m in METHODS}
 
 

@@ -2,12 +2,12 @@
 (colour after Galactic extinction; colour error from the magnitude and E(B-V) errors)."""
 import numpy as np
 
-from galdist import io, kcorrect, stages
+from galdist import io, kcorr, stages
 from galdist.logs import logged
 
 with logged(snakemake.log[0], f"K-corrections, shard {snakemake.wildcards.shard}"):
-    cfg = snakemake.params.kcorrect
-    grid = kcorrect.KGrid.from_file(snakemake.input.grid)
+    cfg = snakemake.params.kcorr
+    grid = kcorr.KGrid.from_file(snakemake.input.grid)
     colour = colour_err = None
     pair = cfg["colour_pair"]
     names = ["z_helio"] + ([f"mag_{b}" for b in pair] + [f"mag_{b}_err" for b in pair] if pair else [])
@@ -24,6 +24,6 @@ with logged(snakemake.log[0], f"K-corrections, shard {snakemake.wildcards.shard}
             ext_err = np.where(cols["ebv_used"] > 0, np.abs(excess) * cols["ebv_used_err"] / cols["ebv_used"], 0.0)
         colour_err = np.sqrt(cols[f"mag_{blue}_err"] ** 2 + cols[f"mag_{red}_err"] ** 2
                              + np.where(np.isfinite(ext_err), ext_err, 0.0) ** 2)
-    out = kcorrect.assign(grid, cols["z_helio"], colour, cfg["default_template"], cfg["clip_tolerance"],
+    out = kcorr.assign(grid, cols["z_helio"], colour, cfg["default_template"], cfg["clip_tolerance"],
                           colour_err=colour_err)
-    io.write_stage_columns(out, snakemake.output[0], fp, stages.output_units("kcorrect", snakemake.config["bands"]))
+    io.write_stage_columns(out, snakemake.output[0], fp, stages.output_units("kcorr", snakemake.config["bands"]))

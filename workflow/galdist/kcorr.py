@@ -105,7 +105,7 @@ class Templates:
 
     def index(self, name: str) -> int:
         if name not in self.names:
-            raise ValueError(f"kcorrect.default_template: '{name}' is not a template "
+            raise ValueError(f"kcorr.default_template: '{name}' is not a template "
                              f"(allowed: {', '.join(self.names)})")
         return self.names.index(name)
 
@@ -162,24 +162,24 @@ def load_templates(path: str | Path | None = None, emission_lines: bool = True) 
     """
     path = Path(path) if path is not None else DEFAULT_TEMPLATE_FILE
     if not path.exists():
-        raise ValueError(f"kcorrect.templates: file {path} does not exist")
+        raise ValueError(f"kcorr.templates: file {path} does not exist")
     from astropy.table import Table  # here: only the grid-building job reads templates
 
     try:
         table = Table.read(path, format="ascii.csv" if path.suffix == ".csv" else None)
     except Exception as exc:
-        raise ValueError(f"kcorrect.templates: cannot read {path} as a table ({exc})") from exc
+        raise ValueError(f"kcorr.templates: cannot read {path} as a table ({exc})") from exc
     lower = {c.lower(): c for c in table.colnames}
     wcol = next((lower[w] for w in WAVE_COLUMN_NAMES if w in lower), None)
     if wcol is None:
-        raise ValueError(f"kcorrect.templates: {path} has no wavelength column "
+        raise ValueError(f"kcorr.templates: {path} has no wavelength column "
                          f"(looked for {', '.join(WAVE_COLUMN_NAMES)})")
     col = table[wcol]
     wave = (col.quantity.to_value("Angstrom") if getattr(col, "unit", None) is not None
             else np.asarray(col, dtype=float))
     names = [c for c in table.colnames if c != wcol]
     if not names:
-        raise ValueError(f"kcorrect.templates: {path} has no template columns")
+        raise ValueError(f"kcorr.templates: {path} has no template columns")
     flux = np.array([np.asarray(table[c], dtype=float) for c in names])
     meta = dict(table.meta)
     meta.setdefault("file", str(path))
@@ -197,7 +197,7 @@ def load_templates(path: str | Path | None = None, emission_lines: bool = True) 
             meta["emission_lines_added"] = True
         return Templates(wave=wave, flux_lambda=flux, names=tuple(names), meta=meta, tracks=tracks)
     except (ValueError, KeyError, TypeError) as exc:
-        raise ValueError(f"kcorrect.templates: {path}: {exc}") from exc
+        raise ValueError(f"kcorr.templates: {path}: {exc}") from exc
 
 
 # ------------------------------------------------- direct synthetic photometry
@@ -279,10 +279,10 @@ class KGrid:
     def __post_init__(self):
         z = np.asarray(self.z, dtype=float)
         if z.ndim != 1 or z.size < 2:
-            raise ValueError("kcorrect grid: z must have >= 2 points")
+            raise ValueError("kcorr grid: z must have >= 2 points")
         step = np.diff(z)
         if not np.all(step > 0) or not np.allclose(step, step[0], rtol=1e-6, atol=0):
-            raise ValueError("kcorrect grid: z must be uniform and increasing")
+            raise ValueError("kcorr grid: z must be uniform and increasing")
         object.__setattr__(self, "z", z)
         object.__setattr__(self, "names", tuple(str(n) for n in self.names))
         nt = len(self.names)
@@ -290,18 +290,18 @@ class KGrid:
         k = {str(b): np.asarray(v, dtype=float) for b, v in self.k.items()}
         for b, v in k.items():
             if v.shape != shape:
-                raise ValueError(f"kcorrect grid: K for band {b} has shape {v.shape}, expected {shape}")
+                raise ValueError(f"kcorr grid: K for band {b} has shape {v.shape}, expected {shape}")
         object.__setattr__(self, "k", k)
         if self.colour is not None:
             c = np.asarray(self.colour, dtype=float)
             if c.shape != shape:
-                raise ValueError(f"kcorrect grid: colour has shape {c.shape}, expected {shape}")
+                raise ValueError(f"kcorr grid: colour has shape {c.shape}, expected {shape}")
             object.__setattr__(self, "colour", c)
             object.__setattr__(self, "colour_pair", tuple(self.colour_pair))
         tracks = (np.arange(nt, dtype=np.intp)[None, :] if self.tracks is None
                   else np.atleast_2d(np.asarray(self.tracks, dtype=np.intp)))
         if tracks.size != nt or sorted(tracks.ravel().tolist()) != list(range(nt)):
-            raise ValueError(f"kcorrect grid: tracks {tracks.shape} must hold every template index once")
+            raise ValueError(f"kcorr grid: tracks {tracks.shape} must hold every template index once")
         object.__setattr__(self, "tracks", tracks)
 
     @property
@@ -322,7 +322,7 @@ class KGrid:
 
     def index(self, name: str) -> int:
         if name not in self.names:
-            raise ValueError(f"kcorrect.default_template: '{name}' is not a template "
+            raise ValueError(f"kcorr.default_template: '{name}' is not a template "
                              f"(allowed: {', '.join(self.names)})")
         return self.names.index(name)
 
@@ -364,10 +364,10 @@ class KGrid:
 def grid_redshifts(z_min: float, z_max: float, dz: float) -> np.ndarray:
     """The K(z) grid's redshifts; ValueError naming the config key if dz does not divide the span."""
     if not (np.isfinite(z_min) and np.isfinite(z_max) and z_min > -1 and z_max > z_min):
-        raise ValueError(f"kcorrect.z_max: need -1 < z_min < z_max (got {z_min}, {z_max})")
+        raise ValueError(f"kcorr.z_max: need -1 < z_min < z_max (got {z_min}, {z_max})")
     n = (z_max - z_min) / dz
     if not (dz > 0 and abs(n - round(n)) < 1e-6 and round(n) >= 1):
-        raise ValueError(f"kcorrect.dz: must be > 0 and divide z_max - z_min (got dz = {dz}, "
+        raise ValueError(f"kcorr.dz: must be > 0 and divide z_max - z_min (got dz = {dz}, "
                          f"z_max - z_min = {z_max - z_min})")
     return np.linspace(z_min, z_max, int(round(n)) + 1)
 
@@ -391,14 +391,14 @@ def build_grids(templates: Templates, filters: dict, colour_pair: tuple[str, str
     if colour_pair is not None:
         colour_pair = tuple(colour_pair)
         if len(colour_pair) != 2 or any(c not in filters for c in colour_pair) or colour_pair[0] == colour_pair[1]:
-            raise ValueError(f"kcorrect.colour_pair: needs two different configured bands "
+            raise ValueError(f"kcorr.colour_pair: needs two different configured bands "
                              f"(allowed: {', '.join(filters)}; got {colour_pair})")
         if tracks.shape[1] < 2:
-            raise ValueError("kcorrect.colour_pair: colour matching needs >= 2 templates per track")
+            raise ValueError("kcorr.colour_pair: colour matching needs >= 2 templates per track")
     for label, filt in filters.items():
         lo, hi = filt.wavelength[0] / (1 + z_max), filt.wavelength[-1] / (1 + z_min)
         if templates.wave[0] > lo or templates.wave[-1] < hi:
-            raise ValueError(f"kcorrect.templates: rest wavelengths {templates.wave[0]:.0f}-"
+            raise ValueError(f"kcorr.templates: rest wavelengths {templates.wave[0]:.0f}-"
                              f"{templates.wave[-1]:.0f} A do not cover band '{label}' at "
                              f"{z_min} <= z <= {z_max} (needs {lo:.0f}-{hi:.0f} A)")
     k = {label: k_correction(filt, templates.wave, templates.flux_lambda, z)
@@ -637,7 +637,7 @@ def assign(grid: KGrid, z, colour_obs, default_template: str, clip_tolerance: fl
 
     if colour_obs is None or grid.colour is None:
         if colour_obs is not None:
-            raise ValueError("kcorrect.colour_pair: a colour was given but the grid has no colour pair")
+            raise ValueError("kcorr.colour_pair: a colour was given but the grid has no colour pair")
         for sl in _chunks(grid, n):
             k_def, lo, hi = _all_templates(grid, i[sl], w[sl], t_default)
             for b in grid.k:
@@ -645,10 +645,10 @@ def assign(grid: KGrid, z, colour_obs, default_template: str, clip_tolerance: fl
     else:
         c = np.asarray(colour_obs, dtype=float).ravel()
         if c.size != n:
-            raise ValueError(f"kcorrect: colour_obs has {c.size} rows, z has {n}")
+            raise ValueError(f"kcorr: colour_obs has {c.size} rows, z has {n}")
         sig = np.zeros(n) if colour_err is None else np.abs(np.asarray(colour_err, dtype=float).ravel())
         if sig.size != n:
-            raise ValueError(f"kcorrect: colour_err has {sig.size} rows, z has {n}")
+            raise ValueError(f"kcorr: colour_err has {sig.size} rows, z has {n}")
         missing = ~np.isfinite(c)
         clipped = np.zeros(n, dtype=bool)
         for sl in _chunks(grid, n):

@@ -1,4 +1,4 @@
-"""Tests for galdist.kcorrect (same-band K-corrections) and scripts/build_templates.py."""
+"""Tests for galdist.kcorr (same-band K-corrections) and scripts/build_templates.py."""
 
 from __future__ import annotations
 
@@ -12,7 +12,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from galdist import flags as fl
-from galdist import kcorrect as kc
+from galdist import kcorr as kc
 from galdist.filters import load_filter
 from galdist.flags import KCorr
 
@@ -315,7 +315,7 @@ def test_non_monotonic_colour_is_recorded_not_refused(templates, filters):
 def test_several_matches_give_mean_k_and_their_spread():
     # A track whose colour folds back (0 -> 1 -> 0.5) matches a colour of 0.75 twice: K is
     # the mean of the two matches and K_err half their range (galdist's definition, see
-    # kcorrect.assign); a colour of 0.25 matches once.
+    # kcorr.assign); a colour of 0.25 matches once.
     z = np.array([0.0, 0.1])
     colour = np.array([[0.0, 0.0], [1.0, 1.0], [0.5, 0.5]])
     k = np.array([[0.0, 0.0], [0.2, 0.2], [0.6, 0.6]])
@@ -486,7 +486,7 @@ def test_k_lies_between_the_template_envelope(grid, z, colour):
 
 def test_evaluate_is_the_forward_direction_of_assign(full_grid):
     # The demo generator relies on it: a galaxy made with evaluate(x) at z gets back the
-    # same K from assign on its colour (design note of kcorrect.evaluate).
+    # same K from assign on its colour (design note of kcorr.evaluate).
     rng = np.random.default_rng(11)
     z, x = rng.uniform(0.0, 0.3, 400), rng.uniform(0.0, full_grid.n_steps - 1, 400)
     k, c = kc.evaluate(full_grid, z, x)
@@ -511,7 +511,7 @@ def test_chunks_do_not_change_results(full_grid, monkeypatch):
 
 def test_k_error_grows_with_the_colour_error(full_grid):
     # The set of templates compatible with the colour widens with its error, so the
-    # spread (K_err) cannot shrink (kcorrect.assign's definition).
+    # spread (K_err) cannot shrink (kcorr.assign's definition).
     rng = np.random.default_rng(3)
     z, c = rng.uniform(0.0, 0.3, 300), rng.uniform(0.0, 1.2, 300)
     last = None
@@ -527,7 +527,7 @@ def test_k_error_grows_with_the_colour_error(full_grid):
 def test_single_template_mode_has_no_flags(templates, filters):
     # No colour pair configured: every galaxy uses the default template, unflagged
     # (flags mean a problem with the row, common practice in this package's flags.py);
-    # with no colour the error is half the range of K over all templates (kcorrect.assign).
+    # with no colour the error is half the range of K over all templates (kcorr.assign).
     g = kc.build_grids(templates, {"V": filters["V"]})
     assert g.colour is None
     out = kc.assign(g, np.array([0.01, 0.2]), None, "exp_tau3gyr")
@@ -560,11 +560,11 @@ def test_grid_file_round_trip(full_grid, tmp_path):
 
 
 def test_structural_errors_name_the_key(templates, filters, grid, tmp_path):
-    with pytest.raises(ValueError, match="kcorrect.default_template.*allowed"):
+    with pytest.raises(ValueError, match="kcorr.default_template.*allowed"):
         kc.assign(grid, np.array([0.1]), np.array([0.5]), "Sbc")
-    with pytest.raises(ValueError, match="kcorrect.colour_pair"):
+    with pytest.raises(ValueError, match="kcorr.colour_pair"):
         kc.build_grids(templates, filters, colour_pair=("B", "J"))
-    with pytest.raises(ValueError, match="kcorrect.dz"):
+    with pytest.raises(ValueError, match="kcorr.dz"):
         kc.build_grids(templates, filters, dz=0.0003)
     sel = templates.wave < 20000.0  # Ks needs rest wavelengths up to ~24000 A at z = 0
     narrow = kc.Templates(wave=templates.wave[sel], flux_lambda=templates.flux_lambda[:, sel],
@@ -645,7 +645,7 @@ def test_rebin_conserves_flux(script):
 
 
 def test_clip_tolerance(grid):
-    # galdist convention (documented in kcorrect.assign): a colour beyond the template
+    # galdist convention (documented in kcorr.assign): a colour beyond the template
     # range by less than clip_tolerance uses the end template without a flag.
     j = 50
     z = np.full(2, grid.z[j])

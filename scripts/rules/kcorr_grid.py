@@ -3,6 +3,6 @@ from galdist import stages
 from galdist.logs import logged
 
 with logged(snakemake.log[0], "K-correction grids") as log:
-    grid = stages.kcorrect_grid(snakemake.config)
+    grid = stages.kcorr_grid(snakemake.config)
     log.info("templates %s; %d redshifts", ", ".join(grid.names), grid.z.size)
     grid.to_file(snakemake.output[0])
