@@ -68,6 +68,17 @@ def workflow_copy(tmp_path):
 VOLATILE_KEYS = {"created_utc", "git_commit"}
 
 
+def file_bytes(path: Path) -> bytes:
+    """A product file's bytes for comparing two runs: the run report's line with the
+    creation time and commit (VOLATILE_KEYS) is left out."""
+    import re
+
+    data = Path(path).read_bytes()
+    if Path(path).name == "report.html":
+        data = re.sub(rb'<p class="muted">created [^<]*</p>', b"", data)
+    return data
+
+
 def drop_volatile(obj):
     """``obj`` (parsed JSON) without the VOLATILE_KEYS, at any depth."""
     if isinstance(obj, dict):

@@ -30,7 +30,7 @@ import pyarrow.parquet as pq
 import pytest
 import yaml
 
-from conftest import REPO, small_catalog, start_and_kill
+from conftest import REPO, file_bytes, small_catalog, start_and_kill
 from galdist import cli, propose
 from test_determinism import assert_same_products
 
@@ -376,13 +376,14 @@ def _start_and_kill(folder: Path, when, log: Path, timeout: float = 300) -> bool
 
 
 def _files(run: Path) -> dict[str, bytes]:
-    """Every product file (not logs, benchmarks, hidden temporary or lock files) and its bytes."""
+    """Every product file (not logs, benchmarks, hidden temporary or lock files) and its
+    bytes, as conftest.file_bytes compares them."""
     out = {}
     for p in sorted(run.rglob("*")):
         rel = p.relative_to(run)
         if p.is_file() and rel.parts[0] not in ("logs", "benchmarks") and not any(
                 part.startswith(".") for part in rel.parts):
-            out[str(rel)] = p.read_bytes()
+            out[str(rel)] = file_bytes(p)
     return out
 
 

@@ -26,7 +26,7 @@ from pathlib import Path
 import pyarrow.parquet as pq
 import pytest
 
-from conftest import REPO, assert_same_table, copy_workflow, drop_volatile, run_snakemake
+from conftest import REPO, assert_same_table, copy_workflow, drop_volatile, file_bytes, run_snakemake
 from galdist import calibration as gcal
 from galdist import config as gconfig
 
@@ -260,7 +260,7 @@ def test_two_runs_give_identical_products(two_runs):
     assert sorted(files_a) == sorted(files_b)
     assert len([f for f in files_a if f.startswith("shards/ingest/")]) == 2
     differ = [rel for rel in files_a if rel not in ("distances.parquet", "summary.json")
-              and files_a[rel].read_bytes() != files_b[rel].read_bytes()]
+              and file_bytes(files_a[rel]) != file_bytes(files_b[rel])]
     assert differ == [], f"files differ between identical runs: {differ}"
     demo_a = dir_a / "results" / "demo-input" / "corvid_reach_survey.parquet"
     demo_b = dir_b / "results" / "demo-input" / "corvid_reach_survey.parquet"

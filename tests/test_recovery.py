@@ -34,7 +34,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from conftest import REPO, copy_workflow, run_snakemake, start_and_kill
+from conftest import REPO, copy_workflow, file_bytes, run_snakemake, start_and_kill
 from galdist import io as gio
 from test_determinism import assert_same_products, product_files
 
@@ -302,7 +302,7 @@ def test_kill_at_every_phase_then_resume_gives_the_clean_products(reference, kil
     assert all(Path(rel).name.startswith(".") for rel in extra), extra
     assert sorted(files_ref) == sorted(set(files_run) - set(extra))
     differ = [rel for rel in files_ref if rel not in ("distances.parquet", "summary.json")
-              and files_ref[rel].read_bytes() != files_run[rel].read_bytes()]
+              and file_bytes(files_ref[rel]) != file_bytes(files_run[rel])]
     assert differ == [], differ
     again = run_snakemake(killed["workdir"], "-n", *ARGS)
     assert "Nothing to be done" in again.stdout + again.stderr
