@@ -239,6 +239,22 @@ def test_ebv_error_is_one_correlated_source(tmp_path):
     assert np.all(np.abs(mc - 0.11533) > 0.015)
 
 
+def test_k_errors_enter_like_the_magnitude_and_colour(tmp_path):
+    """m0 = m - K_mag and c0 = c - (K_blue - K_red) (the K-correction's definition, Hogg et
+    al. 2002, astro-ph/0210394), so with mu = m0 - M(c0): dmu/dK_mag = -1 and
+    dmu/dK_blue = -dmu/dK_red = b1 = 4.5 (Tonry et al. 1997 slope, secondary copy)."""
+    cal = _tmp_calibration(tmp_path, TONRY, name="tonry_exact", coefficient_errors=[0.0, 0.0], scatter=0.0)
+    n = 100
+    base = _tonry_inputs(n, sbf_mag_err=np.zeros(n), sbf_color_err=np.zeros(n), ebv_err=0.0)
+    for key, expected in (("K_mag_err", 0.03), ("K_blue_err", 4.5 * 0.03), ("K_red_err", 4.5 * 0.03)):
+        out = sbf_distance(base | {key: np.full(n, 0.03)}, cal, SBFSettings(mc_draws=1000, mc_seed=4))
+        assert out["sbf_mu_err"] == pytest.approx(np.full(n, expected), rel=1e-12), key
+        assert np.mean(out["sbf_mu_err_mc"]) == pytest.approx(expected, rel=0.03), key
+    # without the K correction its error does not count either
+    off = sbf_distance(base | {"K_mag_err": np.full(n, 0.03)}, cal, SBFSettings(apply_kcorrection=False, mc_draws=0))
+    assert np.all(off["sbf_mu_err"] == 0.0)
+
+
 def test_analytic_matches_monte_carlo_linear():
     # Tonry et al. 1997 (linear, secondary copy): first-order propagation is exact
     cal = load_calibration(TONRY)

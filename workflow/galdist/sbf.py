@@ -73,6 +73,9 @@ INPUTS = {
     "K_mag": (False, "K-correction of the SBF band (needed if apply_kcorrection)"),
     "K_blue": (False, "K-correction of the colour's blue band (needed if apply_kcorrection)"),
     "K_red": (False, "K-correction of the colour's red band (needed if apply_kcorrection)"),
+    "K_mag_err": (False, "error of K_mag (mag; the K stage's template spread); absent = 0"),
+    "K_blue_err": (False, "error of K_blue (mag); absent = 0"),
+    "K_red_err": (False, "error of K_red (mag); absent = 0"),
     "quality_flags": (False, "ingest flags (Quality); SBF_* bits -> MISSING_INPUT"),
     "ext_flags": (False, "extinction flags (Ext) -> HIGH_EXTINCTION (galdist.flags.inherited)"),
     "kcorr_flags": (False, "K-correction flags (KCorr) -> KCORR_PROBLEM (galdist.flags.inherited)"),
@@ -129,10 +132,13 @@ def corrected_magnitudes(sbf_mag, sbf_color, *, A_mag, A_blue, A_red, K_mag=0.0,
     return mag_0, color_0
 
 
-def _modulus_draw(sbf_mag, sbf_color, extinction_draw, scatter_draw, coeff_draw, *, cal, root, corr, a_err):
+def _modulus_draw(sbf_mag, sbf_color, extinction_draw, scatter_draw, coeff_draw, K_mag, K_blue, K_red, *,
+                  cal, root, corr, a_err):
     """mu of one Monte Carlo draw: the same corrections and calibration as the value;
-    ``extinction_draw`` (one standard normal per row) shifts all three A by their errors."""
+    ``extinction_draw`` (one standard normal per row) shifts all three A by their errors;
+    the three K are drawn each within its own error."""
     shifted = {k: corr[k] + extinction_draw * a_err[k] for k in _A_INPUTS}
+    shifted |= {"K_mag": K_mag, "K_blue": K_blue, "K_red": K_red}
     mag_0, color_0 = corrected_magnitudes(sbf_mag, sbf_color, **(corr | shifted))
     shift = coeff_draw @ root.T if root.shape[1] else None
     coeffs = None if shift is None else cal.coefficients + shift
@@ -185,6 +191,7 @@ def sbf_distance(inputs: dict, calibration: Calibration, settings: SBFSettings |
     a_err = {k: _valid_err(col.get(f"{k}_err", zeros))[0] for k in _A_INPUTS}
     kcorr_on = settings.apply_kcorrection
     K = {k: (col[k] if kcorr_on else zeros) for k in _K_INPUTS}
+    k_err = {k: (_valid_err(col.get(f"{k}_err", zeros))[0] if kcorr_on else zeros) for k in _K_INPUTS}
     corr = {k: col[k] for k in _A_INPUTS} | K | dict(mag_offset=float(settings.mag_offset),
                                                      color_offset=float(settings.color_offset))
 
@@ -214,7 +221,9 @@ def sbf_distance(inputs: dict, calibration: Calibration, settings: SBFSettings |
     # --- analytic error ------------------------------------------------------------
     slope = calibration.relation_slope(color_0)
     extinction_term = -a_err["A_mag"] + slope * (a_err["A_blue"] - a_err["A_red"])  # dmu/dE sigma_E
-    mu_err = quadrature(m_err, slope * c_err, extinction_term, calibration.scatter,
+    # K enters like A: mu = m0 - M(c0), m0 = m - K_mag, c0 = c - (K_blue - K_red)
+    k_terms = (k_err["K_mag"], slope * k_err["K_blue"], slope * k_err["K_red"])
+    mu_err = quadrature(m_err, slope * c_err, extinction_term, *k_terms, calibration.scatter,
                         np.sqrt(np.maximum(calibration.relation_variance(color_0), 0.0)),
                         calibration.zero_point_error)
     good = np.isfinite(mu)
@@ -225,10 +234,10 @@ def sbf_distance(inputs: dict, calibration: Calibration, settings: SBFSettings |
         root = calibration.covariance_root()
         with_error = (a_err["A_mag"] > 0) | (a_err["A_blue"] > 0) | (a_err["A_red"] > 0)
         values = {"sbf_mag": m, "sbf_color": c, "extinction_draw": zeros, "scatter_draw": zeros,
-                  "coeff_draw": np.zeros((n, root.shape[1]))}
+                  "coeff_draw": np.zeros((n, root.shape[1]))} | K
         sigmas = {"sbf_mag": m_err, "sbf_color": c_err, "extinction_draw": np.where(with_error, 1.0, 0.0),
                   "scatter_draw": math.hypot(calibration.scatter, calibration.zero_point_error),
-                  "coeff_draw": 1.0}
+                  "coeff_draw": 1.0} | k_err
         _, mu_err_mc = monte_carlo(_modulus_draw, values, sigmas, n_draws=int(settings.mc_draws),
                                    seed=int(settings.mc_seed),
                                    fixed={"cal": calibration, "root": root, "corr": corr, "a_err": a_err})
