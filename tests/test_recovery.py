@@ -153,7 +153,7 @@ def test_mu_grid_is_written_atomically(tmp_path, monkeypatch):
     assert list(tmp_path.iterdir()) == []
 
 
-def test_kcorrect_grid_is_written_atomically(tmp_path, monkeypatch):
+def test_kcorr_grid_is_written_atomically(tmp_path, monkeypatch):
     from galdist import kcorr
     grid = kcorr.KGrid(z=np.linspace(0.0, 0.2, 3), k={"V": np.zeros((1, 3))}, names=("flat",))
     monkeypatch.setattr(np, "savez_compressed", _partial_write_then_fail)

@@ -162,10 +162,11 @@ def test_every_job_was_a_slurm_job(runs):
     assert set(jobs) == set(submitted), (jobs, submitted)
     assert all(j["state"] == "COMPLETED" for j in jobs.values()), jobs
     kinds = sorted(submitted.values())
-    # One job per shard for the shard's chain, one per shard for redshift, one for assemble + plots.
-    assert kinds.count("group_shard_distance_extinction_kcorrect") == 2, kinds
+    # One job per shard for the shard's chain, one per shard for redshift, one for assemble,
+    # plots and the run report.
+    assert kinds.count("group_shard_distance_extinction_kcorr") == 2, kinds
     assert kinds.count("rule_redshift") == 2, kinds
-    assert kinds.count("group_product_assemble_plots") == 1, kinds
+    assert kinds.count("group_product_assemble_plots_run_report") == 1, kinds
     for rule in ("demo_catalog", "ingest", "mu_grid", "extinction_coefficients", "kcorr_grid",
                  "crosscheck_statistics"):
         assert kinds.count(f"rule_{rule}") == 1, (rule, kinds)
@@ -180,7 +181,7 @@ def test_profile_resources_reach_sbatch(runs):
     # A shard's job runs its four jobs one after the other on one core (cores: 1): the
     # memory of the largest, the sum of their wall times (extinction 10 + kcorr 10 +
     # one distance job per method, 15 + 15 min).
-    for job in by_kind["group_shard_distance_extinction_kcorrect"]:
+    for job in by_kind["group_shard_distance_extinction_kcorr"]:
         assert (job["cpus"], job["min_memory"], job["time_limit"]) == ("1", "2000M", "50:00"), job
     for job in by_kind["rule_redshift"]:
         assert (job["cpus"], job["min_memory"], job["time_limit"]) == ("1", "2000M", "10:00"), job
@@ -188,8 +189,9 @@ def test_profile_resources_reach_sbatch(runs):
     # time that scales with their input's size; a small demo gets the floor.
     (ingest,) = by_kind["rule_ingest"]
     assert (ingest["min_memory"], ingest["time_limit"]) == ("2000M", "15:00"), ingest
-    (assemble,) = by_kind["group_product_assemble_plots"]
-    assert (assemble["min_memory"], assemble["time_limit"]) == ("2000M", "30:00"), assemble
+    # assemble 15 + plots 15 + report 10 min, the largest memory of the three
+    (assemble,) = by_kind["group_product_assemble_plots_run_report"]
+    assert (assemble["min_memory"], assemble["time_limit"]) == ("2000M", "40:00"), assemble
 
 
 def _controller_events(log: str) -> list[tuple[datetime, str, str]]:

@@ -10,7 +10,7 @@ from snakemake.exceptions import WorkflowError
 
 from galdist import config as gconfig
 from galdist import integrity, preflight
-from galdist import kcorr as gkcorrect
+from galdist import kcorr as gkcorr
 from galdist.methods import REGISTRY, plot_names, prefixes
 
 DEMO_CATALOG = "results/demo-input/corvid_reach_survey.parquet"
@@ -56,7 +56,7 @@ def content_digest(paths):
 
 CATALOG_DIGEST = ("built by the workflow" if CATALOG_PATHS == [DEMO_CATALOG]
                   else content_digest(CATALOG_PATHS))
-TEMPLATES_DIGEST = content_digest([config["kcorr"]["templates"] or gkcorrect.DEFAULT_TEMPLATE_FILE])
+TEMPLATES_DIGEST = content_digest([config["kcorr"]["templates"] or gkcorr.DEFAULT_TEMPLATE_FILE])
 MAPS_DIGEST = content_digest(EXTINCTION_MAPS)
 FILTERS_DIGEST = content_digest([b["filter"] for b in config["bands"].values() if Path(b["filter"]).is_file()])
 # a missing, truncated or replaced ingest shard: ingest runs again, and everything after
