@@ -172,8 +172,8 @@ def test_hubble_statistics_clipping_outliers_and_cuts(grid):
     assert stats["n_candidates"] == n - 20
     assert stats["n_usable"] == n - 20 - 10
     assert stats["n_clipped"] >= 40
-    assert stats["h0_implied"] == pytest.approx(75.0, abs=3 * stats["h0_implied_err"])
-    assert 0.2 < stats["h0_implied_err"] < 0.6   # ~ 75 x 0.46 x 0.35 / sqrt(1930)
+    assert stats["h0_implied"] == pytest.approx(75.0, abs=3 * stats["h0_implied_err_stat"])
+    assert 0.2 < stats["h0_implied_err_stat"] < 0.6   # ~ 75 x 0.46 x 0.35 / sqrt(1930)
     assert stats["std"] == pytest.approx(0.35, rel=0.06)
     # the sample keeps values and errors as float32 (7 significant digits)
     assert stats["rms_expected_err"] == pytest.approx(np.sqrt(0.35**2 + 0.02**2), rel=1e-6)
@@ -250,9 +250,9 @@ def test_collected_sample_statistics_do_not_depend_on_sharding(grid):
     n = len(z)
     rng = np.random.default_rng(3)
     cols = {"z_cmb": z, "z_cmb_err": np.full(n, 1e-4), "mu_z": mu_z, "mu_z_err": np.full(n, 0.02),
-            "z_flags": flags.new(n), "tf_mu": mu, "tf_mu_err": err, "tf_flags": flags.new(n),
+            "z_flags": flags.new(n), "tf_mu": mu, "tf_mu_err": err, "tf_mu_err_sys": np.full(n, 0.05), "tf_flags": flags.new(n),
             "sbf_mu": np.where(np.arange(n) % 3 == 0, mu + 0.05 + rng.normal(0, 0.1, n), np.nan),
-            "sbf_mu_err": np.full(n, 0.1), "sbf_flags": flags.new(n)}
+            "sbf_mu_err": np.full(n, 0.1), "sbf_mu_err_sys": np.full(n, 0.07), "sbf_flags": flags.new(n)}
     whole = sample_statistics(collect_samples([method_sample(cols)]), n, 70.0)
     parts = [method_sample({k: v[i:i + 333] for k, v in cols.items()}) for i in range(0, n, 333)]
     sharded = sample_statistics(collect_samples(parts), n, 70.0)
@@ -260,7 +260,7 @@ def test_collected_sample_statistics_do_not_depend_on_sharding(grid):
         assert sharded[group].keys() == whole[group].keys()
         for name in whole[group]:
             assert sharded[group][name] == pytest.approx(whole[group][name], rel=1e-12)
-    assert whole["methods"]["tf"]["h0_implied"] == pytest.approx(72.0, abs=3 * whole["methods"]["tf"]["h0_implied_err"])
+    assert whole["methods"]["tf"]["h0_implied"] == pytest.approx(72.0, abs=3 * whole["methods"]["tf"]["h0_implied_err_stat"])
     assert whole["pairs"]["tf-sbf"]["median"] == pytest.approx(-0.05, abs=0.02)
 
 
@@ -271,7 +271,7 @@ def _tf_only_columns(grid, n=400, seed=5):
     mu_z = grid.mu(z)
     return {"z_cmb": z, "z_cmb_err": np.full(n, 1e-4), "mu_z": mu_z, "mu_z_err": np.full(n, 0.02),
             "z_flags": flags.new(n), "tf_mu": mu_z + 0.2 + rng.normal(0, 0.3, n),
-            "tf_mu_err": np.full(n, 0.3), "tf_flags": flags.new(n)}
+            "tf_mu_err": np.full(n, 0.3), "tf_mu_err_sys": np.zeros(n), "tf_flags": flags.new(n)}
 
 
 def test_one_method_statistics_from_a_spill(grid, tmp_path):
@@ -323,20 +323,28 @@ def test_best_distance_with_one_method(grid):
     assert not any(k.startswith("sbf_") for k in out)
 
 def test_best_distance_inverse_variance():
-    mu_tf = np.array([33.0, 33.0, 33.0, np.nan, 33.0])
-    mu_sbf = np.array([33.2, 33.2, np.nan, np.nan, 33.2])
-    f_tf = np.array([0, int(Method.OUTLIER), 0, 0, int(Method.LOCAL_FLOW)], dtype=np.uint32)
-    f_sbf = flags.new(5)
-    out = best_distance({"tf": (mu_tf, np.full(5, 0.4), f_tf), "sbf": (mu_sbf, np.full(5, 0.1), f_sbf)})
+    mu_tf = np.array([33.0, 33.0, 33.0, np.nan, 33.0, 33.0])
+    mu_sbf = np.array([33.2, 33.2, np.nan, np.nan, 33.2, 33.2])
+    f_tf = np.array([0, int(Method.HIGH_EXTINCTION), 0, 0, int(Method.LOCAL_FLOW), int(Method.OUTLIER)],
+                    dtype=np.uint32)
+    f_sbf = flags.new(6)
+    out = best_distance({"tf": (mu_tf, np.full(6, 0.4), f_tf, np.full(6, 0.07)),
+                         "sbf": (mu_sbf, np.full(6, 0.1), f_sbf, np.full(6, 0.05))})
     w = np.array([1 / 0.4**2, 1 / 0.1**2])
     assert out["mu_best"][0] == pytest.approx((33.0 * w[0] + 33.2 * w[1]) / w.sum(), rel=1e-12)
     assert out["mu_best_err"][0] == pytest.approx(1 / np.sqrt(w.sum()), rel=1e-12)
+    # independent calibrations: sigma_sys = sqrt((w_tf 0.07)^2 + (w_sbf 0.05)^2) / (w_tf + w_sbf)
+    # = sqrt(0.4375^2 + 5^2) / 106.25 = 5.0191044 / 106.25 = 0.0472386 (hand arithmetic)
+    assert out["mu_best_err_sys"][0] == pytest.approx(0.0472386, abs=1e-7)
     assert out["mu_best"][1] == 33.2 and out["mu_best_err"][1] == pytest.approx(0.1)
+    assert out["mu_best_err_sys"][1] == pytest.approx(0.05)
     assert out["mu_best"][2] == 33.0
-    assert np.isnan(out["mu_best"][3]) and np.isnan(out["mu_best_err"][3])
-    assert out["best_method"].to_pylist() == ["tf+sbf", "sbf", "tf", "", "tf+sbf"]
+    assert np.isnan(out["mu_best"][3]) and np.isnan(out["mu_best_err"][3]) and np.isnan(out["mu_best_err_sys"][3])
+    # LOCAL_FLOW and OUTLIER leave the distance usable (the flag stays on tf_flags)
+    assert out["best_method"].to_pylist() == ["tf+sbf", "sbf", "tf", "", "tf+sbf", "tf+sbf"]
+    assert out["mu_best"][5] == out["mu_best"][0]
     with pytest.raises(ValueError, match="crosscheck.best_ignore_flags.*LOCAL_FLOW"):
-        best_distance({"tf": (mu_tf, np.full(5, 0.4), f_tf)}, ignore_flags=("LOCAL_FLOWS",))
+        best_distance({"tf": (mu_tf, np.full(6, 0.4), f_tf)}, ignore_flags=("LOCAL_FLOWS",))
 
 
 # ---------------------------------------------------------------- driver
@@ -356,8 +364,8 @@ def test_crosscheck_driver_any_methods(cosmo, grid):
     fp = mu + 0.05 + np.random.default_rng(2).normal(0, 0.1, n)
     fp[10] -= 3.0                                                # FP fine where TF is off
     cols = {"z_cmb": z, "z_cmb_err": np.full(n, 1e-4), "mu_z": mu_z, "mu_z_err": np.full(n, 0.05),
-            "z_flags": z_flags, "tf_mu": mu, "tf_mu_err": err, "tf_flags": stale,
-            "fp_mu": fp, "fp_mu_err": err, "fp_flags": flags.new(n)}
+            "z_flags": z_flags, "tf_mu": mu, "tf_mu_err": err, "tf_mu_err_sys": np.zeros(n), "tf_flags": stale,
+            "fp_mu": fp, "fp_mu_err": err, "fp_mu_err_sys": np.zeros(n), "fp_flags": flags.new(n)}
     # any prefix, registered or not (fp is not yet); a method without columns (sbf) is skipped
     out, summary = crosscheck(cols, grid, methods=("tf", "sbf", "fp"))
     for m in ("tf", "fp"):
@@ -374,5 +382,5 @@ def test_crosscheck_driver_any_methods(cosmo, grid):
     assert summary["pairs"]["tf-fp"]["n_clipped"] >= 1                 # row 10 at least
     assert sum(summary["best"].values()) == n
     assert out["best_method"][0].as_py() == "tf+fp"  # LOCAL_FLOW does not disqualify a distance
-    assert out["best_method"][10].as_py() == "fp"    # the TF outlier does
+    assert out["best_method"][10].as_py() == "tf+fp"  # nor does a Hubble-flow outlier (flagged, kept)
     json.dumps(summary, allow_nan=False)

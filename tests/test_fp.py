@@ -6,9 +6,8 @@ The simulated planes below are generated forward from the published definitions
 (the test writes its own axes, corrections and selection), then inverted by the
 module.
 
-Calibrations are built directly as ``Calibration`` objects (from the pending YAML
-files, parsed here with yaml.safe_load), so these tests do not depend on the
-calibration schema learning method 'fp'.
+Calibrations go through the loader and the calibration schema: the shipped files by
+name, the test planes from a mapping written to a temporary file.
 """
 
 from __future__ import annotations
@@ -17,22 +16,20 @@ import dataclasses
 import math
 from pathlib import Path
 
-import jsonschema
 import numpy as np
 import pytest
 import yaml
 
 from galdist import flags as F
-from galdist.calibration import Calibration
+from galdist.methods import REGISTRY
+from galdist.calibration import Calibration, calibration_from_mapping, load_calibration
 from galdist.fp import (
-    INPUTS, OUTPUT_COLUMNS, OUTPUT_UNITS, FPSettings, aperture_corrected_sigma, bivariate_upper,
+    INPUTS, FPSettings, aperture_corrected_sigma, bivariate_upper,
     check_calibration, eta_posterior, fp_distance, log_surface_intensity, mean_surface_brightness,
     plane_covariance, slit_aperture_radius, surface_brightness_dimming,
 )
 
 REPO = Path(__file__).resolve().parent.parent
-DATA = REPO / "workflow" / "galdist" / "data"
-SCHEMA_PATH = REPO / "workflow" / "schemas" / "calibration.schema.yaml"
 LN10 = math.log(10.0)
 ARCSEC = 206264.806247  # arcsec per radian, 648000 / pi (definition)
 SB_UNIT = 21.572125666  # 5 log10(206264.806 / 10): mu of 1 L_sun/pc^2 minus M_sun (definitions)
@@ -48,83 +45,24 @@ SIGMA_R_J = 0.10734953      # 0.053 * sqrt(1 + 1.52^2 + 0.89^2) = 0.053 * 2.0254
 ALPHA = 0.04                 # Jorgensen, Franx & Kjaergaard 1995, MNRAS 276, 1341: sigma ~ r^-0.04
 H0_RUN = 70.0                # the run's H0 in these tests (a convention, not a measurement)
 
-# Schema additions this module needs (the reply to the brief lists the same; a test below
-# checks that the pending files validate against the current schema plus exactly these).
-PLANE_SCHEMA = {
-    "type": "object", "additionalProperties": False, "required": ["abs_mag_sun", "hubble_constant"],
-    "description": "FP only: the terms a plane calibration adds (galdist.fp.PlaneTerms)",
-    "properties": {
-        "abs_mag_sun": {"type": "number", "minimum": -10, "maximum": 20},
-        "hubble_constant": {"type": ["number", "null"], "exclusiveMinimum": 0, "maximum": 1000},
-        "pivot_log_ie": {"type": "number", "minimum": -10, "maximum": 10},
-        "log_ie_range": {"type": "array", "items": {"type": "number", "minimum": -10, "maximum": 10},
-                         "minItems": 2, "maxItems": 2},
-        "aperture_exponent": {"type": "number", "minimum": 0, "maximum": 0.5},
-        "aperture_fraction": {"type": "number", "exclusiveMinimum": 0, "maximum": 1},
-        "gaussian": {
-            "type": "object", "additionalProperties": False,
-            "required": ["mean_log_sigma", "mean_log_ie", "sigmas"],
-            "properties": {
-                "mean_log_sigma": {"type": "number", "minimum": -10, "maximum": 10},
-                "mean_log_ie": {"type": "number", "minimum": -10, "maximum": 10},
-                "sigmas": {"type": "array", "items": {"type": "number", "exclusiveMinimum": 0, "maximum": 5},
-                           "minItems": 3, "maxItems": 3},
-            },
-        },
-    },
-}
-
-
-def _extended_schema():
-    schema = yaml.safe_load(SCHEMA_PATH.read_text())
-    props = schema["properties"]
-    for key, value in (("method", "fp"), ("form", "plane")):
-        if "enum" in props[key] and value not in props[key]["enum"]:
-            props[key]["enum"] = list(props[key]["enum"]) + [value]
-    props.setdefault("plane", PLANE_SCHEMA)
-    return schema
-
-
-def _calibration_file(name: str) -> Path:
-    """A shipped FP file: in calibrations/ once the schema knows 'fp', pending until then."""
-    for folder in ("calibrations", "calibrations_pending"):
-        path = DATA / folder / f"{name}.yaml"
-        if path.is_file():
-            return path
-    raise FileNotFoundError(name)
-
-
-def _from_mapping(data: dict, text: str = "", path: str = "") -> Calibration:
-    """The Calibration the loader builds from a file's mapping (test fixture)."""
-    coeffs = np.asarray(data["coefficients"], dtype=float)
-    cov = (np.asarray(data["covariance"], dtype=float) if "covariance" in data
-           else np.diag(np.asarray(data["coefficient_errors"], dtype=float) ** 2))
-    return Calibration(
-        name=data["name"], method=data["method"], form=data["form"], band=data["band"], system=data["system"],
-        predictor=data["predictor"], pivot=float(data["pivot"]), coefficients=coeffs, covariance=cov,
-        scatter=float(data["scatter"]), valid_range=tuple(data["valid_range"]), reference=data["reference"],
-        provenance=data["provenance"], zero_point_error=float(data.get("zero_point_error", 0.0)),
-        notes=data.get("notes", ""), path=path, text=text or yaml.safe_dump(data))
-
-
 def _shipped(name: str) -> Calibration:
-    path = _calibration_file(name)
-    text = path.read_text()
-    return _from_mapping(yaml.safe_load(text), text, str(path))
+    """A shipped FP calibration, through the loader and the calibration schema."""
+    return load_calibration(name)
 
 
-def _plane_cal(*, cov=None, scatter=SIGMA_R_J, valid_range=(1.0, 3.5), plane_extra=None, **changes):
-    """J-band-like plane (Magoulas et al. 2012 numbers, from memory) with test-chosen errors/ranges."""
-    plane = {"abs_mag_sun": M_SUN_J, "hubble_constant": 100, "pivot_log_ie": I_BAR,
+def _plane_cal(*, cov=None, scatter=SIGMA_R_J, valid_range=(1.0, 3.5), plane_extra=None, h0=100.0, **changes):
+    """J-band-like plane (Magoulas et al. 2012 numbers, from memory) with test-chosen errors/ranges;
+    ``h0``: the H0 its sizes assume (None: absolute sizes)."""
+    plane = {"abs_mag_sun": M_SUN_J, "pivot_log_ie": I_BAR,
              "gaussian": {"mean_log_sigma": S_BAR, "mean_log_ie": I_BAR, "sigmas": list(SIGMAS_J)}}
     plane.update(plane_extra or {})
     data = {"name": "fp_test", "method": "fp", "form": "plane", "band": "2MASS J", "system": "Vega",
             "predictor": "log_sigma", "pivot": S_BAR, "coefficients": [A_J, B_J, C_PIVOT_J],
             "coefficient_errors": [0.0, 0.0, 0.0], "scatter": scatter, "valid_range": list(valid_range),
             "reference": {"authors": "test", "year": 2012, "journal": "test"}, "provenance": "test",
-            "plane": plane}
+            "plane": plane, "conventions": {"extinction": "sfd98", "zero_point_h0": h0}}
     data.update(changes)
-    cal = _from_mapping(data)
+    cal = calibration_from_mapping(data)
     if cov is not None:
         cal = dataclasses.replace(cal, covariance=np.asarray(cov, dtype=float))
     return cal
@@ -253,26 +191,28 @@ def test_worked_example_j_band():
     #  sigma_log theta = 0.4 / (6 ln10) = 0.0289530 ; sigma_log sigma = 9 / (180 ln10) = 0.0217147
     #  measurement: (1.0608*0.0289530)^2 + (1.52*0.0217147)^2 + (0.356*0.08)^2
     #             + 2*1.0608*(-0.356)*0.8*0.0289530*0.08 + 0.356^2 (0.01^2 + 0.02^2) = 0.00150766
-    #  coefficients (diagonal 0.03, 0.01, 0.01 of the file): 0.0932718^2 * 0.03^2
-    #             + 0.0401992^2 * 0.01^2 + 0.01^2 = 0.00010799
-    #  scatter 0.107^2 (the file) -> eta_err = sqrt(0.00150766 + 0.00010799 + 0.011449) = 0.1143007
-    assert out["fp_eta_err"][0] == pytest.approx(0.1143007, abs=1e-6)
-    assert out["fp_mu_err"][0] == pytest.approx(5 * 0.1143007, abs=5e-6)
-    # sigma_d = d ln10/5 sigma_mu = 96.570892 * 0.4605170 * 0.5715036 = 25.41622 Mpc
-    assert out["fp_d_err_mpc"][0] == pytest.approx(25.41622, abs=1e-4)
+    #  scatter 0.107^2 (the file) -> random eta_err = sqrt(0.00150766 + 0.011449) = 0.1138273
+    assert out["fp_eta_err"][0] == pytest.approx(0.1138273, abs=1e-6)
+    assert out["fp_mu_err"][0] == pytest.approx(5 * 0.1138273, abs=5e-6)
+    #  systematic, the coefficients (diagonal 0.03, 0.01, 0.01 of the file): 0.0932718^2 * 0.03^2
+    #             + 0.0401992^2 * 0.01^2 + 0.01^2 = 0.00010799 -> 5 sqrt(0.00010799) = 0.0519591 mag
+    assert out["fp_mu_err_sys"][0] == pytest.approx(0.0519591, abs=5e-6)
+    # sigma_d = d ln10/5 sigma_mu (random) = 96.570892 * 0.4605170 * 0.5691366 = 25.31095 Mpc
+    assert out["fp_d_err_mpc"][0] == pytest.approx(25.31095, abs=1e-4)
     assert out["fp_flags"][0] == 0
     assert np.isnan(out["fp_eta_post_std"][0]) and np.isnan(out["fp_mu_err_mc"][0])
-    # the R_e - <mu_e> error correlation matters: without it 0.1202672 (same hand sum, no cross term)
+    # the R_e - <mu_e> error correlation matters: without it 0.1198174 (same hand sum, no cross
+    # term 2*1.0608*(-0.356)*0.8*0.0289530*0.08 = -0.0013995)
     no_corr = fp_distance(_worked_inputs(fp_re_mu_corr=np.array([0.0])), cal, NO_MC)
-    assert no_corr["fp_eta_err"][0] == pytest.approx(0.1202672, abs=1e-6)
-    assert set(out) == set(OUTPUT_COLUMNS) == set(OUTPUT_UNITS)
+    assert no_corr["fp_eta_err"][0] == pytest.approx(0.1198174, abs=1e-6)
+    assert set(out) == set(REGISTRY['fp'].output_units())
 
 
 def test_worked_example_monte_carlo():
     # the Monte Carlo of the worked galaxy re-runs the chain: 4000 draws, noise ~1.1 % (common practice)
     cal = _shipped("fp_j_magoulas_2012")
     out = fp_distance(_worked_inputs(), cal, FPSettings(mc_draws=4000, mc_seed=3, hubble_constant=H0_RUN))
-    assert out["fp_mu_err_mc"][0] == pytest.approx(0.5715036, rel=0.04)
+    assert out["fp_mu_err_mc"][0] == pytest.approx(0.5691366, rel=0.04)  # the random part, worked example
     again = fp_distance(_worked_inputs(), cal, FPSettings(mc_draws=4000, mc_seed=3, hubble_constant=H0_RUN))
     assert again["fp_mu_err_mc"][0] == out["fp_mu_err_mc"][0]  # seeded
 
@@ -297,7 +237,7 @@ def test_hubble_constant_convention():
     # sizes in h^-1 kpc (H0 = 100) read at a run H0 of 70 are 100/70 times larger, so is D
     # (distance ~ 1/H0, common practice); eta does not depend on the run's H0 when mu_z uses it too
     h100 = _plane_cal()
-    absolute = _plane_cal(plane_extra={"hubble_constant": None})
+    absolute = _plane_cal(h0=None)
     inp = _worked_inputs()
     d_h = fp_distance(inp, h100, NO_MC)["fp_d_mpc"][0]
     d_abs = fp_distance(inp, absolute, NO_MC)["fp_d_mpc"][0]
@@ -329,15 +269,11 @@ def test_shipped_r_band_reproduces_published_form():
 
 
 # ----------------------------------------------------------------------------------------
-# Shipped (pending) calibration files
+# Shipped calibration files
 # ----------------------------------------------------------------------------------------
 
 @pytest.mark.parametrize("name", ["fp_j_magoulas_2012", "fp_r_bernardi_2003"])
-def test_pending_files_validate_with_the_proposed_schema_additions(name):
-    path = _calibration_file(name)
-    data = yaml.safe_load(path.read_text())
-    errors = list(jsonschema.Draft202012Validator(_extended_schema()).iter_errors(data))
-    assert errors == [], [e.message for e in errors]
+def test_shipped_files_load_as_planes(name):
     cal = _shipped(name)
     terms = check_calibration(cal)
     assert "from memory" in cal.provenance
@@ -612,7 +548,7 @@ def test_impossible_inputs_are_missing_input():
     for key in ("fp_eta", "fp_eta_err", "fp_mu", "fp_mu_err", "fp_d_mpc", "fp_d_err_mpc"):
         assert np.isnan(out[key][:8]).all() and np.isfinite(out[key][8])
     assert F.has(out["fp_flags"], F.Method.HIGH_EXTINCTION)[7]   # no A: extinction unknown
-    assert all(len(out[k]) == 9 for k in OUTPUT_COLUMNS)
+    assert all(len(out[k]) == 9 for k in REGISTRY['fp'].output_units())
 
 
 def test_correlation_set_must_be_a_valid_matrix():
@@ -689,11 +625,12 @@ def test_all_nan_shard_and_scalars():
 
 def test_malmquist_plane_only():
     # homogeneous Malmquist, mean: exp(3.5 Delta^2), Delta = ln10/5 sigma_mu (Lynden-Bell et al.
-    # 1988, from memory): sigma_mu = 0.5715036 -> Delta = 0.2631871, factor exp(0.2424363) = 1.2743498
+    # 1988, from memory) of the random error: sigma_mu = 0.5691366 -> Delta = 0.2620971,
+    # factor exp(0.2404321) = 1.2717986
     cal = _shipped("fp_j_magoulas_2012")
     out = fp_distance(_worked_inputs(), cal, FPSettings(mc_draws=0, hubble_constant=H0_RUN, malmquist=True))
     assert out["fp_malmquist_applied"][0]
-    assert out["fp_d_mpc"][0] == pytest.approx(96.570892 * 1.2743498, rel=1e-6)
+    assert out["fp_d_mpc"][0] == pytest.approx(96.570892 * 1.2717986, rel=1e-6)
     with pytest.raises(ValueError, match="malmquist"):
         FPSettings(estimator="gaussian", malmquist=True)
 

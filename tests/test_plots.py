@@ -30,6 +30,7 @@ scatter: 0.4
 valid_range: [2.0, 2.9]
 reference: {authors: "synthetic", year: 2024, journal: "test fixture"}
 provenance: "synthetic test values, not a published calibration"
+conventions: {extinction: sf11, zero_point_h0: null}
 """
 
 # Tonry et al. 1997, ApJ 475, 399: M_I = -1.74 + 4.5 [(V-I)_0 - 1.15], 1.0 < (V-I)_0 < 1.3
@@ -49,6 +50,7 @@ scatter: 0.08
 valid_range: [1.0, 1.3]
 reference: {authors: "Tonry, Blakeslee, Ajhar & Dressler", year: 1997, journal: "ApJ 475, 399"}
 provenance: "secondary copy"
+conventions: {extinction: sfd98, zero_point_h0: null}
 """
 
 COLUMNS = ["z_cmb", "mu_z", "mu_z_err", "gal_l", "gal_b",
@@ -82,10 +84,10 @@ def _frame(grid, n=150, seed=1):
     return pd.DataFrame({
         "z_cmb": z, "mu_z": mu_z, "mu_z_err": np.full(n, 0.1),
         "gal_l": rng.uniform(0, 360, n), "gal_b": np.degrees(np.arcsin(rng.uniform(-1, 1, n))),
-        "tf_mu": tf_mu, "tf_mu_err": np.full(n, 0.4), "tf_flags": tf_flags,
+        "tf_mu": tf_mu, "tf_mu_err": np.full(n, 0.4), "tf_mu_err_sys": np.full(n, 0.07), "tf_flags": tf_flags,
         "tf_logw_i": logw, "tf_mag_corr": mu_z - 21.0 - 8.0 * (logw - 2.5) + rng.normal(0, 0.4, n),
         "tf_dmu": tf_mu - mu_z, "tf_vpec": rng.normal(0, 400, n),
-        "sbf_mu": sbf_mu, "sbf_mu_err": np.full(n, 0.1), "sbf_flags": sbf_flags,
+        "sbf_mu": sbf_mu, "sbf_mu_err": np.full(n, 0.1), "sbf_mu_err_sys": np.full(n, 0.07), "sbf_flags": sbf_flags,
         "sbf_color_0": col, "sbf_mag_0": mu_z - 1.74 + 4.5 * (col - 1.15) + rng.normal(0, 0.1, n),
         "sbf_dmu": sbf_mu - mu_z, "sbf_vpec": np.where(np.isfinite(sbf_mu), rng.normal(0, 300, n), np.nan),
     })

@@ -24,7 +24,7 @@ SUMMARY = {
     "statistics": {
         "methods": {"tf": {"n_used": 384, "n_measured": 513, "wmean": 0.0062, "wmean_err": 0.0223, "median": -0.0063,
                            "median_err": 0.0266, "std": 0.4153, "rms_expected_err": 0.4381, "chi2_nu": 0.90,
-                           "h0_implied": 69.80, "h0_implied_err": 0.72},
+                           "h0_implied": 69.80, "h0_implied_err_stat": 0.72, "h0_implied_err_sys": 2.3},
                     "sbf": {"n_used": 293, "n_measured": 299, "wmean": -0.0066, "wmean_err": 0.0090}},
         "pairs": {"tf-sbf": {"n_used": 19, "wmean": 0.0006, "wmean_err": 0.105}},
     },

@@ -14,9 +14,10 @@ import pytest
 import yaml
 
 from galdist import flags as F
+from galdist.methods import REGISTRY
 from galdist.calibration import load_calibration
 from galdist.photometry import color_system_offset, system_offset
-from galdist.sbf import INPUTS, OUTPUT_COLUMNS, SBFSettings, check_calibration, sbf_distance
+from galdist.sbf import INPUTS, SBFSettings, check_calibration, sbf_distance
 
 CAL_DIR = Path(__file__).resolve().parent.parent / "workflow" / "galdist" / "data" / "calibrations"
 TONRY = CAL_DIR / "sbf_tonry1997_cousins_i.yaml"
@@ -124,19 +125,20 @@ def test_worked_example_tonry():
     assert out["sbf_abs_mag"][0] == pytest.approx(-1.883325, abs=1e-12)
     # mu = 29.41475 + 1.883325 = 31.298075
     assert out["sbf_mu"][0] == pytest.approx(31.298075, abs=1e-12)
-    # sigma^2 = 0.05^2                              (m)        = 0.0025
+    # random: sigma^2 = 0.05^2                      (m)        = 0.0025
     #         + (4.5 * 0.02)^2                      (colour)   = 0.0081
     #         + ((-1.505 + 4.5*1.237) * 0.008)^2    (E(B-V), one source) = 0.032492^2 = 0.001055730064
     #         + 0.05^2                              (scatter)  = 0.0025
-    #         + 0.07^2 + (0.25 * -0.03185)^2        (coeffs)   = 0.00496340140625
-    #         = 0.01911913147025
-    assert out["sbf_mu_err"][0] == pytest.approx(math.sqrt(0.01911913147025), abs=1e-12)
-    assert out["sbf_mu_err"][0] == pytest.approx(0.1382719, abs=1e-7)
-    # d = 10^((31.298075 - 25)/5) Mpc = 18.1808842 ; sigma_d = d ln10/5 sigma_mu = 1.1576966
+    #         = 0.014155730064
+    assert out["sbf_mu_err"][0] == pytest.approx(math.sqrt(0.014155730064), abs=1e-12)
+    assert out["sbf_mu_err"][0] == pytest.approx(0.1189779, abs=1e-7)
+    # systematic: 0.07^2 + (0.25 * -0.03185)^2 (coefficients) = 0.00496340140625 -> 0.0704514
+    assert out["sbf_mu_err_sys"][0] == pytest.approx(math.sqrt(0.00496340140625), abs=1e-12)
+    # d = 10^((31.298075 - 25)/5) Mpc = 18.1808842 ; sigma_d = d ln10/5 sigma_mu (random) = 0.9961548
     assert out["sbf_d_mpc"][0] == pytest.approx(18.1808842, abs=1e-6)
-    assert out["sbf_d_err_mpc"][0] == pytest.approx(1.1576966, abs=1e-6)
-    # Monte Carlo of the same galaxy: 4000 draws, relative noise ~1/sqrt(8000) = 1.1%
-    assert out["sbf_mu_err_mc"][0] == pytest.approx(0.1382719, rel=0.05)
+    assert out["sbf_d_err_mpc"][0] == pytest.approx(0.9961548, abs=1e-6)
+    # Monte Carlo of the random part: 4000 draws, relative noise ~1/sqrt(8000) = 1.1%
+    assert out["sbf_mu_err_mc"][0] == pytest.approx(0.1189779, rel=0.05)
     assert out["sbf_flags"][0] == 0
     assert not out["sbf_malmquist_applied"][0]
 
@@ -188,7 +190,7 @@ def test_out_of_range_flagged_not_extrapolated():
         assert np.isfinite(out[key][1:4]).all()
     # rows stay, and the corrected colour is still reported
     assert out["sbf_color_0"] == pytest.approx(colors)
-    assert all(len(out[k]) == 5 for k in OUTPUT_COLUMNS)
+    assert all(len(out[k]) == 5 for k in REGISTRY['sbf'].output_units())
 
     ext = sbf_distance(inputs, cal, SBFSettings(mc_draws=0, allow_extrapolation=True))
     extrap = F.has(ext["sbf_flags"], F.Method.EXTRAPOLATED)
@@ -395,7 +397,7 @@ def test_flags_inherited_and_missing_inputs():
     # hand: 0.01911913147025 - 0.0025 = 0.01661913147025 (worked example above)
     assert fl[6] == M.MISSING_INPUT
     assert out["sbf_mu"][6] == pytest.approx(31.298075, abs=1e-12)
-    assert out["sbf_mu_err"][6] == pytest.approx(math.sqrt(0.01661913147025), abs=1e-12)
+    assert out["sbf_mu_err"][6] == pytest.approx(math.sqrt(0.011655730064), abs=1e-12)
     assert fl[7] == M.MISSING_INPUT and np.isnan(out["sbf_color_0"][7])
     assert out["sbf_mag_0"][7] == pytest.approx(29.41475, abs=1e-12)
     # NaN distances carry NaN errors, finite ones finite errors
@@ -426,7 +428,7 @@ def test_rows_never_dropped_large_shard():
     bad = rng.random(n) < 0.1
     inp["sbf_mag"] = np.where(bad, np.nan, inp["sbf_mag"])
     out = sbf_distance(inp, cal, SBFSettings(mc_draws=3))
-    assert set(out) == set(OUTPUT_COLUMNS)
+    assert set(out) == set(REGISTRY['sbf'].output_units())
     assert all(len(v) == n for v in out.values())
     assert out["sbf_flags"].dtype == np.uint32
     assert F.has(out["sbf_flags"][bad], F.Method.MISSING_INPUT).all()

@@ -1,7 +1,8 @@
 """Rule script: stream every shard's stages into distances.parquet and write summary.json."""
 from pathlib import Path
 
-from galdist import calibration, io, product, redshift
+from galdist import calibration, conventions, io, product, redshift
+from galdist.methods import REGISTRY
 from galdist.logs import logged
 
 with logged(snakemake.log[0], "assemble") as log:
@@ -13,6 +14,7 @@ with logged(snakemake.log[0], "assemble") as log:
     for m, cal in cals.items():  # provenance must describe the calibration the distances came from
         io.check_stamps(inp[m], "galdist.calibration.sha256", cal.sha256,
                         f"computed with another version of calibration {cal.path}")
+    conventions.mark_h0_independence(stats, {REGISTRY[m].prefix: cal for m, cal in cals.items()})
     info = product.provenance(snakemake.config, cals, ingest_summary, Path(snakemake.scriptdir).parents[1])
     counts = product.assemble(shards, snakemake.output.distances, snakemake.output.plot_sample,
                               redshift.MuGrid.load(inp.grid), stats, snakemake.params.methods, info,

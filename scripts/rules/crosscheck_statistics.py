@@ -12,7 +12,7 @@ with logged(snakemake.log[0], "cross-check statistics") as log:
         for i, shard in enumerate(snakemake.input.redshift):
             stages = {m: snakemake.input[m][i] for m in methods}
             cols, _ = io.read_shard(shard, ["z_cmb", "z_cmb_err", "mu_z", "mu_z_err", "z_flags"], stages,
-                                    {m: [f"{p}_{c}" for c in ("mu", "mu_err", "flags")]
+                                    {m: [f"{p}_{c}" for c in ("mu", "mu_err", "mu_err_sys", "flags")]
                                      for m, p in zip(methods, prefixes(methods))})
             spill.extend(crosscheck.method_sample(cols, prefixes(methods)))
             n_rows += len(cols["z_cmb"])

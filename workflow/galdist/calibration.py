@@ -45,6 +45,13 @@ class Calibration:
     color_bands: tuple[str, str] | None = None
     magnitude_pivot: float | None = None
     notes: str = ""
+    #: conventions of the numbers (schema key ``conventions``; galdist.conventions applies them):
+    #: the Galactic-extinction convention ("sf11" or "sfd98") and the H0 the zero point
+    #: assumes (None: independent of H0)
+    extinction_convention: str = "sf11"
+    zero_point_h0: float | None = None
+    #: how the coefficients were fitted: forward, inverse, bivariate or unknown
+    fit: str = "unknown"
     #: the keys only this calibration's method has (calibration schema, $defs/method_keys)
     extra: dict = field(default_factory=dict)
     path: str = ""
@@ -161,6 +168,14 @@ def load_calibration(spec: str | Path) -> Calibration:
         data = yaml.safe_load(text)
     except yaml.YAMLError as exc:
         _fail(path, f"is not valid YAML: {exc}")
+    return calibration_from_mapping(data, text, path)
+
+
+def calibration_from_mapping(data, text: str | None = None, path: str | Path = "(in memory)") -> Calibration:
+    """Validate a calibration's parsed mapping and return it (``load_calibration`` after
+    reading the file; ``text``, default the mapping dumped as YAML, gives the SHA-256)."""
+    if text is None:
+        text = yaml.safe_dump(data, sort_keys=False)
     try:  # size first: the schema check and the others walk the expanded structure
         check_size(data, f"calibration file {path}")
     except ConfigError as exc:
@@ -207,6 +222,11 @@ def load_calibration(spec: str | Path) -> Calibration:
         velocity_definition=data.get("velocity_definition"),
         color_bands=tuple(colors) if colors else None,
         magnitude_pivot=data.get("magnitude_pivot"), notes=data.get("notes", ""),
+        extinction_convention=data["conventions"]["extinction"],
+        zero_point_h0=(None if data["conventions"]["zero_point_h0"] is None
+                       else float(data["conventions"]["zero_point_h0"])),
+        fit=data.get("fit", "unknown"),
         extra={k: data[k] for k in method_calibration_keys().get(data["method"], {}) if k in data},
-        path=str(path), sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(), text=text,
+        path=str(path) if Path(str(path)).is_file() else "", sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(),
+        text=text,
     )

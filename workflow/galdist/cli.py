@@ -441,12 +441,16 @@ def cmd_summary(args) -> int:
         _say(f"  galaxies used       {_int(st.get('n_used'))}  (of {_int(st.get('n_rows'))} rows: "
              f"{_int(st.get('n_measured'))} measured, {_int(st.get('n_usable'))} usable, "
              f"{_int(st.get('n_clipped'))} clipped, {_int(st.get('n_outliers'))} outliers)")
-        _say(f"  zero-point offset   dmu = {_num(st.get('wmean'), sign=True)} {pm} {_num(st.get('wmean_err'))} mag "
+        _say(f"  zero-point offset   dmu = {_num(st.get('wmean'), sign=True)} {pm} {_num(st.get('wmean_err'))} (stat) "
+             f"{pm} {_num(st.get('wmean_err_sys'))} (sys) mag "
              f"(weighted mean; median {_num(st.get('median'), sign=True)} {pm} {_num(st.get('median_err'))})")
         _say(f"  scatter             {_num(st.get('std'))} mag observed vs {_num(st.get('rms_expected_err'))} "
              f"expected; excess {_num(st.get('excess_scatter'))} mag; chi2/nu {_num(st.get('chi2_nu'), '.2f')}")
-        _say(f"  implied H0          {_num(st.get('h0_implied'), '.2f')} {pm} {_num(st.get('h0_implied_err'), '.2f')}"
-             f" km/s/Mpc (assumed {_num(st.get('h0_assumed'), 'g')})")
+        _say(f"  implied H0          {_num(st.get('h0_implied'), '.2f')} {pm} {_num(st.get('h0_implied_err_stat'), '.2f')}"
+             f" (stat) {pm} {_num(st.get('h0_implied_err_sys'), '.2f')} (sys) km/s/Mpc "
+             f"(assumed {_num(st.get('h0_assumed'), 'g')})")
+        if st.get("h0_implied_independent") is False:
+            _say(f"                      {st.get('h0_implied_note', 'not independent')}")
     pairs = _get(s, "statistics", "pairs")
     for name, st in (pairs.items() if isinstance(pairs, dict) else []):
         st = st if isinstance(st, dict) else {}

@@ -1,6 +1,6 @@
 """Clipped statistics of a sample too large for memory, read chunk by chunk.
 
-A sample is any re-iterable of ``RECORD`` arrays (value, error, z, flags): a list of
+A sample is any re-iterable of ``RECORD`` arrays (value, error, z, flags, sys): a list of
 per-shard arrays, or chunks read back from disk by ``io.RecordSpill``. Every statistic
 is computed pass by pass over those chunks, so memory is one chunk whatever the sample's
 size: means and variances merged chunk by chunk (Chan, Golub & LeVeque 1983), the
@@ -24,15 +24,16 @@ def json_float(x) -> float | None:
     return x if np.isfinite(x) else None
 
 
-#: one sample record: dmu (or mu_a - mu_b), its expected error, z_cmb (NaN for a
-#: pair), and the method flags (for a pair, the OR of both methods' flags)
-RECORD = np.dtype([("value", "<f4"), ("error", "<f4"), ("z", "<f4"), ("flags", "<u4")])
+#: one sample record: dmu (or mu_a - mu_b), its random error, z_cmb (NaN for a pair),
+#: the method flags (for a pair, the OR of both methods' flags) and its systematic error
+#: (the calibration's, common to the sample: it never weights, it is reported once)
+RECORD = np.dtype([("value", "<f4"), ("error", "<f4"), ("z", "<f4"), ("flags", "<u4"), ("sys", "<f4")])
 
 
-def records(value, error, z, flags) -> np.ndarray:
+def records(value, error, z, flags, sys=0.0) -> np.ndarray:
     """Pack per-row arrays into sample records (float32: 1e-7 mag is far below any error)."""
     out = np.empty(np.shape(value), dtype=RECORD)
-    out["value"], out["error"], out["z"], out["flags"] = value, error, z, flags
+    out["value"], out["error"], out["z"], out["flags"], out["sys"] = value, error, z, flags, sys
     return out
 
 
@@ -144,18 +145,23 @@ def clip(chunks, rows: Rows, clip_sigma: float, max_iter: int):
 
 
 def summary(chunks, pick, n: int, median: float, std: float) -> dict:
-    """Median, weighted mean, scatter and chi2 of the picked values and their errors
-    (``median`` and ``std`` are the clipping's final ones, of the same rows)."""
+    """Median, weighted mean, scatter and chi2 of the picked values and their random
+    errors (``median`` and ``std`` are the clipping's final ones, of the same rows), and
+    the systematic error of the weighted mean, ``wmean_err_sys``: the weighted mean of the
+    rows' systematic errors, which move together (exact for a zero point common to all;
+    for a slope term an upper bound, by the triangle inequality)."""
     out = {"n_used": n}
     if n == 0:
-        return out | dict.fromkeys(["median", "median_err", "wmean", "wmean_err",
+        return out | dict.fromkeys(["median", "median_err", "wmean", "wmean_err", "wmean_err_sys",
                                     "wmean_err_formal", "std", "rms_expected_err",
                                     "excess_scatter", "chi2_nu"])
-    sw = swx = se2 = 0.0
+    sw = swx = se2 = sws = 0.0
     for rec in chunks:
         sel = pick(rec)
         x, e = rec["value"][sel].astype(float), rec["error"][sel].astype(float)
+        sys = np.nan_to_num(rec["sys"][sel].astype(float), nan=0.0)
         sw, swx, se2 = sw + np.sum(1.0 / e**2), swx + np.sum(x / e**2), se2 + np.sum(e**2)
+        sws += np.sum(sys / e**2)
     wmean = float(swx / sw)
     chi2 = 0.0
     for rec in chunks:
@@ -172,6 +178,7 @@ def summary(chunks, pick, n: int, median: float, std: float) -> dict:
         "wmean": json_float(wmean),
         # formal error scaled by sqrt(chi2_nu) when the scatter exceeds the errors (common practice)
         "wmean_err": json_float(formal * inflate),
+        "wmean_err_sys": json_float(sws / sw),
         "wmean_err_formal": json_float(formal),
         "std": json_float(std),
         "rms_expected_err": json_float(rms_exp),

@@ -165,7 +165,12 @@ def peculiar_velocity_log_ratio(mu, mu_err, z_cmb, z_cmb_err, h0: float, q0: flo
 def hubble_sample_statistics(chunks, h0_assumed: float, *, min_cz: float = 3000.0, clip_sigma: float = 3.5,
                              max_iter: int = 20, exclude_flags=None) -> dict:
     """Zero point, implied H0 and scatter of one method against the Hubble flow, over
-    a sample of ``clipped_stats.RECORD`` chunks (value dmu, error sqrt(sigma_mu^2 + sigma_mu_z^2)).
+    a sample of ``clipped_stats.RECORD`` chunks (value dmu, error sqrt(sigma_mu^2 +
+    sigma_mu_z^2) of the random errors, sys the method's systematic error).
+
+    Every statistic weighs and tests with the random errors (weighted mean, chi^2,
+    excess scatter); the systematic part is reported once, beside them
+    (``wmean_err_sys``; implied H0: ``h0_implied_err_stat`` and ``h0_implied_err_sys``).
 
     Sample: finite dmu with a positive error, c z_cmb >= ``min_cz`` and none of
     ``exclude_flags`` set (default: every Method bit except OUTLIER, which is
@@ -194,19 +199,20 @@ def hubble_sample_statistics(chunks, h0_assumed: float, *, min_cz: float = 3000.
     h0 = float(h0_assumed)
     stats["h0_assumed"] = h0
     if wm is None:
-        stats["h0_implied"] = stats["h0_implied_err"] = None
+        stats["h0_implied"] = stats["h0_implied_err_stat"] = stats["h0_implied_err_sys"] = None
     else:
-        h = h0 * 10.0 ** (-0.2 * wm)
+        h = h0 * 10.0 ** (-0.2 * wm)  # dH/d<dmu> = -H ln10 / 5
         stats["h0_implied"] = json_float(h)
-        stats["h0_implied_err"] = json_float(h * 0.2 * LN10 * wm_err) if wm_err is not None else None
+        stats["h0_implied_err_stat"] = json_float(h * 0.2 * LN10 * wm_err) if wm_err is not None else None
+        stats["h0_implied_err_sys"] = json_float(h * 0.2 * LN10 * stats["wmean_err_sys"])
     return stats
 
 
 def hubble_statistics(dmu, dmu_err, method_flags, z_cmb, h0_assumed: float, *,
                       min_cz: float = 3000.0, clip_sigma: float = 3.5, max_iter: int = 20,
-                      exclude_flags=None):
+                      exclude_flags=None, dmu_err_sys=0.0):
     """``hubble_sample_statistics`` of per-row arrays; returns (stats, outlier mask)."""
-    sample = [records(dmu, dmu_err, z_cmb, method_flags)]
+    sample = [records(dmu, dmu_err, z_cmb, method_flags, dmu_err_sys)]
     stats = hubble_sample_statistics(sample, h0_assumed, min_cz=min_cz, clip_sigma=clip_sigma,
                                      max_iter=max_iter, exclude_flags=exclude_flags)
     return stats, _outliers(sample[0]["value"], sample[0]["z"], stats, min_cz, clip_sigma)
@@ -233,57 +239,72 @@ def pair_sample_statistics(chunks, *, clip_sigma: float = 3.5, max_iter: int = 2
         chunks, rows.picker(window), n, center, scale)
 
 
-def _pair_records(mu_a, mu_a_err, flags_a, mu_b, mu_b_err, flags_b) -> np.ndarray:
+def _pair_records(mu_a, mu_a_err, flags_a, mu_b, mu_b_err, flags_b, sys_a=0.0, sys_b=0.0) -> np.ndarray:
+    """Records of mu_a - mu_b: random errors and (independent calibrations) systematic
+    errors each added in quadrature."""
     a, b = np.asarray(mu_a, dtype=float), np.asarray(mu_b, dtype=float)
-    err = np.sqrt(np.asarray(mu_a_err, dtype=float) ** 2 + np.asarray(mu_b_err, dtype=float) ** 2)
+    err = np.hypot(np.asarray(mu_a_err, dtype=float), np.asarray(mu_b_err, dtype=float))
+    sys = np.hypot(np.asarray(sys_a, dtype=float), np.asarray(sys_b, dtype=float))
     fl = np.asarray(flags_a, dtype=_flags.FLAG_DTYPE) | np.asarray(flags_b, dtype=_flags.FLAG_DTYPE)
-    return records(a - b, err, np.nan, fl)
+    return records(a - b, err, np.nan, fl, sys)
 
 
 def pair_statistics(mu_a, mu_a_err, flags_a, mu_b, mu_b_err, flags_b, *,
-                    clip_sigma: float = 3.5, max_iter: int = 20, exclude_flags=None) -> dict:
+                    clip_sigma: float = 3.5, max_iter: int = 20, exclude_flags=None,
+                    sys_a=0.0, sys_b=0.0) -> dict:
     """``pair_sample_statistics`` of per-row arrays of the two methods."""
-    return pair_sample_statistics([_pair_records(mu_a, mu_a_err, flags_a, mu_b, mu_b_err, flags_b)],
+    return pair_sample_statistics([_pair_records(mu_a, mu_a_err, flags_a, mu_b, mu_b_err, flags_b, sys_a, sys_b)],
                                   clip_sigma=clip_sigma, max_iter=max_iter, exclude_flags=exclude_flags)
 
 
-def best_distance(methods: Mapping[str, tuple], *, ignore_flags=("LOCAL_FLOW",)) -> dict:
+#: flags that leave a distance usable for mu_best: a nearby galaxy (LOCAL_FLOW) or a
+#: Hubble-flow outlier (OUTLIER: a large peculiar velocity is science, not a bad distance)
+BEST_IGNORE_FLAGS = ("LOCAL_FLOW", "OUTLIER")
+
+
+def best_distance(methods: Mapping[str, tuple], *, ignore_flags=BEST_IGNORE_FLAGS) -> dict:
     """Inverse-variance mean of the usable methods per galaxy.
 
-    ``methods`` maps a prefix to (mu, mu_err, flags). A method is usable for a
-    row when mu is finite, mu_err finite and > 0, and no flag other than
-    ``ignore_flags`` is set (default ignores only LOCAL_FLOW, whose meaning is
-    that the distance itself is fine). Returns mu_best, mu_best_err
-    (1/sqrt(sum w)) and best_method: the usable prefixes joined by '+' in the
-    order given, '' when none, as a pyarrow string array (built per row from a
-    dictionary of the 2^k subsets, which is what keeps it cheap at survey scale).
+    ``methods`` maps a prefix to (mu, mu_err, flags[, mu_err_sys]), mu_err the random
+    error. A method is usable for a row when mu is finite, mu_err finite and > 0, and no
+    flag other than ``ignore_flags`` is set (default ``BEST_IGNORE_FLAGS``: the flag stays
+    on the method's column, the distance is kept). Returns mu_best, mu_best_err
+    (random, 1/sqrt(sum w)), mu_best_err_sys (sqrt(sum (w_m sys_m)^2) / sum w: the
+    methods' calibrations are independent) and best_method: the usable prefixes joined
+    by '+' in the order given, "" when none, as a pyarrow string array (built per row
+    from a dictionary of the 2^k subsets, which is what keeps it cheap at survey scale).
     """
     keep = _flags.FLAG_DTYPE(ALL_METHOD_BITS & ~_bits(ignore_flags, "crosscheck.best_ignore_flags"))
     names = list(methods)
     if not names:
         raise ValueError("crosscheck: no method columns to combine")
-    sw = swx = code = None
-    for bit, (mu, err, fl) in enumerate(methods.values()):
+    sw = swx = sws2 = code = None
+    for bit, (mu, err, fl, *sys) in enumerate(methods.values()):
         mu = np.asarray(mu, dtype=float)
         err = np.asarray(err, dtype=float)
+        sys = np.nan_to_num(np.asarray(sys[0] if sys else 0.0, dtype=float), nan=0.0)
         use = (np.isfinite(mu) & np.isfinite(err) & (err > 0)
                & ((np.asarray(fl, dtype=_flags.FLAG_DTYPE) & keep) == 0))
         w = np.where(use, 1.0 / np.where(use, err, 1.0) ** 2, 0.0)
         if sw is None:
-            sw, swx, code = np.zeros(mu.shape), np.zeros(mu.shape), np.zeros(mu.shape, dtype=np.int32)
+            sw, swx, sws2 = np.zeros(mu.shape), np.zeros(mu.shape), np.zeros(mu.shape)
+            code = np.zeros(mu.shape, dtype=np.int32)
         sw += w
         swx += np.where(use, w * np.where(use, mu, 0.0), 0.0)
+        sws2 += (w * sys) ** 2
         code |= use.astype(np.int32) << bit
     has = sw > 0
     with np.errstate(divide="ignore", invalid="ignore"):
         mu_best = np.where(has, swx / np.where(has, sw, 1.0), np.nan)
         mu_best_err = np.where(has, 1.0 / np.sqrt(np.where(has, sw, 1.0)), np.nan)
+        mu_best_err_sys = np.where(has, np.sqrt(sws2) / np.where(has, sw, 1.0), np.nan)
     # the label of each subset of methods, indexed by its bit mask: built once, then
     # looked up per row as a dictionary (a per-row Python string would cost ~2 us/row)
     labels = pa.array(["+".join(n for i, n in enumerate(names) if c >> i & 1)
                        for c in range(1 << len(names))], type=pa.string())
     label = pa.DictionaryArray.from_arrays(pa.array(code.ravel()), labels).cast(pa.string())
-    return {"mu_best": mu_best, "mu_best_err": mu_best_err, "best_method": label}
+    return {"mu_best": mu_best, "mu_best_err": mu_best_err, "mu_best_err_sys": mu_best_err_sys,
+            "best_method": label}
 
 
 def count_labels(labels: pa.Array) -> dict[str, int]:
@@ -310,7 +331,7 @@ def method_sample(columns: Mapping[str, Sequence], methods: Sequence[str] = DEFA
     """What the sample statistics need from one shard: ``clipped_stats.RECORD`` arrays of the measured rows.
 
     Returns {"methods": {M: records of dmu}, "pairs": {"A-B": records of mu_A - mu_B}},
-    16 bytes per measured row, for one method or for galaxies measured by both.
+    20 bytes per measured row, for one method or for galaxies measured by both.
     """
     def col(name):
         return np.asarray(columns[name], dtype=float)
@@ -322,12 +343,14 @@ def method_sample(columns: Mapping[str, Sequence], methods: Sequence[str] = DEFA
         keep = np.isfinite(col(f"{m}_mu"))
         dmu_err = np.sqrt(col(f"{m}_mu_err")[keep] ** 2 + col("mu_z_err")[keep] ** 2)
         out["methods"][m] = records(delta_mu(col(f"{m}_mu")[keep], col("mu_z")[keep]), dmu_err,
-                                    col("z_cmb")[keep], _method_flags(columns, m, z_flags)[keep])
+                                    col("z_cmb")[keep], _method_flags(columns, m, z_flags)[keep],
+                                    col(f"{m}_mu_err_sys")[keep])
     for a, b in itertools.combinations(present, 2):
         both = np.isfinite(col(f"{a}_mu")) & np.isfinite(col(f"{b}_mu"))
         out["pairs"][f"{a}-{b}"] = _pair_records(
             col(f"{a}_mu")[both], col(f"{a}_mu_err")[both], _method_flags(columns, a, z_flags)[both],
-            col(f"{b}_mu")[both], col(f"{b}_mu_err")[both], _method_flags(columns, b, z_flags)[both])
+            col(f"{b}_mu")[both], col(f"{b}_mu_err")[both], _method_flags(columns, b, z_flags)[both],
+            col(f"{a}_mu_err_sys")[both], col(f"{b}_mu_err_sys")[both])
     return out
 
 
@@ -388,12 +411,13 @@ def _outliers(dmu, z_cmb, stats: dict, min_cz: float, clip_sigma: float) -> np.n
 
 def galaxy_columns(columns: Mapping[str, Sequence], grid: MuGrid, statistics: dict, *,
                    methods: Sequence[str] = DEFAULT_METHODS, min_cz: float = 3000.0,
-                   clip_sigma: float = 3.5, best_ignore_flags=("LOCAL_FLOW",)) -> dict:
+                   clip_sigma: float = 3.5, best_ignore_flags=BEST_IGNORE_FLAGS) -> dict:
     """Per-galaxy cross-check columns of one shard, given the sample ``statistics``.
 
     Per method M present: M_dmu, M_logd_ratio, M_vpec, M_vpec_err, M_vpec_lr,
     M_vpec_lr_err and M_flags (input flags + LOCAL_FLOW inherited from z_flags +
-    OUTLIER from the statistics' clipping); then mu_best, mu_best_err, best_method.
+    OUTLIER from the statistics' clipping); then mu_best, mu_best_err, mu_best_err_sys,
+    best_method.
     """
     def col(name):
         return np.asarray(columns[name], dtype=float)
@@ -414,22 +438,23 @@ def galaxy_columns(columns: Mapping[str, Sequence], grid: MuGrid, statistics: di
                 f"{m}_vpec": v, f"{m}_vpec_err": v_err,
                 f"{m}_vpec_lr": v_lr, f"{m}_vpec_lr_err": v_lr_err, f"{m}_flags": fl}
     if present:
-        out |= best_distance({m: (col(f"{m}_mu"), col(f"{m}_mu_err"), out[f"{m}_flags"]) for m in present},
-                             ignore_flags=best_ignore_flags)
+        out |= best_distance({m: (col(f"{m}_mu"), col(f"{m}_mu_err"), out[f"{m}_flags"], col(f"{m}_mu_err_sys"))
+                              for m in present}, ignore_flags=best_ignore_flags)
     else:
         n = z.shape[0]
         out |= {"mu_best": np.full(n, np.nan), "mu_best_err": np.full(n, np.nan),
+                "mu_best_err_sys": np.full(n, np.nan),
                 "best_method": pa.array([""] * n, type=pa.string())}
     return out
 
 
 def crosscheck(columns: Mapping[str, Sequence], grid: MuGrid, *,
                methods: Sequence[str] = DEFAULT_METHODS, min_cz: float = 3000.0,
-               clip_sigma: float = 3.5, max_iter: int = 20, best_ignore_flags=("LOCAL_FLOW",)):
+               clip_sigma: float = 3.5, max_iter: int = 20, best_ignore_flags=BEST_IGNORE_FLAGS):
     """Cross-check every method present in ``columns`` (a dict or DataFrame) in one go.
 
     Needs z_cmb, z_cmb_err, mu_z, mu_z_err, z_flags and, per method M present
-    (M_mu exists), M_mu, M_mu_err, M_flags. Returns (new columns, summary) as
+    (M_mu exists), M_mu, M_mu_err, M_mu_err_sys, M_flags. Returns (new columns, summary) as
     ``galaxy_columns`` and ``sample_statistics`` give them, plus summary["best"]:
     counts of best_method. H0, q0, j0 are the grid's.
     """

@@ -109,6 +109,7 @@ def _observe(rng, ra, dec, z_cos, v_pec, is_disc, conf):
     with the run's extinction law, K-correction templates and calibrations."""
     from . import kcorr, redshift, stages
     from .calibration import load_calibration
+    from .conventions import at_run_h0, extinction_factors, run_h0
     from .ebv_maps import galactic_coordinates
     from .photometry import color_system_offset, system_offset
 
@@ -127,6 +128,14 @@ def _observe(rng, ra, dec, z_cos, v_pec, is_disc, conf):
     ebv[dusty] = rng.uniform(0.5, 1.0, dusty.sum())
     r = stages.extinction_coefficients(conf).per_true_ebv()
     a = {band: r[band] * conf["extinction"]["ebv_scale"] * ebv for band in bands}
+
+    def calibration_and_extinction(section):
+        """A method's calibration at the run's H0 and the extinction in its convention
+        (galdist.conventions), as the method will apply them."""
+        cal = at_run_h0(load_calibration(section["calibration"]), run_h0(conf))
+        factor = extinction_factors(conf, cal.extinction_convention)
+        return cal, {band: a[band] * factor[band] for band in bands}
+
     # K-corrections: discs star-forming templates, early types passive ones
     kcfg = conf["kcorr"]
     kgrid = stages.kcorr_grid(conf)
@@ -141,8 +150,8 @@ def _observe(rng, ra, dec, z_cos, v_pec, is_disc, conf):
     # function (early types); other bands from the template colour
     tcfg, scfg = conf["tully_fisher"], conf["sbf"]
     tf_band = tcfg["band"]
-    tf_mag, w50, axis_ratio = _disc(rng, n, load_calibration(tcfg["calibration"]), bands[tf_band], z_helio,
-                                    mu, a[tf_band], k[tf_band], tcfg)
+    tf_cal, a_tf = calibration_and_extinction(tcfg)
+    tf_mag, w50, axis_ratio = _disc(rng, n, tf_cal, bands[tf_band], z_helio, mu, a_tf[tf_band], k[tf_band], tcfg)
     # a few lenticulars carry both HI and SBF measurements, so the methods can be compared
     has_hi = is_disc | (rng.uniform(size=n) < 0.08)
     mags = {tf_band: np.where(has_hi, tf_mag, rng.normal(-22.0, 0.8, n) + mu + a[tf_band] + k[tf_band])}
@@ -170,7 +179,7 @@ def _observe(rng, ra, dec, z_cos, v_pec, is_disc, conf):
     cols["axis_ratio_err"] = np.where(has_hi, ba_err, np.nan)
     cols["hi_flux"] = np.where(has_hi, 10 ** rng.normal(0.5, 0.3, n), np.nan)
     # SBF for early types, following the SBF calibration
-    cal = load_calibration(scfg["calibration"])
+    cal, a_sbf = calibration_and_extinction(scfg)
     sb, (cb, cr) = scfg["band"], scfg["color_bands"]
     lo, hi = cal.valid_range
     color_0 = rng.uniform(lo + 0.02, hi - 0.02, n)
@@ -178,8 +187,8 @@ def _observe(rng, ra, dec, z_cos, v_pec, is_disc, conf):
     m_off = system_offset(bands[sb]["system"], cal.system, bands[sb]["ab_minus_vega"])
     c_off = color_system_offset(bands[cb]["system"], bands[cb]["ab_minus_vega"], bands[cr]["system"],
                                 bands[cr]["ab_minus_vega"], cal.system)
-    sbf_mag = abs_sbf + mu + a[sb] + k[sb] - m_off
-    sbf_color = color_0 + (a[cb] - a[cr]) + (k[cb] - k[cr]) - c_off
+    sbf_mag = abs_sbf + mu + a_sbf[sb] + k[sb] - m_off
+    sbf_color = color_0 + (a_sbf[cb] - a_sbf[cr]) + (k[cb] - k[cr]) - c_off
     m_err, c_err = rng.uniform(0.04, 0.10, n), np.full(n, 0.02)
     cols["sbf_mag"] = np.where(is_disc, np.nan, sbf_mag + rng.normal(0.0, 1.0, n) * m_err)
     cols["sbf_mag_err"] = np.where(is_disc, np.nan, m_err)

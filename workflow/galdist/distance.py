@@ -37,13 +37,17 @@ def malmquist_factor(mu_err, kind: str = "mean"):
     return np.exp(coeff * delta**2)
 
 
-def finish(prefix: str, mu, mu_err, mu_err_mc, method_flags, malmquist: bool = False,
+def finish(prefix: str, mu, mu_err, mu_err_sys, mu_err_mc, method_flags, malmquist: bool = False,
            malmquist_kind: str = "mean") -> dict:
-    """The columns every distance method ends with, ``<prefix>_``: mu, mu_err,
-    mu_err_mc, d_mpc and d_err_mpc (first order), malmquist_applied, flags.
+    """The columns every distance method ends with, ``<prefix>_``: mu, mu_err (random:
+    measurement and intrinsic scatter), mu_err_sys (systematic: the calibration's
+    coefficients with their covariance and its zero point, common to every galaxy),
+    mu_err_mc (Monte Carlo of the random part), d_mpc and d_err_mpc (first order, random
+    part), malmquist_applied, flags.
 
-    With ``malmquist``, d and its error are multiplied by ``malmquist_factor`` where
-    both mu and its error are finite; mu itself is never corrected.
+    With ``malmquist``, d and its error are multiplied by ``malmquist_factor`` of the
+    random error where both mu and it are finite (the bias comes from the scatter of
+    galaxies about the relation, not from a shift common to all); mu is never corrected.
     """
     mu, mu_err = np.asarray(mu, dtype=float), np.asarray(mu_err, dtype=float)
     d = mpc_from_mu(mu)
@@ -52,9 +56,10 @@ def finish(prefix: str, mu, mu_err, mu_err_mc, method_flags, malmquist: bool = F
     if malmquist:
         factor = np.where(applied, malmquist_factor(mu_err, malmquist_kind), 1.0)
         d, d_err = d * factor, d_err * factor
-    return {f"{prefix}_mu": mu, f"{prefix}_mu_err": mu_err, f"{prefix}_mu_err_mc": mu_err_mc,
-            f"{prefix}_d_mpc": d, f"{prefix}_d_err_mpc": d_err, f"{prefix}_malmquist_applied": applied,
-            f"{prefix}_flags": method_flags}
+    mu_err_sys = np.where(np.isfinite(mu), np.broadcast_to(np.asarray(mu_err_sys, dtype=float), mu.shape), np.nan)
+    return {f"{prefix}_mu": mu, f"{prefix}_mu_err": mu_err, f"{prefix}_mu_err_sys": mu_err_sys,
+            f"{prefix}_mu_err_mc": mu_err_mc, f"{prefix}_d_mpc": d, f"{prefix}_d_err_mpc": d_err,
+            f"{prefix}_malmquist_applied": applied, f"{prefix}_flags": method_flags}
 
 
 # IAU 2015 Resolution B2: zero point of the absolute bolometric magnitude scale.

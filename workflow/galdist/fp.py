@@ -35,7 +35,7 @@ Correction chain (each step a function below, each intermediate returned):
 5. the distance: sigma_0 and <mu_e>_0 do not depend on distance, so the plane
    predicts the physical size R_pred outright and the angular-diameter distance is
    D_A = R_pred / theta_e (no iteration). The calibration's sizes assume its H0
-   (``plane.hubble_constant``; null = absolute sizes, no rescaling); the run's
+   (``conventions.zero_point_h0``; null = absolute sizes, no rescaling); the run's
    distances assume the run's H0 (``FPSettings.hubble_constant``), and a size
    inferred from a redshift scales as 1/H0, so r_run = r_cal - log10(H0_run /
    H0_cal). Then D_L = (1 + z_helio)^2 D_A and fp_mu = 5 log10(D_L / 10 pc);
@@ -106,7 +106,7 @@ import yaml
 
 from . import flags as F
 from .calibration import Calibration
-from .distance import malmquist_factor, mpc_err_from_mu
+from .distance import finish
 from .uncertainty import monte_carlo, quadrature
 
 LN10 = math.log(10.0)
@@ -115,21 +115,6 @@ ARCSEC_PER_RAD = 648000.0 / math.pi
 SB_ZERO_POINT = 5.0 * math.log10(ARCSEC_PER_RAD / 10.0)
 
 ESTIMATORS = ("plane", "gaussian")
-
-OUTPUT_COLUMNS = ("fp_sigma_0", "fp_mu_e_0", "fp_log_sigma_0", "fp_log_ie", "fp_log_re_z",
-                  "fp_log_re_pred", "fp_eta", "fp_eta_err", "fp_eta_post_std", "fp_eta_post_mode",
-                  "fp_mu", "fp_mu_err", "fp_mu_err_mc", "fp_d_mpc", "fp_d_err_mpc",
-                  "fp_malmquist_applied", "fp_flags")
-
-#: Units of the output columns ("" = dimensionless). Sizes are in kpc at the
-#: calibration's H0 (h^-1 kpc for H0 = 100); distances at the run's H0.
-OUTPUT_UNITS = {
-    "fp_sigma_0": "km / s", "fp_mu_e_0": "mag / arcsec2", "fp_log_sigma_0": "dex(km / s)",
-    "fp_log_ie": "dex(Lsun / pc2)", "fp_log_re_z": "dex(kpc)", "fp_log_re_pred": "dex(kpc)",
-    "fp_eta": "dex", "fp_eta_err": "dex", "fp_eta_post_std": "dex", "fp_eta_post_mode": "dex",
-    "fp_mu": "mag", "fp_mu_err": "mag", "fp_mu_err_mc": "mag", "fp_d_mpc": "Mpc", "fp_d_err_mpc": "Mpc",
-    "fp_malmquist_applied": "", "fp_flags": "",
-}
 
 # Inputs of ``fp_distance``: name -> (required, meaning with unit).
 INPUTS = {
@@ -311,7 +296,8 @@ class PlaneTerms:
 
     abs_mag_sun: M_sun in the calibration's band and system (defines i; the zero point
         c depends on it). hubble_constant: H0 (km/s/Mpc) at which the calibration's
-        sizes were computed (100 = h^-1 kpc); None = absolute sizes.
+        sizes were computed (100 = h^-1 kpc; the calibration's
+        ``conventions.zero_point_h0``); None = absolute sizes.
     pivot_log_ie: i_p of the plane (the s pivot is the common ``pivot``).
     log_ie_range: valid range of i (None = only s is checked, via ``valid_range``).
     aperture_exponent, aperture_fraction: sigma_0 = sigma_ap (r_ap / (fraction R_e))^exponent.
@@ -326,11 +312,11 @@ class PlaneTerms:
     aperture_fraction: float = 0.125
     gaussian: GaussianTerms | None = None
 
-    KEYS = ("abs_mag_sun", "hubble_constant", "pivot_log_ie", "log_ie_range", "aperture_exponent",
-            "aperture_fraction", "gaussian")
+    KEYS = ("abs_mag_sun", "pivot_log_ie", "log_ie_range", "aperture_exponent", "aperture_fraction",
+            "gaussian")
 
     @classmethod
-    def from_mapping(cls, raw, where: str) -> "PlaneTerms":
+    def from_mapping(cls, raw, where: str, hubble_constant: float | None = None) -> "PlaneTerms":
         if not isinstance(raw, dict):
             raise ValueError(f"{where}: key 'plane' must be a mapping with {', '.join(cls.KEYS)}")
         unknown = sorted(set(raw) - set(cls.KEYS))
@@ -345,10 +331,8 @@ class PlaneTerms:
                 raise ValueError(f"{where}: key 'plane.{key}' = {v!r}: must be a number in [{lo:g}, {hi:g}]")
             return float(v)
 
-        if "abs_mag_sun" not in raw or "hubble_constant" not in raw:
-            raise ValueError(f"{where}: keys 'plane.abs_mag_sun' (M_sun in the band) and "
-                             "'plane.hubble_constant' (H0 of the sizes, or null) are required")
-        h0 = number("hubble_constant", 1e-3, 1000.0, optional=True)
+        if "abs_mag_sun" not in raw:
+            raise ValueError(f"{where}: key 'plane.abs_mag_sun' (M_sun in the band) is required")
         rng = raw.get("log_ie_range")
         if rng is not None:
             if not (isinstance(rng, (list, tuple)) and len(rng) == 2 and all(_is_number(x) and math.isfinite(x)
@@ -372,7 +356,7 @@ class PlaneTerms:
                     raise ValueError(f"{where}: key 'plane.gaussian.{key}' = {v!r}: must be a number in [-10, 10]")
             gauss = GaussianTerms(float(gauss["mean_log_sigma"]), float(gauss["mean_log_ie"]),
                                   tuple(float(x) for x in sig))
-        return cls(abs_mag_sun=number("abs_mag_sun", -10.0, 20.0), hubble_constant=h0,
+        return cls(abs_mag_sun=number("abs_mag_sun", -10.0, 20.0), hubble_constant=hubble_constant,
                    pivot_log_ie=number("pivot_log_ie", -10.0, 10.0, default=0.0), log_ie_range=rng,
                    aperture_exponent=number("aperture_exponent", 0.0, 0.5, default=0.04),
                    aperture_fraction=number("aperture_fraction", 1e-3, 1.0, default=0.125),
@@ -395,8 +379,8 @@ def plane_terms(cal: Calibration) -> PlaneTerms:
             raise ValueError(f"{where}: its text is not valid YAML ({exc})") from None
         raw = data.get("plane") if isinstance(data, dict) else None
     if raw is None:
-        raise ValueError(f"{where}: key 'plane' (abs_mag_sun, hubble_constant, ...) is required for FP")
-    return PlaneTerms.from_mapping(raw, where)
+        raise ValueError(f"{where}: key 'plane' (abs_mag_sun, ...) is required for FP")
+    return PlaneTerms.from_mapping(raw, where, cal.zero_point_h0)
 
 
 def check_calibration(cal: Calibration) -> PlaneTerms:
@@ -837,7 +821,7 @@ def fp_distance(inputs: dict, calibration: Calibration, settings: FPSettings | N
     """FP distances, eta and flags; one output row per input row.
 
     ``inputs``: dict of arrays (scalars broadcast) named as in ``INPUTS``. Returns the
-    columns of ``OUTPUT_COLUMNS`` (units in ``OUTPUT_UNITS``). Row-level problems give
+    columns of its registry entry (``galdist.methods.REGISTRY['fp'].output_units()``). Row-level problems give
     NaN and a ``fp_flags`` bit, never an exception; structural ones raise ValueError.
     """
     st = settings or FPSettings()
@@ -868,8 +852,7 @@ def fp_distance(inputs: dict, calibration: Calibration, settings: FPSettings | N
         k = np.asarray(calibration.coefficients, dtype=float)
         g = np.array([1.0, -k[0], -k[1]])
         meas_var = np.einsum("i,nij,j->n", g, e, g)
-        eta_err_full = quadrature(np.sqrt(np.maximum(meas_var, 0.0)), calibration.scatter,
-                                  np.sqrt(coef_var), calibration.zero_point_error)
+        eta_err_full = quadrature(np.sqrt(np.maximum(meas_var, 0.0)), calibration.scatter)
         eta = np.where(blank, np.nan, c["eta"])
         log_da = np.where(blank, np.nan, c["log_da"])
         mu = np.where(blank, np.nan, c["mu"])
@@ -903,8 +886,7 @@ def fp_distance(inputs: dict, calibration: Calibration, settings: FPSettings | N
         eta = np.where(ok, mean, np.nan)
         post_std = np.where(ok, post_std, np.nan)
         post_mode = np.where(ok, post_mode, np.nan)
-        eta_err = quadrature(post_std, np.sqrt(coef_var), calibration.zero_point_error)
-        eta_err = np.where(ok, eta_err, np.nan)
+        eta_err = np.where(ok, post_std, np.nan)
         log_da = a["log_da_z"] - eta
         with np.errstate(invalid="ignore"):
             mu = 5.0 * (log_da + 2.0 * np.log10(1.0 + a["z_helio"])) + 25.0
@@ -920,16 +902,8 @@ def fp_distance(inputs: dict, calibration: Calibration, settings: FPSettings | N
             mu_err_mc = _mc_gaussian(calibration, terms, st, a, c, e, eta, good)
         mu_err_mc = np.where(good, mu_err_mc, np.nan)
 
-    # --- distance ------------------------------------------------------------------------
-    with np.errstate(invalid="ignore", over="ignore"):
-        d = (1.0 + a["z_helio"]) ** 2 * 10.0 ** log_da
-    d = np.where(good, d, np.nan)
-    applied = np.zeros(n, dtype=bool)
-    if st.malmquist:
-        applied = good & np.isfinite(mu_err)
-        d = np.where(applied, d * malmquist_factor(mu_err, st.malmquist_kind), d)
-    d_err = mpc_err_from_mu(d, mu_err)
-
+    # systematic: the plane's coefficients (covariance at (s, i)) and zero point, in dex of eta
+    eta_err_sys = quadrature(np.sqrt(coef_var), calibration.zero_point_error)
     return {
         "fp_sigma_0": c["sigma_0"],
         "fp_mu_e_0": c["mu_0"],
@@ -941,19 +915,7 @@ def fp_distance(inputs: dict, calibration: Calibration, settings: FPSettings | N
         "fp_eta_err": eta_err,
         "fp_eta_post_std": post_std,
         "fp_eta_post_mode": post_mode,
-        "fp_mu": mu,
-        "fp_mu_err": mu_err,
-        "fp_mu_err_mc": mu_err_mc,
-        "fp_d_mpc": d,
-        "fp_d_err_mpc": d_err,
-        "fp_malmquist_applied": applied,
-        "fp_flags": out_flags,
-    }
-
-
-def _coefficient_draws(cal, n):
-    root = _psd_root(np.asarray(cal.covariance, dtype=float))
-    return root, np.zeros((n, 3))
+    } | finish("fp", mu, mu_err, 5.0 * eta_err_sys, mu_err_mc, out_flags, st.malmquist, st.malmquist_kind)
 
 
 def _mc_plane(cal, terms, st, a, lin, good):
@@ -961,20 +923,17 @@ def _mc_plane(cal, terms, st, a, lin, good):
     rows = np.flatnonzero(good)
     sub = {k: (v[rows] if isinstance(v, np.ndarray) and v.ndim else v) for k, v in a.items()}
     root3 = _psd_root(lin[rows])                      # (m, 3, 3), correlated (sigma, theta, w)
-    croot, cdraw = _coefficient_draws(cal, rows.size)
     base = _chain_kwargs(sub)
 
-    def mu_of(u, a_gal, k_corr, coeff_draw, scatter_draw):
+    def mu_of(u, a_gal, k_corr, scatter_draw):
         shift = np.einsum("nij,nj->ni", root3, u)
         kw = dict(base, sigma=base["sigma"] + shift[:, 0], theta=base["theta"] + shift[:, 1],
                   w=base["w"] + shift[:, 2], a_gal=a_gal, k_corr=k_corr)
-        coeffs = np.asarray(cal.coefficients, dtype=float) + coeff_draw @ croot.T
-        return _chain(cal, terms, st, **kw, coeffs=coeffs, scatter=scatter_draw)["mu"]
+        return _chain(cal, terms, st, **kw, scatter=scatter_draw)["mu"]
 
     values = {"u": np.zeros((rows.size, 3)), "a_gal": base["a_gal"], "k_corr": base["k_corr"],
-              "coeff_draw": cdraw, "scatter_draw": np.zeros(rows.size)}
-    sigmas = {"u": 1.0, "a_gal": sub["a_gal_err"], "k_corr": sub["k_corr_err"], "coeff_draw": 1.0,
-              "scatter_draw": math.hypot(cal.scatter, cal.zero_point_error)}
+              "scatter_draw": np.zeros(rows.size)}
+    sigmas = {"u": 1.0, "a_gal": sub["a_gal_err"], "k_corr": sub["k_corr_err"], "scatter_draw": cal.scatter}
     _, std = monte_carlo(mu_of, values, sigmas, n_draws=int(st.mc_draws), seed=int(st.mc_seed))
     out = np.full(good.shape, np.nan)
     out[rows] = std
@@ -996,28 +955,25 @@ def _mc_gaussian(cal, terms, st, a, c, e, eta, good):
     truth = _gauss_model(cal, terms, st, x_z, e[rows], ell)
     centre = x_z - truth.d + eta[rows, None] * np.array([1.0, 0.0, 0.0])    # x_bar + eta e_r
     root = _psd_root(truth.v)
-    croot, cdraw = _coefficient_draws(cal, rows.size)
     log_da_z, zh = sub_a["log_da_z"], sub_a["z_helio"]
 
-    def mu_of(u, coeff_draw, zero_point):
+    def mu_of(u):
         x = centre + np.einsum("nij,nj->ni", root, u)
         passed = np.ones(rows.size, dtype=bool)
         if st.selection_log_sigma_min is not None:
             passed &= x[:, 1] >= st.selection_log_sigma_min
         if ell is not None:
             passed &= 2.0 * x[:, 0] + x[:, 2] >= ell
-        coeffs = np.asarray(cal.coefficients, dtype=float) + coeff_draw @ croot.T
-        mod = _gauss_model(cal, terms, st, x, e[rows], ell, coeffs)
+        mod = _gauss_model(cal, terms, st, x, e[rows], ell)
         est = np.concatenate([_posterior_summary(_Model(
             d=mod.d[sl], m=mod.m[sl], v=mod.v[sl], s_bar=mod.s_bar[sl], u2_bar=mod.u2_bar[sl],
             s_cut=mod.s_cut, ell=None if ell is None else ell[sl]))[0]
             for sl in (slice(lo, lo + _CHUNK) for lo in range(0, rows.size, _CHUNK))])
-        est = est + zero_point
         mu = 5.0 * (log_da_z - est + 2.0 * np.log10(1.0 + zh)) + 25.0
         return np.where(passed, mu, np.nan)
 
-    values = {"u": np.zeros((rows.size, 3)), "coeff_draw": cdraw, "zero_point": np.zeros(rows.size)}
-    sigmas = {"u": 1.0, "coeff_draw": 1.0, "zero_point": cal.zero_point_error}
+    values = {"u": np.zeros((rows.size, 3))}
+    sigmas = {"u": 1.0}
     _, std = monte_carlo(mu_of, values, sigmas, n_draws=int(st.mc_draws), seed=int(st.mc_seed))
     out = np.full(good.shape, np.nan)
     out[rows] = std

@@ -25,6 +25,8 @@ import re
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 
+import numpy as np
+
 from .columns import Column
 
 #: Keys every method's config section has: the generic machinery reads them.
@@ -32,8 +34,10 @@ COMMON_KEYS = ("calibration", "mc_draws", "mc_seed", "mc_max_rows", "malmquist",
                "allow_extrapolation", "accept_passband_mismatch")
 
 #: Columns every method writes last (``galdist.distance.finish``), after its prefix, with units.
-COMMON_OUTPUTS = {"mu": "mag", "mu_err": "mag", "mu_err_mc": "mag", "d_mpc": "Mpc", "d_err_mpc": "Mpc",
-                  "malmquist_applied": "", "flags": ""}
+#: mu_err is the random error (measurement, intrinsic scatter), mu_err_sys the systematic
+#: one (calibration coefficients and zero point, common to all galaxies).
+COMMON_OUTPUTS = {"mu": "mag", "mu_err": "mag", "mu_err_sys": "mag", "mu_err_mc": "mag", "d_mpc": "Mpc",
+                  "d_err_mpc": "Mpc", "malmquist_applied": "", "flags": ""}
 
 #: The per-shard stages whose files a method may read, in DAG order.
 STAGES = ("ingest", "extinction", "kcorr", "redshift")
@@ -147,10 +151,35 @@ class MethodSpec:
     def settings_class(self):
         return self._attr(self.settings)
 
-    def used_config(self, config: Mapping) -> dict:
+    def used_config(self, config: Mapping, calibration=None) -> dict:
         """The part of the configuration the method's jobs read: its section, the bands,
-        and the sections in ``uses`` (a change elsewhere does not re-run them)."""
-        return {key: config[key] for key in (self.name, "bands", *self.uses)}
+        the sections in ``uses`` (a change elsewhere does not re-run them) and, given the
+        calibration, what its conventions mean for this run (``conventions_for``)."""
+        out = {key: config[key] for key in (self.name, "bands", *self.uses)}
+        if calibration is not None:
+            out["conventions"] = self.conventions_for(config, calibration)
+        return out
+
+    def extinction_bands(self, section: Mapping) -> dict[str, str]:
+        """Extinction-stage input columns the method reads (A_<band>, A_<band>_err) -> band label."""
+        labels = self.band_labels(section)
+        out = {}
+        for inp in self.inputs.values():
+            role = re.search(r"\{(\w+)\}", inp.column)
+            if inp.stage == "extinction" and role:
+                out[inp.column.format(**labels)] = labels[role.group(1)]
+        return out
+
+    def conventions_for(self, config: Mapping, calibration) -> dict:
+        """The run's H0 (the calibration's zero point is moved to it) and, per band whose
+        A_<band> the method reads, the factor onto the calibration's extinction convention
+        (``galdist.conventions``)."""
+        from . import conventions
+
+        bands = sorted(set(self.extinction_bands(config[self.name]).values()))
+        return {"h0": conventions.run_h0(config), "extinction": calibration.extinction_convention,
+                "extinction_factors": conventions.extinction_factors(config, calibration.extinction_convention,
+                                                                     bands)}
 
     def settings_for(self, config: Mapping, calibration):
         """The method's settings: its config section, validated by the schema, plus what
@@ -176,10 +205,18 @@ class MethodSpec:
             hook(calibration, settings)
         return settings
 
-    def inputs_from(self, columns: Mapping, section: Mapping) -> dict:
-        """The distance function's inputs from the stage columns read for one shard."""
+    def inputs_from(self, columns: Mapping, section: Mapping, extinction_factors: Mapping | None = None) -> dict:
+        """The distance function's inputs from the stage columns read for one shard, the
+        extinction columns rescaled onto the calibration's convention (``extinction_factors``:
+        band -> factor, from ``conventions_for``)."""
         labels = self.band_labels(section)
-        return {name: columns[inp.column.format(**labels)] for name, inp in self.inputs.items()}
+        scaled = {column: float(extinction_factors[band])
+                  for column, band in self.extinction_bands(section).items()} if extinction_factors else {}
+        out = {}
+        for name, inp in self.inputs.items():
+            column = inp.column.format(**labels)
+            out[name] = columns[column] if column not in scaled else np.asarray(columns[column], dtype=float) * scaled[column]
+        return out
 
     def distances(self, inputs: Mapping, calibration, settings, config: Mapping) -> dict:
         """The method's columns for one shard: every row analytically, the Monte Carlo
@@ -205,15 +242,19 @@ def shard_distances(method: str, files: Mapping[str, str], config: Mapping, cali
     from . import calibration as gcal
     from . import io
 
+    from .conventions import at_run_h0
+
     spec = REGISTRY[method]
-    cal = gcal.load_calibration(calibration_path)
+    loaded = gcal.load_calibration(calibration_path)
+    conv = config["conventions"] if "conventions" in config else spec.conventions_for(config, loaded)
+    cal = at_run_h0(loaded, conv["h0"])
     section = config[method]
     settings = spec.settings_for(config, cal)
     wanted = spec.stage_columns(section)
     others = {stage: files[stage] for stage in wanted if stage != "ingest"}
     cols, fingerprint = io.read_shard(files["ingest"], wanted.get("ingest", []), others,
                                       {stage: wanted[stage] for stage in others})
-    out = spec.distances(spec.inputs_from(cols, section), cal, settings, config)
+    out = spec.distances(spec.inputs_from(cols, section, conv["extinction_factors"]), cal, settings, config)
     io.write_stage_columns(out, out_path, fingerprint, spec.output_units(),
                            {"galdist.calibration.sha256": cal.sha256, "galdist.calibration.name": cal.name})
     return len(out[spec.flags_column])
@@ -334,17 +375,11 @@ SBF = MethodSpec(
 def _fp_derive(config, calibration) -> dict:
     """The run's H0 (the calibration's sizes are rescaled to it) and the system offset of
     <mu_e> and m onto the calibration's."""
+    from .conventions import run_h0
     from .photometry import system_offset
 
-    cosmology = config["redshift"]["cosmology"]
-    if cosmology["name"] is None:
-        h0 = float(cosmology["H0"])
-    else:
-        from .redshift import make_cosmology
-
-        h0 = float(make_cosmology(cosmology["name"]).H0.value)
     band = config["bands"][config["fp"]["band"]]
-    return {"hubble_constant": h0,
+    return {"hubble_constant": run_h0(config),
             "mag_offset": system_offset(band["system"], calibration.system, band.get("ab_minus_vega"))}
 
 

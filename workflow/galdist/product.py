@@ -35,7 +35,7 @@ FLAG_COLUMNS = tuple(F.ALL)
 LEADING = ["galaxy_id", "ra", "dec", "gal_l", "gal_b", "galaxy_class", *FLAG_COLUMNS,
            "z_helio", "z_helio_err", "z_cmb", "z_cmb_err", "mu_z", "mu_z_err", "d_z_mpc",
            "ebv", "ebv_err", "ebv_used", "ebv_used_err"]
-TRAILING = ["mu_best", "mu_best_err", "best_method"]
+TRAILING = ["mu_best", "mu_best_err", "mu_best_err_sys", "best_method"]
 CROSSCHECK_UNITS = {"dmu": "mag", "vpec": "km / s", "vpec_err": "km / s", "vpec_lr": "km / s",
                     "vpec_lr_err": "km / s", "logd_ratio": "dex"}
 CAUTIONS = (
@@ -50,6 +50,10 @@ CAUTIONS = (
     "mu_z assumes the configured cosmology (default flat LCDM, H0 = 70): a convention for comparison, "
     "not a measurement.",
     "Calibrations marked 'from memory' in their files must be checked against the papers before publication.",
+    "Each *_mu_err is the random error (measurements, intrinsic scatter); *_mu_err_sys is the calibration's "
+    "systematic error, common to every galaxy of that method: never average it down.",
+    "An implied H0 from a calibration whose zero point assumes an H0 (h0_implied_independent false) "
+    "returns that H0 by construction: it is not a measurement.",
 )
 PLOT_COLUMNS = ["galaxy_id", "gal_l", "gal_b", "z_cmb", "mu_z", "mu_z_err"] + [
     f"{s.prefix}_{c}" for s in REGISTRY.values() if s.relation_plot for c in (s.relation_plot.x, s.relation_plot.y)
@@ -90,8 +94,11 @@ def provenance(config: dict, calibrations: dict, ingest_summary: dict, repo: Pat
             versions[name] = None
     return {
         "config": config,
-        "calibrations": {m: {"as_configured": config.get(m, {}).get("calibration", c.path), "name": c.name, "sha256": c.sha256, "text": c.text,
-                             "reference": c.citation()} for m, c in calibrations.items()},
+        "calibrations": {m: {"as_configured": config.get(m, {}).get("calibration", c.path), "name": c.name,
+                             "sha256": c.sha256, "text": c.text, "reference": c.citation(),
+                             "conventions": {"extinction": c.extinction_convention,
+                                             "zero_point_h0": c.zero_point_h0, "fit": c.fit}}
+                         for m, c in calibrations.items()},
         "inputs": ingest_summary.get("inputs", []),
         "packages": versions,
         "git_commit": _git_commit(repo),

@@ -57,8 +57,10 @@ def _method_cards(stats: dict) -> str:
         name = METHOD_NAMES.get(prefix, prefix)
         sys_err = s.get("wmean_err_sys")
         zp = _pm(s.get("wmean"), s.get("wmean_err")) + (f" (stat) ± {_num(sys_err)} (sys)" if sys_err is not None else "")
-        h0 = _pm(s.get("h0_implied"), s.get("h0_implied_err", s.get("h0_implied_err_stat")), ".1f", ".1f")
-        note = "" if s.get("h0_independent", True) else " <span class='muted'>(not independent: the calibration's zero point assumes an H0)</span>"
+        h0 = _pm(s.get("h0_implied"), s.get("h0_implied_err_stat"), ".1f", ".1f") + (
+            f" (stat) ± {_num(s.get('h0_implied_err_sys'), '.1f')} (sys)" if s.get("h0_implied") is not None else "")
+        note = ("" if s.get("h0_implied_independent", True)
+                else f" <span class='muted'>({_e(s.get('h0_implied_note', 'not independent'))})</span>")
         cards.append(f"""<div class="card"><div>{_e(name)}</div>
 <div><b>{_e(s.get('n_used', 0))}</b> galaxies used <span class="muted">of {_e(s.get('n_measured', 0))} measured</span></div>
 <div>zero-point offset ⟨Δμ⟩ = {zp} mag</div>

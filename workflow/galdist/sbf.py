@@ -16,17 +16,19 @@ A_red are the extinction stage's A_<band> columns, R_<band> E(B-V) each.
 Analytic error (first order), E(B-V) entering m0 and c0 as ONE error source: the
 extinction stage's errors A_<band>_err = R_<band> sigma_E are fully correlated, so
 
-    sigma_mu^2 = sigma_m^2 + (s sigma_c)^2 + (-sigma_A,m + s (sigma_A,blue - sigma_A,red))^2
-                 + sigma_int^2 + var_coeff(c0) + sigma_zp^2,     s = dM/dc at c0
+    sigma_mu^2     = sigma_m^2 + (s sigma_c)^2 + (-sigma_A,m + s (sigma_A,blue - sigma_A,red))^2
+                     + (K terms)^2 + sigma_int^2              (random, sbf_mu_err)
+    sigma_mu,sys^2 = var_coeff(c0) + sigma_zp^2               (systematic, sbf_mu_err_sys)
 
-(the third term is (dmu/dE sigma_E)^2 with dmu/dE = -R_m + s (R_blue - R_red)),
-where var_coeff is the calibration polynomial's variance from its coefficient
+s = dM/dc at c0 (the third term is (dmu/dE sigma_E)^2 with dmu/dE = -R_m + s (R_blue -
+R_red)); var_coeff is the calibration polynomial's variance from its coefficient
 covariance and sigma_zp the calibration's separate ``zero_point_error`` (each
-calibration file says which of the two holds its zero-point error; never both).
-The seeded Monte Carlo redraws m, c, the extinction (one standard normal per galaxy
-and draw, scaling all three A errors, i.e. E(B-V) redrawn once for m0 and c0), the
-coefficients (full covariance) and the scatter, and re-runs the same functions that
-compute the value.
+calibration file says which of the two holds its zero-point error; never both): both
+are common to every galaxy, so they are kept apart from the random part.
+The seeded Monte Carlo of the random part redraws m, c, the extinction (one standard
+normal per galaxy and draw, scaling all three A errors, i.e. E(B-V) redrawn once for
+m0 and c0), the K terms and the scatter, and re-runs the same functions that compute
+the value.
 
 Calibrations shipped in ``config/calibrations/``: Tonry et al. 1997 (ApJ 475,
 399) Cousins I vs (V-I)_0; Blakeslee et al. 2009 (ApJ 694, 556) ACS z850 vs
@@ -43,7 +45,6 @@ approximation, small against the other terms at these redshifts.
 
 from __future__ import annotations
 
-import math
 
 import numpy as np
 
@@ -53,9 +54,6 @@ from .distance import finish
 from .settings import method_settings
 from .uncertainty import monte_carlo, quadrature
 
-OUTPUT_COLUMNS = ("sbf_color_0", "sbf_mag_0", "sbf_abs_mag", "sbf_mu", "sbf_mu_err",
-                  "sbf_mu_err_mc", "sbf_d_mpc", "sbf_d_err_mpc", "sbf_malmquist_applied",
-                  "sbf_flags")
 
 _EXTINCTION_ERR = "error of {} (mag); the three A errors are one source, E(B-V)'s; absent, NaN or negative = 0"
 # Inputs of ``sbf_distance``: name -> (required, meaning).
@@ -132,17 +130,14 @@ def corrected_magnitudes(sbf_mag, sbf_color, *, A_mag, A_blue, A_red, K_mag=0.0,
     return mag_0, color_0
 
 
-def _modulus_draw(sbf_mag, sbf_color, extinction_draw, scatter_draw, coeff_draw, K_mag, K_blue, K_red, *,
-                  cal, root, corr, a_err):
+def _modulus_draw(sbf_mag, sbf_color, extinction_draw, scatter_draw, K_mag, K_blue, K_red, *, cal, corr, a_err):
     """mu of one Monte Carlo draw: the same corrections and calibration as the value;
     ``extinction_draw`` (one standard normal per row) shifts all three A by their errors;
     the three K are drawn each within its own error."""
     shifted = {k: corr[k] + extinction_draw * a_err[k] for k in _A_INPUTS}
     shifted |= {"K_mag": K_mag, "K_blue": K_blue, "K_red": K_red}
     mag_0, color_0 = corrected_magnitudes(sbf_mag, sbf_color, **(corr | shifted))
-    shift = coeff_draw @ root.T if root.shape[1] else None
-    coeffs = None if shift is None else cal.coefficients + shift
-    return mag_0 - cal.polynomial(color_0, coeffs) + scatter_draw
+    return mag_0 - cal.relation(color_0) + scatter_draw
 
 
 def _as_rows(name, value, n):
@@ -164,7 +159,7 @@ def sbf_distance(inputs: dict, calibration: Calibration, settings: SBFSettings |
     """SBF distance moduli, distances and flags; one output row per input row.
 
     ``inputs``: dict of arrays (scalars broadcast) named as in ``INPUTS``.
-    Returns the columns of ``OUTPUT_COLUMNS``. Rows with a missing input, or a
+    Returns the columns of its registry entry (``galdist.methods``). Rows with a missing input, or a
     corrected colour outside the calibration's valid range (unless
     ``settings.allow_extrapolation``), get NaN distances and a flag; no row is
     dropped. Raises ValueError for structural problems (unknown or missing keys,
@@ -223,27 +218,24 @@ def sbf_distance(inputs: dict, calibration: Calibration, settings: SBFSettings |
     extinction_term = -a_err["A_mag"] + slope * (a_err["A_blue"] - a_err["A_red"])  # dmu/dE sigma_E
     # K enters like A: mu = m0 - M(c0), m0 = m - K_mag, c0 = c - (K_blue - K_red)
     k_terms = (k_err["K_mag"], slope * k_err["K_blue"], slope * k_err["K_red"])
-    mu_err = quadrature(m_err, slope * c_err, extinction_term, *k_terms, calibration.scatter,
-                        np.sqrt(np.maximum(calibration.relation_variance(color_0), 0.0)),
-                        calibration.zero_point_error)
+    mu_err = quadrature(m_err, slope * c_err, extinction_term, *k_terms, calibration.scatter)
+    mu_err_sys = quadrature(np.sqrt(np.maximum(calibration.relation_variance(color_0), 0.0)),
+                            calibration.zero_point_error)
     good = np.isfinite(mu)
     mu_err = np.where(good, mu_err, np.nan)
 
     # --- Monte Carlo -----------------------------------------------------------------
     if settings.mc_draws > 0:
-        root = calibration.covariance_root()
         with_error = (a_err["A_mag"] > 0) | (a_err["A_blue"] > 0) | (a_err["A_red"] > 0)
-        values = {"sbf_mag": m, "sbf_color": c, "extinction_draw": zeros, "scatter_draw": zeros,
-                  "coeff_draw": np.zeros((n, root.shape[1]))} | K
+        values = {"sbf_mag": m, "sbf_color": c, "extinction_draw": zeros, "scatter_draw": zeros} | K
         sigmas = {"sbf_mag": m_err, "sbf_color": c_err, "extinction_draw": np.where(with_error, 1.0, 0.0),
-                  "scatter_draw": math.hypot(calibration.scatter, calibration.zero_point_error),
-                  "coeff_draw": 1.0} | k_err
+                  "scatter_draw": calibration.scatter} | k_err
         _, mu_err_mc = monte_carlo(_modulus_draw, values, sigmas, n_draws=int(settings.mc_draws),
                                    seed=int(settings.mc_seed),
-                                   fixed={"cal": calibration, "root": root, "corr": corr, "a_err": a_err})
+                                   fixed={"cal": calibration, "corr": corr, "a_err": a_err})
         mu_err_mc = np.where(good, mu_err_mc, np.nan)
     else:
         mu_err_mc = np.full(n, np.nan)
 
     return {"sbf_color_0": color_0, "sbf_mag_0": mag_0, "sbf_abs_mag": abs_mag} | finish(
-        "sbf", mu, mu_err, mu_err_mc, out_flags, settings.malmquist, settings.malmquist_kind)
+        "sbf", mu, mu_err, mu_err_sys, mu_err_mc, out_flags, settings.malmquist, settings.malmquist_kind)

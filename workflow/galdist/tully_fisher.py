@@ -25,15 +25,17 @@ Calibration forms (YAML data, ``galdist.calibration``):
 * ``inverse``: x - pivot = a_0 + a_1 (M - magnitude_pivot), solved exactly for M
   (degree 1 only);
 * ``baryonic``: log10 M_b = sum a_k (log V - pivot)^k, V = f W^i (f = 1/2 by
-  default), M_b = Upsilon L + 1.33 M_HI with M_HI = 2.356e5 d^2 S_21 (common
-  practice; Roberts 1962, Haynes & Giovanelli 1984, from memory). Both mass terms
-  scale as d^2, so d = sqrt(M_b,pred / beta) exactly, beta = M_b / d^2.
+  default), M_b = Upsilon L + 1.33 M_HI with M_HI = 2.356e5 d_L^2 S_21 / (1 + z)
+  (Meyer et al. 2017, PASA 34, 52, Eq. 48, from memory; z the observed redshift). Both
+  mass terms scale as d^2, so d = sqrt(M_b,pred / beta) exactly, beta = M_b / d^2.
 
-Errors: first-order analytic propagation (``tf_mu_err``) of magnitude, width,
-axis ratio (through i, W^i and A_int), A_gal, K, HI flux, mass-to-light ratio,
-calibration coefficients (with covariance), zero-point error and intrinsic
-scatter; and an independent seeded Monte Carlo (``tf_mu_err_mc``) that redraws all
-of them and re-runs the same vectorised chain (``galdist.uncertainty.monte_carlo``).
+Errors, kept apart (``galdist.distance.finish``): the random error ``tf_mu_err``,
+first-order analytic propagation of magnitude, width, axis ratio (through i, W^i
+and A_int), A_gal, K, HI flux, mass-to-light ratio and the intrinsic scatter; the
+systematic error ``tf_mu_err_sys`` of the calibration coefficients (with
+covariance) and zero point, common to every galaxy; and an independent seeded Monte
+Carlo of the random part (``tf_mu_err_mc``) that redraws the same inputs and
+re-runs the same vectorised chain (``galdist.uncertainty.monte_carlo``).
 Optional homogeneous Malmquist correction of the distance, d exp(3.5 Delta^2)
 (Lynden-Bell et al. 1988, ApJ 326, 19, from memory); ``tf_mu`` itself is never
 Malmquist-corrected.
@@ -65,11 +67,6 @@ INTERNAL_EXTINCTION_GAMMA = {"Cousins I": (0.92, 1.63), "2MASS Ks": (0.22, 0.40)
 #: HI mass M_HI / M_sun = HI_MASS_COEFFICIENT d_Mpc^2 S_21 / (Jy km/s)
 #: (common practice; Roberts 1962, Haynes & Giovanelli 1984, from memory).
 HI_MASS_COEFFICIENT = 2.356e5
-
-#: Output columns, in order.
-OUTPUT_COLUMNS = ("tf_inclination_deg", "tf_w_z", "tf_w_r", "tf_logw_i", "tf_a_int",
-                  "tf_mag_corr", "tf_abs_mag", "tf_mu", "tf_mu_err", "tf_mu_err_mc",
-                  "tf_d_mpc", "tf_d_err_mpc", "tf_malmquist_applied", "tf_flags")
 
 _REQUIRED_INPUTS = ("mag", "w50", "axis_ratio", "z_helio")
 _OPTIONAL_INPUTS = ("mag_err", "w50_err", "axis_ratio_err", "a_gal", "a_gal_err", "k_corr",
@@ -235,9 +232,11 @@ def _gamma(cal: Calibration, s: TFSettings) -> tuple[float, float]:
 
 # ------------------------------------------------------------------------ the chain
 
-def _chain(cal, s, g0, g1, *, mag, a_gal, k_corr, w50, axis_ratio, z, resolution, hi_flux,
-           mass_to_light, coeffs=None, quad=None, scatter=0.0, zero_point=0.0):
-    """Every intermediate of the chain; vectorised, also used by the Monte Carlo."""
+def _chain(cal, s, g0, g1, *, mag, a_gal, k_corr, w50, axis_ratio, z, z_obs, resolution, hi_flux,
+           mass_to_light, scatter=0.0):
+    """Every intermediate of the chain; vectorised, also used by the Monte Carlo. ``z``:
+    the redshift the width is de-stretched with (0 when that step is off); ``z_obs``: the
+    observed redshift of the HI mass's 1/(1 + z) (baryonic form)."""
     w = resolution_correction(w50, resolution) if resolution is not None else w50
     w_z = redshift_broadening(w, z) if s.apply_redshift_broadening else w
     wt, wc = s.turbulence_constants()
@@ -250,24 +249,28 @@ def _chain(cal, s, g0, g1, *, mag, a_gal, k_corr, w50, axis_ratio, z, resolution
     out = {"incl": incl, "w_z": w_z, "w_r": w_r, "logw_i": logw_i, "a_int": a_int, "m_c": m_c}
     if cal.form == "baryonic":
         log_v = logw_i + np.log10(s.velocity_width_factor)
-        log_mb = cal.relation(log_v, coeffs) + scatter
+        log_mb = cal.relation(log_v) + scatter
         # beta = M_b / d^2: stellar Upsilon L / d^2 plus gas 1.33 M_HI / d^2 (d in Mpc,
         # mu = 5 log10 d + 25, so L / d^2 = 10^(-0.4 (m_c - M_sun - 25)) L_sun).
         ell = 10.0 ** (-0.4 * (m_c - s.abs_mag_sun - 25.0))
-        gas = s.hi_mass_factor * s.hi_mass_coefficient * hi_flux
+        # M_HI = 2.356e5 d_L^2 S / (1 + z) (Meyer et al. 2017, PASA 34, 52, Eq. 48; from memory)
+        gas_per_flux = s.hi_mass_factor * s.hi_mass_coefficient / (1.0 + np.asarray(z_obs, dtype=float))
+        gas = gas_per_flux * hi_flux
         beta = mass_to_light * ell + gas
         with np.errstate(divide="ignore", invalid="ignore"):
             mu = 2.5 * (log_mb - np.log10(beta)) + 25.0
-        out.update(log_v=log_v, log_mb=log_mb, ell=ell, gas=gas, beta=beta,
-                   mu=mu + zero_point, abs_mag=m_c - mu - zero_point)
+        out.update(log_v=log_v, log_mb=log_mb, ell=ell, gas=gas, gas_per_flux=gas_per_flux, beta=beta,
+                   mu=mu, abs_mag=m_c - mu)
     else:
-        abs_mag = cal.relation(logw_i, coeffs, quad) + scatter
-        out.update(abs_mag=abs_mag, mu=m_c - abs_mag + zero_point)
+        abs_mag = cal.relation(logw_i) + scatter
+        out.update(abs_mag=abs_mag, mu=m_c - abs_mag)
     return out
 
 
 def _analytic_mu_err(cal, s, g0, g1, c, a, have_res):
-    """First-order sigma_mu from all inputs; ``c`` = central chain, ``a`` = arrays."""
+    """First-order (random, systematic) sigma_mu; ``c`` = central chain, ``a`` = arrays.
+    Random: the measurements and the intrinsic scatter; systematic: the calibration's
+    coefficients (covariance) and zero point."""
     q = a["axis_ratio"]
     x = c["logw_i"]
     # d x / d W50 through resolution, (1+z) and turbulence
@@ -295,7 +298,7 @@ def _analytic_mu_err(cal, s, g0, g1, c, a, have_res):
         dmu_dmc = f_star
         dmu_dx = 2.5 * cal.polynomial_slope(c["log_v"]) - f_star * dA_dx
         dmu_dq = -f_star * dA_dq + dmu_dx * dx_dq
-        gas_term = -2.5 * s.hi_mass_factor * s.hi_mass_coefficient / (c["beta"] * LN10) * a["hi_flux_err"]
+        gas_term = -2.5 * c["gas_per_flux"] / (c["beta"] * LN10) * a["hi_flux_err"]
         ml_term = -2.5 * c["ell"] / (c["beta"] * LN10) * s.mass_to_light_err
         cal_var = 6.25 * cal.relation_variance(c["log_v"])
         scatter = 2.5 * cal.scatter
@@ -306,14 +309,17 @@ def _analytic_mu_err(cal, s, g0, g1, c, a, have_res):
         gas_term = ml_term = 0.0
         cal_var = cal.relation_variance(x)
         scatter = cal.scatter
-    return uncertainty.quadrature(
+    random = uncertainty.quadrature(
         dmu_dmc * a["mag_err"], dmu_dmc * a["a_gal_err"], dmu_dmc * a["k_corr_err"],
         dmu_dx * dx_dw * a["w50_err"], dmu_dq * a["axis_ratio_err"], gas_term, ml_term,
-        np.sqrt(cal_var), np.full_like(x, scatter), np.full_like(x, cal.zero_point_error))
+        np.full_like(x, scatter))
+    return random, uncertainty.quadrature(np.sqrt(cal_var), np.full_like(x, cal.zero_point_error))
 
 
 def _monte_carlo_mu_err(cal, s, g0, g1, a, have_res, have_hi):
-    """Standard deviation of mu over seeded Gaussian redraws of every input."""
+    """Standard deviation of mu over seeded Gaussian redraws of every measured input and
+    the intrinsic scatter: the Monte Carlo of the random error (the calibration's
+    coefficients are fixed)."""
     values = {"mag": a["mag"], "a_gal": a["a_gal"], "k_corr": a["k_corr"], "w50": a["w50"],
               "axis_ratio": a["axis_ratio"]}
     sigmas = {"mag": a["mag_err"], "a_gal": a["a_gal_err"], "k_corr": a["k_corr_err"],
@@ -322,26 +328,14 @@ def _monte_carlo_mu_err(cal, s, g0, g1, a, have_res, have_hi):
         values["hi_flux"], sigmas["hi_flux"] = a["hi_flux"], a["hi_flux_err"]
     if cal.form == "baryonic":
         values["mass_to_light"], sigmas["mass_to_light"] = float(s.mass_to_light), s.mass_to_light_err
-    # Calibration terms are scalars: one draw per Monte Carlo realisation, shared by
-    # the rows of the shard (each row's spread over draws is still its own error).
-    root = cal.covariance_root()
-    for k in range(root.shape[1]):
-        values[f"cal_{k}"], sigmas[f"cal_{k}"] = 0.0, 1.0
-    if cal.quadratic is not None:
-        values["cal_quad"] = float(cal.quadratic["coefficient"])
-        sigmas["cal_quad"] = float(cal.quadratic.get("error", 0.0))
     values["scatter"], sigmas["scatter"] = 0.0, cal.scatter
-    values["zero_point"], sigmas["zero_point"] = 0.0, cal.zero_point_error
     fixed_res = a["resolution"] if have_res else None
 
     def mu_of(**kw):
-        unit = np.array([kw.pop(f"cal_{k}") for k in range(root.shape[1])])
-        coeffs = cal.coefficients + root @ unit
         return _chain(cal, s, g0, g1, mag=kw["mag"], a_gal=kw["a_gal"], k_corr=kw["k_corr"],
-                      w50=kw["w50"], axis_ratio=kw["axis_ratio"], z=a["z"], resolution=fixed_res,
+                      w50=kw["w50"], axis_ratio=kw["axis_ratio"], z=a["z"], z_obs=a["z_obs"], resolution=fixed_res,
                       hi_flux=kw.get("hi_flux", 0.0), mass_to_light=kw.get("mass_to_light", 1.0),
-                      coeffs=coeffs, quad=kw.get("cal_quad"), scatter=kw["scatter"],
-                      zero_point=kw["zero_point"])["mu"]
+                      scatter=kw["scatter"])["mu"]
 
     _, std = uncertainty.monte_carlo(mu_of, values, sigmas, n_draws=s.mc_draws, seed=s.mc_seed)
     return std
@@ -359,7 +353,7 @@ def tully_fisher_distance(inputs: Mapping[str, np.ndarray], calibration: Calibra
     off); optional ``mag_err``, ``w50_err``, ``axis_ratio_err``, ``a_gal_err``,
     ``k_corr_err``, ``w50_resolution`` (km/s), ``hi_flux`` (Jy km/s, baryonic gas
     term; absent means stellar mass only), ``hi_flux_err``, ``quality_flags``,
-    ``ext_flags``, ``kcorr_flags``. Returns ``OUTPUT_COLUMNS`` as arrays of length n.
+    ``ext_flags``, ``kcorr_flags``. Returns the columns of its registry entry (``galdist.methods``) as arrays of length n.
     Row-level problems give NaN plus a ``tf_flags`` bit; structural ones raise
     ValueError.
     """
@@ -397,9 +391,10 @@ def tully_fisher_distance(inputs: Mapping[str, np.ndarray], calibration: Calibra
          "hi_flux_err": col("hi_flux_err") if have_hi else np.zeros(n),
          "mass_to_light": float(s.mass_to_light or 1.0)}
     z_used = a["z"] if s.apply_redshift_broadening else np.zeros(n)
+    a["z_obs"] = a["z"] if have_hi else np.zeros(n)
 
     c = _chain(calibration, s, g0, g1, mag=a["mag"], a_gal=a["a_gal"], k_corr=a["k_corr"],
-               w50=a["w50"], axis_ratio=a["axis_ratio"], z=z_used, resolution=a["resolution"],
+               w50=a["w50"], axis_ratio=a["axis_ratio"], z=z_used, z_obs=a["z_obs"], resolution=a["resolution"],
                hi_flux=a["hi_flux"], mass_to_light=a["mass_to_light"])
 
     # ---- flags
@@ -408,7 +403,7 @@ def tully_fisher_distance(inputs: Mapping[str, np.ndarray], calibration: Calibra
     ext = np.asarray(inputs.get("ext_flags", np.zeros(n)), dtype=flags.FLAG_DTYPE)
     kcf = np.asarray(inputs.get("kcorr_flags", np.zeros(n)), dtype=flags.FLAG_DTYPE)
     needed = [a["mag"], a["w50"], a["axis_ratio"], a["a_gal"], a["k_corr"], a["hi_flux"]]
-    if s.apply_redshift_broadening:
+    if s.apply_redshift_broadening or have_hi:
         needed.append(a["z"])
     missing_row = np.zeros(n, dtype=bool)
     for v in needed:
@@ -416,7 +411,7 @@ def tully_fisher_distance(inputs: Mapping[str, np.ndarray], calibration: Calibra
     # Quality bits that name one TF input (MAG_INVALID does not say which band, so
     # the magnitude is judged by its value, which ingest set to NaN if invalid).
     q_bits = Quality.WIDTH_INVALID | Quality.AXIS_RATIO_INVALID
-    if s.apply_redshift_broadening:
+    if s.apply_redshift_broadening or have_hi:
         q_bits |= Quality.REDSHIFT_INVALID
     missing_row |= flags.has(quality, q_bits)
     flags.set_where(f, missing_row, Method.MISSING_INPUT)
@@ -432,8 +427,8 @@ def tully_fisher_distance(inputs: Mapping[str, np.ndarray], calibration: Calibra
     blank = missing_row | (out_of_range & (not s.allow_extrapolation))
     mu = np.where(blank, np.nan, c["mu"])
     abs_mag = np.where(blank, np.nan, c["abs_mag"])
-    mu_err = np.where(np.isfinite(mu), _analytic_mu_err(calibration, s, g0, g1, c, {**a, "z": z_used},
-                                                         have_res), np.nan)
+    mu_err, mu_err_sys = _analytic_mu_err(calibration, s, g0, g1, c, {**a, "z": z_used}, have_res)
+    mu_err = np.where(np.isfinite(mu), mu_err, np.nan)
     if s.mc_draws:
         mc_inputs = {**a, "z": z_used}
         mu_err_mc = np.where(np.isfinite(mu), _monte_carlo_mu_err(calibration, s, g0, g1, mc_inputs,
@@ -443,4 +438,4 @@ def tully_fisher_distance(inputs: Mapping[str, np.ndarray], calibration: Calibra
     return {
         "tf_inclination_deg": c["incl"], "tf_w_z": c["w_z"], "tf_w_r": c["w_r"],
         "tf_logw_i": c["logw_i"], "tf_a_int": c["a_int"], "tf_mag_corr": c["m_c"], "tf_abs_mag": abs_mag,
-    } | distance.finish("tf", mu, mu_err, mu_err_mc, f, s.malmquist, s.malmquist_kind)
+    } | distance.finish("tf", mu, mu_err, mu_err_sys, mu_err_mc, f, s.malmquist, s.malmquist_kind)

@@ -73,6 +73,8 @@ CALIBRATION_FILES = {m: cal.path for m, cal in CALIBRATIONS.items()}
 EXTINCTION_TABLE = (str(gconfig.extinction_table_file(config))
                     if config["extinction"]["coefficients"] == "table" else None)
 CALIBRATION_DIGESTS = {m: cal.sha256 for m, cal in CALIBRATIONS.items()}
+# what each method's jobs read of the config, with its calibration's conventions applied to this run
+METHOD_CONFIG = {m: REGISTRY[m].used_config(config, cal) for m, cal in CALIBRATIONS.items()}
 TABLE_DIGEST = content_digest([EXTINCTION_TABLE])
 
 

@@ -24,7 +24,7 @@ if METHODS:
             method="|".join(METHODS),
             calibration="|".join(CALIBRATIONS[m].name for m in METHODS),
         params:
-            method_config=lambda w: REGISTRY[w.method].used_config(config),  # its section, the bands, what it uses
+            method_config=lambda w: METHOD_CONFIG[w.method],  # its section, the bands, what it uses, conventions
             content=lambda w: CALIBRATION_DIGESTS[w.method],  # an edited calibration re-runs, whatever its time stamp
         log:
             f"{LOGS}/{{method}}/{{calibration}}/part-{{shard}}.log",
