@@ -695,3 +695,32 @@ def test_dust_laws(script):
     cont, att = script.attenuate("calzetti", 0.1, wave, wave, old, young, neb, lines)
     k = script.calzetti_k(5500.0)
     assert att[0, 0] == pytest.approx(10 ** (-0.4 * k * 0.1 / 0.44))
+
+
+def test_disc_internal_reddening_of_the_matched_colour():
+    # A_int,I = gamma_I log10(a/b), gamma_I = 0.92 + 1.63 (log W^i - 2.5) (Tully et al. 1998,
+    # AJ 115, 2264, from memory). Edge-on-ish disc: b/a = 0.2 = q0 -> i = 90 deg, W^i = W50/(1+z);
+    # W50 = 316.2278 (1.01) km/s at z = 0.01 -> log W^i = 2.5, gamma = 0.92,
+    # A_int,I = 0.92 log10(5) = 0.6430; with (A_V - A_I)/A_I = 0.78: E(V-I) = 0.50156 (hand)
+    from galdist.kcorr import disc_colour_excess
+
+    e = disc_colour_excess(np.array([316.2278 * 1.01, np.nan, 300.0]), np.array([0.2, 0.3, np.nan]),
+                           np.array([0.01, 0.01, 0.01]), 0.78)
+    assert e[0] == pytest.approx(0.92 * np.log10(5.0) * 0.78, abs=1e-6)
+    assert e[1] == 0.0 and e[2] == 0.0   # no width or no axis ratio: not corrected
+    # face-on: no internal extinction, no reddening
+    assert disc_colour_excess(np.array([300.0]), np.array([1.0]), np.array([0.0]), 0.78)[0] == 0.0
+
+
+def test_reddening_per_internal_extinction_follows_the_milky_way_law():
+    # (A_V - A_I) / A_I for R_V = 3.1: Cousins V and I, 3.315 and 1.940 per E(B-V) in
+    # Schlegel, Finkbeiner & Davis 1998 Table 6 (from memory): (3.315 - 1.940) / 1.940 = 0.709;
+    # Schlafly & Finkbeiner 2011 Table 6 (secondary copy): (2.742 - 1.505) / 1.505 = 0.822.
+    # galdist's Fitzpatrick 1999 value through the Bessell curves lies between them.
+    from galdist import filters as gfilters
+    from galdist.kcorr import reddening_per_a_i
+
+    bands = gfilters.load_bands({"V": {"filter": "bessell-V", "system": "Vega"},
+                                 "I": {"filter": "bessell-I", "system": "Vega"}})
+    ratio = reddening_per_a_i(bands, ("V", "I"), bands["I"])
+    assert 0.709 < ratio < 0.822

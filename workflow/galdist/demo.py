@@ -158,11 +158,15 @@ def _observe(rng, ra, dec, z_cos, v_pec, is_disc, conf):
     blue, red = kcfg["colour_pair"] or (None, None)
     ref = red if red in mags or blue is None else tf_band
     if blue is not None:
-        # the colour the K stage matches, Galactic extinction added back
+        # the colour the K stage matches, Galactic extinction and a disc's internal
+        # reddening added back
+        per_a_i = kgrid.meta.get("disc_reddening_per_a_i")
+        e_int = (np.where(has_hi, kcorr.disc_colour_excess(w50, axis_ratio, z_helio, per_a_i, tcfg["q0"]), 0.0)
+                 if per_a_i is not None else 0.0)
         if red == tf_band:
-            mags[blue] = mags[red] - a[red] + a[blue] + colour
+            mags[blue] = mags[red] - a[red] + a[blue] + colour + e_int
         elif blue == tf_band:
-            mags[red] = mags[blue] - a[blue] + a[red] - colour
+            mags[red] = mags[blue] - a[blue] + a[red] - colour - e_int
     for band in bands:
         if band not in mags:  # a band outside the colour pair: a plain rest-frame colour of 2 mag
             mags[band] = mags[ref] - a[ref] - k[ref] - 2.0 + a[band] + k[band]

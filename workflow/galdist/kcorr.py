@@ -675,3 +675,38 @@ def assign(grid: KGrid, z, colour_obs, default_template: str, clip_tolerance: fl
     out["kcorr_template"] = tpl
     out["kcorr_flags"] = out_flags
     return out
+
+
+# ------------------------------------------------------------------ inclined discs
+
+#: gamma of A_int = gamma log10(a/b) in Cousins I: 0.92 + 1.63 (log W^i - 2.5)
+#: (Tully et al. 1998, AJ 115, 2264; from memory; as galdist.tully_fisher)
+GAMMA_I = (0.92, 1.63)
+
+
+def reddening_per_a_i(filters: dict, colour_pair, cousins_i_filter) -> float:
+    """(A_blue - A_red) / A_I for dust with the Milky Way's law (Fitzpatrick 1999, R_V =
+    3.1, through the bands' filter curves): what turns a disc's internal extinction in I
+    into the internal reddening of the colour the template is matched on (internal dust
+    assumed to redden like the Galaxy's, common practice)."""
+    from .extinction import law_coefficients
+
+    blue, red = colour_pair
+    r = law_coefficients({"blue": filters[blue], "red": filters[red], "I": cousins_i_filter}, law="F99", r_v=3.1)
+    return float((r["blue"] - r["red"]) / r["I"])
+
+
+def disc_colour_excess(w50, axis_ratio, z_helio, per_a_i: float, q0: float = 0.2):
+    """Internal colour excess E_int(blue - red) of an inclined disc: A_int,I (per_a_i),
+    A_int,I = gamma_I log10(a/b) with gamma_I from log W^i (``GAMMA_I``; W^i = W50 / (1 +
+    z) / sin i without the turbulence term, which moves gamma by < 0.05 there). 0 where
+    the disc has no width or axis ratio (not a disc the TF chain could correct)."""
+    from .tully_fisher import inclination, internal_extinction
+
+    w = np.asarray(w50, dtype=float) / (1.0 + np.asarray(z_helio, dtype=float))
+    incl = inclination(axis_ratio, q0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        logw_i = np.log10(w / np.sin(np.radians(incl)))
+        a_int = internal_extinction(axis_ratio, logw_i, *GAMMA_I)
+    return np.where(np.isfinite(a_int), a_int * per_a_i, 0.0)
+

@@ -78,8 +78,13 @@ def kcorr_grid(config: dict):
 
     kc, bands = config["kcorr"], config["bands"]
     vega = {b: v["ab_minus_vega"] for b, v in bands.items() if v["system"] == "Vega" and v["ab_minus_vega"] is not None}
-    return kcorr.build_grids(kcorr.load_templates(kc["templates"]), filters.load_bands(bands),
-                                kc["colour_pair"], vega, z_min=Z_HELIO_RANGE[0], z_max=kc["z_max"], dz=kc["dz"])
+    curves = filters.load_bands(bands)
+    grid = kcorr.build_grids(kcorr.load_templates(kc["templates"]), curves, kc["colour_pair"], vega,
+                             z_min=Z_HELIO_RANGE[0], z_max=kc["z_max"], dz=kc["dz"])
+    if kc["colour_pair"] and kc["disc_internal_reddening"]:
+        cousins_i = filters.load_bands({"I": {"filter": "bessell-I", "system": "Vega"}})["I"]
+        grid.meta["disc_reddening_per_a_i"] = kcorr.reddening_per_a_i(curves, kc["colour_pair"], cousins_i)
+    return grid
 
 
 def mu_grid(redshift_config: dict):
