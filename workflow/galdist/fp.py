@@ -107,6 +107,7 @@ import yaml
 from . import flags as F
 from .calibration import Calibration
 from .distance import finish
+from .settings import method_settings
 from .uncertainty import monte_carlo, quadrature
 
 LN10 = math.log(10.0)
@@ -114,7 +115,6 @@ ARCSEC_PER_RAD = 648000.0 / math.pi
 #: <mu_e> of 1 L_sun/pc^2 minus M_sun: 5 log10(206264.8 / 10) = 21.572 (definitions).
 SB_ZERO_POINT = 5.0 * math.log10(ARCSEC_PER_RAD / 10.0)
 
-ESTIMATORS = ("plane", "gaussian")
 
 # Inputs of ``fp_distance``: name -> (required, meaning with unit).
 INPUTS = {
@@ -184,98 +184,30 @@ def _is_number(v) -> bool:
     return isinstance(v, (int, float, np.integer, np.floating)) and not isinstance(v, bool)
 
 
-@dataclass(frozen=True)
-class FPSettings:
-    """Settings of the FP stage (config section ``fp:``), checked on creation.
+class FPSettings(method_settings("fp", {
+        "hubble_constant": ({"type": ["number", "null"], "exclusiveMinimum": 0, "exclusiveMaximum": 1000}, None),
+        "mag_offset": ({"type": "number"}, 0.0)})):
+    """Settings of the FP stage: the keys of the ``fp:`` section of the config schema, with
+    its defaults and rules (``galdist.settings``), plus two rules across keys below.
 
     estimator: 'plane' (eta = r_z - r_pred) or 'gaussian' (posterior in eta under the
         3-D Gaussian with the sample's selection; needs the calibration's
-        ``plane.gaussian`` terms, z_cmb and mu_z).
-    allow_extrapolation: compute distances for s or i outside the calibration's range
-        (flagged EXTRAPOLATED); otherwise NaN (flagged OUT_OF_RANGE).
-    apply_aperture_correction, apply_galactic_extinction, apply_kcorrection,
-    apply_dimming: switch steps 1 and 3 off for catalogs that already applied them.
-    selection_log_sigma_min: the sample's cut on s = log10 sigma_0 (gaussian only).
-    selection_mag_limit: the sample's limit on the observed total magnitude in the
-        catalog's system (gaussian only); null = no such cut.
-    mc_draws (0 = no Monte Carlo, else >= 2), mc_seed: the seeded Monte Carlo.
-    malmquist, malmquist_kind: homogeneous Malmquist factor (plane estimator only).
-    hubble_constant: the run's H0 (km/s/Mpc) from the cosmology config, not a user
-        key; required when the calibration's sizes assume an H0.
-    mag_offset: the bands config's offset of <mu_e>/m onto the calibration's system
-        (``galdist.sbf.system_offset``); not a user key.
+        ``plane.gaussian`` terms, z_cmb and mu_z); ``selection_*`` only with 'gaussian',
+        ``malmquist`` only with 'plane'.
+    Derived, not user keys: ``hubble_constant``, the run's H0 (km/s/Mpc) from the
+    cosmology config, required when the calibration's sizes assume an H0; ``mag_offset``,
+    the offset of <mu_e>/m onto the calibration's system (``galdist.photometry``).
     """
 
-    estimator: str = "plane"
-    allow_extrapolation: bool = False
-    apply_aperture_correction: bool = True
-    apply_galactic_extinction: bool = True
-    apply_kcorrection: bool = True
-    apply_dimming: bool = True
-    selection_log_sigma_min: float | None = None
-    selection_mag_limit: float | None = None
-    mc_draws: int = 200
-    mc_seed: int = 12345
-    malmquist: bool = False
-    malmquist_kind: str = "mean"
-    hubble_constant: float | None = None
-    mag_offset: float = 0.0
-
-    CONFIG_KEYS = ("estimator", "allow_extrapolation", "apply_aperture_correction",
-                   "apply_galactic_extinction", "apply_kcorrection", "apply_dimming",
-                   "selection_log_sigma_min", "selection_mag_limit", "mc_draws", "mc_seed",
-                   "malmquist", "malmquist_kind")
-
     def __post_init__(self):
-        def bad(key, allowed):
-            raise ValueError(f"fp.{key} = {getattr(self, key)!r}: must be {allowed}")
-
-        if self.estimator not in ESTIMATORS:
-            bad("estimator", f"one of {', '.join(ESTIMATORS)}")
-        for key in ("allow_extrapolation", "apply_aperture_correction", "apply_galactic_extinction",
-                    "apply_kcorrection", "apply_dimming", "malmquist"):
-            if not isinstance(getattr(self, key), bool):
-                bad(key, "true or false")
-        for key, lo, hi in (("selection_log_sigma_min", 0.0, 4.0), ("selection_mag_limit", -10.0, 40.0)):
-            v = getattr(self, key)
-            if v is not None and not (_is_number(v) and math.isfinite(v) and lo <= v <= hi):
-                bad(key, f"null or a number in [{lo:g}, {hi:g}]")
-            if v is not None and self.estimator != "gaussian":
-                bad(key, "null: the sample's selection enters only the gaussian estimator "
-                         "(set fp.estimator: gaussian, or remove the key)")
-        v = self.mc_draws
-        if not (isinstance(v, (int, np.integer)) and not isinstance(v, bool) and (v == 0 or v >= 2)):
-            bad("mc_draws", "an integer: 0 (no Monte Carlo) or >= 2")
-        v = self.mc_seed
-        if not (isinstance(v, (int, np.integer)) and not isinstance(v, bool) and v >= 0):
-            bad("mc_seed", "an integer >= 0")
-        if self.malmquist_kind not in ("mean", "median"):
-            bad("malmquist_kind", "'mean' or 'median'")
+        super().__post_init__()
+        for key in ("selection_log_sigma_min", "selection_mag_limit"):
+            if getattr(self, key) is not None and self.estimator != "gaussian":
+                raise ValueError(f"fp.{key} = {getattr(self, key)!r}: must be null: the sample's selection "
+                                 "enters only the gaussian estimator (set fp.estimator: gaussian, or remove the key)")
         if self.malmquist and self.estimator == "gaussian":
-            bad("malmquist", "false with the gaussian estimator (its selection term replaces a "
-                             "homogeneous Malmquist correction)")
-        v = self.hubble_constant
-        if v is not None and not (_is_number(v) and math.isfinite(v) and 0.0 < v < 1000.0):
-            bad("hubble_constant", "null or a number in (0, 1000) km/s/Mpc (the run's H0)")
-        if not (_is_number(self.mag_offset) and math.isfinite(self.mag_offset)):
-            bad("mag_offset", "a finite number (mag)")
-
-    @classmethod
-    def from_config(cls, section: dict | None, *, hubble_constant: float | None = None,
-                    mag_offset: float = 0.0, ignore=()) -> "FPSettings":
-        """Settings from the ``fp:`` config mapping.
-
-        Keys: ``CONFIG_KEYS``; keys in ``ignore`` (e.g. ``WORKFLOW_KEYS``) are skipped;
-        any other key is rejected by name. ``hubble_constant`` (the run's H0) comes from
-        the cosmology config and ``mag_offset`` from the bands config.
-        """
-        section = dict(section or {})
-        unknown = sorted(k for k in section if k not in cls.CONFIG_KEYS and k not in set(ignore))
-        if unknown:
-            raise ValueError(f"unknown config key(s) in 'fp': {', '.join(map(repr, unknown))}; "
-                             f"allowed: {', '.join(cls.CONFIG_KEYS)}")
-        kwargs = {k: section[k] for k in cls.CONFIG_KEYS if k in section}
-        return cls(**kwargs, hubble_constant=hubble_constant, mag_offset=mag_offset)
+            raise ValueError("fp.malmquist = True: must be false with the gaussian estimator (its selection "
+                             "term replaces a homogeneous Malmquist correction)")
 
 
 # --------------------------------------------------------------------- calibration
