@@ -148,8 +148,14 @@ def _sbf_corrected(inputs, cal, settings):
     e_m, e_c = g["A_mag_err"], g["A_blue_err"] - g["A_red_err"]
     var_y = g["sbf_mag_err"] ** 2 + e_m ** 2 + (g["K_mag_err"] ** 2 if k_on else 0.0)
     var_x = g["sbf_color_err"] ** 2 + e_c ** 2 + ((g["K_blue_err"] ** 2 + g["K_red_err"] ** 2) if k_on else 0.0)
-    return {"x": out["sbf_color_0"], "y": out["sbf_mag_0"], "observed": np.asarray(inputs["sbf_mag"], float),
-            "x_err": np.sqrt(var_x), "y_err": np.sqrt(var_y), "xy_cov": e_m * e_c, "flags": out["sbf_flags"]}
+    n = out["sbf_mu"].size
+
+    def rows(a):
+        return np.broadcast_to(np.asarray(a, dtype=float), (n,)).copy()
+
+    return {"x": out["sbf_color_0"], "y": out["sbf_mag_0"], "observed": rows(inputs["sbf_mag"]),
+            "x_err": rows(np.sqrt(var_x)), "y_err": rows(np.sqrt(var_y)), "xy_cov": rows(e_m * e_c),
+            "flags": out["sbf_flags"]}
 
 
 # -------------------------------------------------------------------- groups
