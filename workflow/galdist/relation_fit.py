@@ -25,7 +25,13 @@ truncation: each galaxy's density is normalised over the selected part,
 p(y | x, selected) = N(y; mu_g + M(x), V) / Phi((y_lim - mu_g - M(x)) / sqrt(V)),
 so -ln L gains sum ln Phi (e.g. Willick 1994, ApJS 92, 1, the "forward" bias treatment,
 from memory). A lower cut on the predictor (x >= x_lim) does the same for the inverse
-fit, P(x >= x_lim | y) = Phi((X(y) - x_lim) / sqrt(V)). Selection on the variable a form
+fit, P(x >= x_lim | y) = Phi((X(y) - x_lim) / sqrt(V)). An HI-flux limit (forward form) acts on a third
+variable, the HI "magnitude" s = -2.5 log10 S_21 (s < s_lim): galdist models it with
+its own linear relation in the group's frame, s = mu_g + h0 + h1 (x - pivot) + e_s, whose
+scatter may correlate with the relation's (correlation rho), and each galaxy's joint
+density of (y, s) is normalised by the probability that it passes the flux limit (and
+the magnitude limit, if both are declared: the bivariate normal CDF, from Owen's T
+function, Owen 1956, Ann. Math. Stat. 27, 1075, from memory). Selection on the variable a form
 conditions on is ignorable (a magnitude limit for the inverse fit, a width cut for the
 forward and bivariate fits; Schechter 1980, AJ 85, 801, from memory). The bivariate fit
 normalises at the galaxy's x with the vertical width sqrt((1 + M'^2) V_perp) (galdist's
@@ -65,6 +71,9 @@ class Sample:
     y_limit: np.ndarray | None = None  # per galaxy; +inf or None: no magnitude limit
     x_limit: np.ndarray | None = None  # per galaxy lower cut on x; -inf or None: none
     group_names: tuple = ()
+    s: np.ndarray | None = None  # HI magnitude -2.5 log10 S_21 (forward form with a flux limit)
+    s_err: np.ndarray | None = None
+    s_limit: np.ndarray | None = None  # per galaxy: selected where s < s_limit
 
     @property
     def n_groups(self) -> int:
@@ -85,7 +94,8 @@ class Sample:
 
         return Sample(self.x[rows], self.y[rows], self.x_err[rows], self.y_err[rows], self.xy_cov[rows],
                       np.concatenate(codes), self.ref_mu[chosen], self.ref_err[chosen],
-                      pick(self.y_limit), pick(self.x_limit))
+                      pick(self.y_limit), pick(self.x_limit), (), pick(self.s), pick(self.s_err),
+                      pick(self.s_limit))
 
 
 @dataclass(frozen=True)
@@ -101,6 +111,7 @@ class Model:
     magnitude_pivot: float = 0.0
     curvature_break: float | None = None
     selection: bool = True
+    hi_flux: bool = False  # model an HI-flux limit (forward form; Sample.s, s_err, s_limit)
 
     def __post_init__(self):
         if self.form not in FORMS:
@@ -109,10 +120,17 @@ class Model:
             raise ValueError("degree must be at least 1")
         if self.form == "inverse" and (self.degree != 1 or self.curvature_break is not None):
             raise ValueError("the inverse form is a straight line (degree 1, no curvature)")
+        if self.hi_flux and self.form != "forward":
+            raise ValueError("an HI-flux limit is modelled for the forward form only")
 
     @property
     def n_coeff(self) -> int:
         return self.degree + 1 + (self.curvature_break is not None)
+
+    @property
+    def with_hi(self) -> bool:
+        """The HI relation is part of the likelihood (only where its selection is)."""
+        return self.hi_flux and self.selection
 
 
 @dataclass
@@ -135,6 +153,7 @@ class Fit:
     converged: bool
     params: np.ndarray = field(repr=False)
     param_cov: np.ndarray | None = field(default=None, repr=False)
+    hi_relation: dict | None = None  # h0, h1, scatter, correlation (with errors) if modelled
 
     @property
     def coefficient_errors(self) -> np.ndarray:
@@ -168,20 +187,26 @@ def relation(model: Model, coeffs: np.ndarray, x: np.ndarray) -> tuple[np.ndarra
 
 @dataclass(frozen=True)
 class _Layout:
+    """Parameter vector: coefficients, ln s, [h0, h1, ln s_h, atanh rho], free moduli."""
+
     n_coeff: int
     free: np.ndarray  # bool per group
     fixed_mu: np.ndarray  # per group (used where not free)
+    n_hi: int = 0
 
     @property
     def n_params(self) -> int:
-        return self.n_coeff + 1 + int(self.free.sum())
+        return self.n_coeff + 1 + self.n_hi + int(self.free.sum())
 
     def unpack(self, p):
         c = p[: self.n_coeff]
         ln_s = p[self.n_coeff]
         mu = self.fixed_mu.copy()
-        mu[self.free] = p[self.n_coeff + 1:]
+        mu[self.free] = p[self.n_coeff + 1 + self.n_hi:]
         return c, ln_s, mu
+
+    def hi(self, p):
+        return p[self.n_coeff + 1: self.n_coeff + 1 + self.n_hi]
 
 
 def _layout(sample: Sample, model: Model) -> _Layout:
@@ -190,7 +215,25 @@ def _layout(sample: Sample, model: Model) -> _Layout:
         raise ValueError("no group has a reference distance modulus (mu_ref): the zero point cannot be "
                          "fitted; give at least one group an independent modulus")
     free = ~(has_ref & (np.nan_to_num(sample.ref_err, nan=0.0) == 0.0))
-    return _Layout(model.n_coeff, free, np.where(has_ref, sample.ref_mu, 0.0))
+    if model.with_hi and (sample.s is None or sample.s_limit is None):
+        raise ValueError("an HI-flux limit needs the HI magnitudes and their limit (Sample.s, s_limit)")
+    return _Layout(model.n_coeff, free, np.where(has_ref, sample.ref_mu, 0.0), 4 if model.with_hi else 0)
+
+
+def log_bivariate_normal_cdf(h, k, rho) -> np.ndarray:
+    """ln P(X < h, Y < k) for standard normals of correlation rho, vectorised, by Owen's
+    T function: Phi2 = [Phi(h) + Phi(k)] / 2 - T(h, a_h) - T(k, a_k) - beta, a_h = (k - rho
+    h) / (h sqrt(1 - rho^2)), beta = 1/2 where h k < 0 (or one is 0 and h + k < 0)
+    (Owen 1956, Ann. Math. Stat. 27, 1075, from memory)."""
+    from scipy.special import ndtr, owens_t
+
+    h = np.where(h == 0.0, 1e-12, h)
+    k = np.where(k == 0.0, 1e-12, k)
+    r = np.sqrt(1.0 - rho * rho)
+    p = (0.5 * (ndtr(h) + ndtr(k)) - owens_t(h, (k - rho * h) / (h * r)) - owens_t(k, (h - rho * k) / (k * r))
+         - np.where(h * k < 0.0, 0.5, 0.0))
+    # far in the lower tails the difference loses its digits: bounded below, galdist's choice
+    return np.log(np.clip(p, 1e-300, None))
 
 
 def neg_log_likelihood(p: np.ndarray, sample: Sample, model: Model, layout: _Layout) -> float:
@@ -211,6 +254,8 @@ def neg_log_likelihood(p: np.ndarray, sample: Sample, model: Model, layout: _Lay
         m, dm = relation(model, c, sample.x)
         r = sample.y - mu_i - m
         meas = sy2 + dm * dm * sx2 - 2.0 * dm * cxy
+        if model.form == "forward" and layout.n_hi:
+            return _forward_with_hi(p, sample, model, layout, r, meas + s2, mu, mu_i)
         if model.form == "forward":
             var = meas + s2
             nll = 0.5 * np.sum(r * r / var + np.log(var))
@@ -222,10 +267,38 @@ def neg_log_likelihood(p: np.ndarray, sample: Sample, model: Model, layout: _Lay
             vert = k * var
         if model.selection and sample.y_limit is not None:
             nll += np.sum(log_ndtr((sample.y_limit - mu_i - m) / np.sqrt(vert)))
+    return _finish(nll, sample, layout, mu)
+
+
+def _finish(nll, sample, layout, mu) -> float:
+    """Add the reference moduli's Gaussian constraints."""
     ref = np.isfinite(sample.ref_mu) & layout.free
     if ref.any():
         nll += 0.5 * np.sum(((mu[ref] - sample.ref_mu[ref]) / sample.ref_err[ref]) ** 2)
     return float(nll) if np.isfinite(nll) else 1e300
+
+
+def _forward_with_hi(p, sample, model, layout, r, var_y, mu, mu_i) -> float:
+    """Forward form with an HI-flux limit: the joint density of the magnitude and HI
+    residuals, normalised by the probability of passing the flux (and magnitude) limit."""
+    h0, h1, ln_sh, z_rho = layout.hi(p)
+    rho = np.tanh(z_rho)
+    sh = np.exp(ln_sh)
+    s_int = np.exp(p[layout.n_coeff])
+    pred_s = mu_i + h0 + h1 * (sample.x - model.pivot)
+    rs = sample.s - pred_s
+    var_s = sample.s_err ** 2 + sh * sh
+    cov = rho * s_int * sh
+    det = var_y * var_s - cov * cov
+    nll = 0.5 * np.sum((var_s * r * r - 2.0 * cov * r * rs + var_y * rs * rs) / det + np.log(det))
+    ks = (sample.s_limit - pred_s) / np.sqrt(var_s)
+    if sample.y_limit is not None:
+        m = relation(model, p[: layout.n_coeff], sample.x)[0]
+        hy = (sample.y_limit - mu_i - m) / np.sqrt(var_y)
+        nll += np.sum(log_bivariate_normal_cdf(hy, ks, cov / np.sqrt(var_y * var_s)))
+    else:
+        nll += np.sum(log_ndtr(ks))
+    return _finish(nll, sample, layout, mu)
 
 
 def _start(sample: Sample, model: Model, layout: _Layout) -> np.ndarray:
@@ -258,7 +331,13 @@ def _start(sample: Sample, model: Model, layout: _Layout) -> np.ndarray:
         c = coeffs
     if model.curvature_break is not None:
         c = np.append(c, 0.0)
-    return np.concatenate([c, [np.log(s)], mu[layout.free]])
+    hi = []
+    if layout.n_hi:
+        design = np.stack([np.ones_like(t), t], axis=1)
+        (h0, h1), *_ = np.linalg.lstsq(design, sample.s - mu[sample.group], rcond=None)
+        sh = max(float(np.std(sample.s - mu[sample.group] - h0 - h1 * t)), 1e-3)
+        hi = [h0, h1, np.log(sh), 0.0]
+    return np.concatenate([c, [np.log(s)], hi, mu[layout.free]])
 
 
 def _gradient(f, p, h):
@@ -329,12 +408,21 @@ def fit(sample: Sample, model: Model, covariance: bool = True, start: np.ndarray
     else:
         to_mag = 1.0
     mu_err = np.zeros(sample.n_groups)
+    first = nc + 1 + layout.n_hi
     if cov_p is not None:
-        mu_err[layout.free] = np.sqrt(np.clip(np.diag(cov_p)[nc + 1:], 0.0, None))
+        mu_err[layout.free] = np.sqrt(np.clip(np.diag(cov_p)[first:], 0.0, None))
     else:
         mu_err[layout.free] = np.nan
+    hi = None
+    if layout.n_hi:
+        h0, h1, ln_sh, z = layout.hi(p)
+        e = (np.sqrt(np.clip(np.diag(cov_p)[nc + 1: first], 0.0, None)) if cov_p is not None
+             else np.full(4, np.nan))
+        hi = {"h0": float(h0), "h0_err": float(e[0]), "h1": float(h1), "h1_err": float(e[1]),
+              "scatter": float(np.exp(ln_sh)), "scatter_err": float(np.exp(ln_sh) * e[2]),
+              "correlation": float(np.tanh(z)), "correlation_err": float((1 - np.tanh(z) ** 2) * e[3])}
     return Fit(model, c.copy(), cov_c, s_native * to_mag, s_err_native * to_mag, s_native, mu, mu_err,
-               layout.free, float(f(p)), bool(res.success or cov_p is not None), p, cov_p)
+               layout.free, float(f(p)), bool(res.success or cov_p is not None), p, cov_p, hi)
 
 
 def naive(model: Model) -> Model:
@@ -359,7 +447,8 @@ def bootstrap(sample: Sample, model: Model, n: int, seed: int, best: Fit | None 
         start = None
         if best is not None:
             layout = _layout(sub, model)
-            start = np.concatenate([best.params[: model.n_coeff + 1], best.group_mu[chosen][layout.free]])
+            start = np.concatenate([best.params[: model.n_coeff + 1 + layout.n_hi],
+                                    best.group_mu[chosen][layout.free]])
         one = fit(sub, model, covariance=False, start=start)
         out[k] = np.append(one.coefficients, one.scatter)
     return out
