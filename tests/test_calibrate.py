@@ -269,3 +269,25 @@ def test_calibrate_target_on_the_demo_sample(tmp_path):
     finally:
         os.chdir(here)
     assert result.errors == [], result.errors
+
+
+def test_hi_flux_limit_reaches_the_fit(tf_setup):
+    """selection.hi_flux_limit: rows without HI flux or below the limit are left out with
+    their reason, the others carry s = -2.5 log10 S_21 and the limit (Jy km/s) in the
+    same units, and the model is the forward fit with the flux selection."""
+    cfg, ph, settings = tf_setup
+    inputs, group, mu_true, *_ = tf_sample(3)
+    n = group.size
+    inputs["hi_flux"] = np.where(np.arange(n) % 10 == 0, np.nan, np.linspace(1.0, 20.0, n))
+    q = calibrate.corrected("tully_fisher", inputs, ph, settings)
+    section = {**cfg["calibrate"], "selection": {**cfg["calibrate"]["selection"], "hi_flux_limit": 2.0}}
+    ids = np.array([f"G{g}" for g in group], dtype=object)
+    mu_ref = np.where(group == 0, mu_true[0], np.nan)
+    sample, reason = calibrate.build_sample(q, ids, mu_ref, np.where(group == 0, 0.05, np.nan), section)
+    assert (reason == "no HI flux (selection.hi_flux_limit is set)").sum() == n // 10
+    assert np.all(inputs["hi_flux"][reason == "below selection.hi_flux_limit"] < 2.0)
+    assert sample.s.max() <= sample.s_limit[0] == pytest.approx(-2.5 * np.log10(2.0))
+    model = calibrate.model_for(section, "tully_fisher", sample)
+    assert model.hi_flux and model.selection and model.form == "forward"
+    with pytest.raises(ConfigError, match="hi_flux_limit"):
+        calibrate.check({**cfg, "calibrate": {**section, "form": "inverse", "catalog": None}})

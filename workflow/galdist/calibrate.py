@@ -132,8 +132,9 @@ def _tf_corrected(inputs, cal, settings):
     var_y = sum(_zero_nan(t) ** 2 for t in terms_y) + (dydw * sw) ** 2 + (dydq * sq) ** 2
     var_x = (dxdw * sw) ** 2 + (dxdq * sq) ** 2
     cov = dxdw * dydw * sw ** 2 + dxdq * dydq * sq ** 2
+    hi = np.asarray(inputs["hi_flux"], float) if "hi_flux" in inputs else np.full(x.shape, np.nan)
     return {"x": x, "y": y, "observed": np.asarray(inputs["mag"], float), "x_err": np.sqrt(var_x),
-            "y_err": np.sqrt(var_y), "xy_cov": cov, "flags": fl}
+            "y_err": np.sqrt(var_y), "xy_cov": cov, "flags": fl, "hi_flux": hi}
 
 
 def _sbf_corrected(inputs, cal, settings):
@@ -218,6 +219,11 @@ def build_sample(q: Mapping, group_ids, mu_ref, mu_ref_err, settings: Mapping):
         reason[(reason == "") & ~(q["observed"] <= sel["mag_limit"])] = "fainter than selection.mag_limit"
     if sel["predictor_min"] is not None:
         reason[(reason == "") & ~(q["x"] >= sel["predictor_min"])] = "predictor below selection.predictor_min"
+    hi_limit = sel.get("hi_flux_limit")
+    if hi_limit is not None:
+        hi = q.get("hi_flux", np.full(n, np.nan))
+        reason[(reason == "") & ~(hi > 0)] = "no HI flux (selection.hi_flux_limit is set)"
+        reason[(reason == "") & ~(hi >= hi_limit)] = "below selection.hi_flux_limit"
     # a free group's modulus rests on its members alone: a few members near the limit let
     # the truncated likelihood push it away without bound (their density piles up at the
     # limit as mu grows), so small groups without a reference modulus are left out
@@ -231,8 +237,14 @@ def build_sample(q: Mapping, group_ids, mu_ref, mu_ref_err, settings: Mapping):
         y_limit = y_limit_all[used]
     if sel["predictor_min"] is not None:
         x_limit = np.full(int(used.sum()), float(sel["predictor_min"]))
+    hi_cols = {}
+    if hi_limit is not None:
+        k = int(used.sum())
+        with np.errstate(divide="ignore", invalid="ignore"):
+            hi_cols = {"s": -2.5 * np.log10(q["hi_flux"][used]), "s_err": np.zeros(k),
+                       "s_limit": np.full(k, -2.5 * np.log10(hi_limit))}
     sample = rf.Sample(q["x"][used], q["y"][used], q["x_err"][used], q["y_err"][used], q["xy_cov"][used],
-                       codes, ref, err, y_limit=y_limit, x_limit=x_limit, group_names=tuple(names))
+                       codes, ref, err, y_limit=y_limit, x_limit=x_limit, group_names=tuple(names), **hi_cols)
     return sample, reason
 
 
@@ -247,10 +259,12 @@ def model_for(settings: Mapping, method: str, sample: rf.Sample) -> rf.Model:
     if mp is None and settings["form"] == "inverse":
         first = rf.fit(sample, rf.Model("forward", pivot=pivot, selection=False), covariance=False)
         mp = round(float(np.median(sample.y - first.group_mu[sample.group])) * 10) / 10
+    sel = settings["selection"]
+    hi = sel.get("hi_flux_limit") is not None
     return rf.Model(settings["form"], degree=settings["degree"], pivot=float(pivot),
                     magnitude_pivot=float(mp or 0.0), curvature_break=settings["curvature_break"],
-                    selection=settings["selection"]["mag_limit"] is not None
-                    or settings["selection"]["predictor_min"] is not None)
+                    selection=sel["mag_limit"] is not None or sel["predictor_min"] is not None or hi,
+                    hi_flux=hi)
 
 
 # --------------------------------------------------------------------- the fit
@@ -289,7 +303,8 @@ def summary(sample: rf.Sample, result: dict, reason: np.ndarray, name: str) -> d
            "rows_left_out": {str(r): int((reason == r).sum()) for r in sorted(set(reason) - {""})},
            "predictor_range": [float(sample.x.min()), float(sample.x.max())],
            "selection_aware": _fit_numbers(best), "naive": _fit_numbers(result["naive"]),
-           "group_moduli": groups, "residual_rms": float(np.sqrt(np.mean(res ** 2)))}
+           "group_moduli": groups, "residual_rms": float(np.sqrt(np.mean(res ** 2))),
+           "hi_relation": best.hi_relation}
     if boot.size:
         cov = np.cov(boot[:, :-1], rowvar=False).reshape(best.coefficients.size, -1)
         out["bootstrap"] = {"draws": int(boot.shape[0]), "covariance": cov.tolist(),
@@ -414,8 +429,11 @@ def sample_plan(config: Mapping):
     cfg = config["calibrate"]
     paths, fmt = sample_paths(config)
     as_run = {**config, "methods": [cfg["method"]]}
+    extra = dict(extra_required_columns(as_run))
+    if cfg["selection"]["hi_flux_limit"] is not None:
+        extra["hi_flux"] = "calibrate.selection.hi_flux_limit is set"
     return ingest.plan(paths, fmt, config["columns"], config["units"], list(config["bands"]), [cfg["method"]],
-                       extra_required_columns(as_run))
+                       extra)
 
 
 def sample_paths(config: Mapping) -> tuple[list[str], str]:
@@ -575,8 +593,9 @@ def check(config: Mapping, buildable=frozenset()) -> None:
                         "quadratic term above a break)")
     if method == "sbf" and cfg["curvature_break"] is not None:
         problems.append("config key 'calibrate.curvature_break': Tully-Fisher only; SBF takes calibrate.degree")
-    if method == "sbf" and cfg["selection"]["predictor_min"] is not None and form == "forward":
-        pass  # a colour cut conditions the forward fit on x: ignorable, accepted
+    if cfg["selection"]["hi_flux_limit"] is not None and (method != "tully_fisher" or form != "forward"):
+        problems.append("config key 'calibrate.selection.hi_flux_limit': modelled for the Tully-Fisher "
+                        "forward form only (calibrate.method tully_fisher, calibrate.form forward)")
     if extinction_convention(config) is None:
         ext = config["extinction"]
         problems.append(f"config key 'extinction': the fitted calibration must state its extinction convention, "
