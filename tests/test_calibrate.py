@@ -11,20 +11,18 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import json
-from pathlib import Path
 
 import numpy as np
 import pytest
 import yaml
 
 from galdist import calibrate, preflight
-from galdist import relation_fit as rf
 from galdist import tully_fisher as tf
 from galdist.calibration import load_calibration
 from galdist.demo import _observed_width
 from galdist.errors import ConfigError
 
-from conftest import REPO, copy_workflow, run_snakemake
+from conftest import copy_workflow, run_snakemake
 
 A0, A1, SCATTER = -21.2, -8.5, 0.3  # invented truth
 Q0 = 0.2

@@ -166,7 +166,8 @@ def group_references(group_ids: np.ndarray, mu_ref: np.ndarray, mu_ref_err: np.n
 
     A group's reference is the inverse-variance mean of its members' distinct
     (mu_ref, mu_ref_err) pairs (a value repeated on every member counts once; an error of
-    0 fixes the modulus); NaN where no member has one. Returns (names, codes, ref, err).
+    0, or none, fixes the modulus); NaN where no member has one. Returns (names, codes,
+    ref, err).
     """
     names, codes = np.unique(np.asarray(group_ids, dtype=str), return_inverse=True)
     ref, err = np.full(names.size, np.nan), np.full(names.size, np.nan)
@@ -229,7 +230,8 @@ def build_sample(q: Mapping, group_ids, mu_ref, mu_ref_err, settings: Mapping):
     # limit as mu grows), so small groups without a reference modulus are left out
     used = reason == ""
     small = _small_free_groups(gid, used, np.asarray(mu_ref, float), settings["min_group_members"])
-    reason[used & small] = f"group without reference modulus has fewer than {settings['min_group_members']} usable members"
+    minimum = settings["min_group_members"]
+    reason[used & small] = f"group without reference modulus has fewer than {minimum} usable members"
     used = reason == ""
     names, codes, ref, err = group_references(np.where(used, gid, "").astype(str)[used],
                                               np.asarray(mu_ref, float)[used], np.asarray(mu_ref_err, float)[used])
