@@ -163,8 +163,8 @@ def test_bootstrap_over_groups_is_seeded_and_agrees_with_hessian():
     sample, _ = simulate(5)
     model = rf.Model("forward", pivot=PIVOT)
     best = rf.fit(sample, model)
-    one = rf.bootstrap(sample, model, 30, seed=9, best=best)
-    two = rf.bootstrap(sample, model, 30, seed=9, best=best)
+    one = rf.bootstrap(sample, model, 15, seed=9, best=best)
+    two = rf.bootstrap(sample, model, 15, seed=9, best=best)
     np.testing.assert_array_equal(one, two)
     ratio = one[:, 1].std(ddof=1) / best.coefficient_errors[1]
     assert 0.5 < ratio < 2.0

@@ -380,18 +380,21 @@ def fit(sample: Sample, model: Model, covariance: bool = True, start: np.ndarray
     h = 1e-4 * np.maximum(1.0, np.abs(p))
     cov_p = None
     if covariance:
-        # Newton polish: BFGS's finite-difference gradient stops short of the optimum
+        # Newton polish (one Hessian, fresh gradients): BFGS's finite-difference
+        # gradient stops short of the optimum
+        hess = _hessian(f, p, h)
+        moved = False
         for _ in range(3):
-            hess = _hessian(f, p, h)
             try:
                 step = np.linalg.solve(hess, _gradient(f, p, h))
             except np.linalg.LinAlgError:
                 break
             if f(p - step) <= f(p):
-                p = p - step
+                p, moved = p - step, True
             else:
                 break
-        hess = _hessian(f, p, h)
+        if moved:
+            hess = _hessian(f, p, h)
         try:
             cov_p = np.linalg.inv(hess)
         except np.linalg.LinAlgError:
