@@ -18,6 +18,7 @@ include: "workflow/rules/redshift.smk"
 include: "workflow/rules/methods.smk"
 include: "workflow/rules/crosscheck.smk"
 include: "workflow/rules/report.smk"
+include: "workflow/rules/calibrate.smk"
 
 
 rule all:

@@ -10,6 +10,11 @@ zero-point offset consistent with zero. A sprinkle of bad rows exercises every
 ingest flag.
 
     python scripts/make_demo_survey.py OUT.parquet [--n 3000] [--seed 20261202]
+    python scripts/make_demo_survey.py OUT.parquet --calibration-sample [--seed ...]
+
+``--calibration-sample`` writes instead the invented calibration sample of the
+calibrate target (``galdist.demo_calibration``): discs in groups, some with reference
+distance moduli, cut at an apparent-magnitude limit.
 """
 
 from __future__ import annotations
@@ -32,8 +37,15 @@ def main(argv=None) -> int:
     ap.add_argument("--seed", type=int, default=20261202, help="random seed")
     ap.add_argument("--config", default=None,
                     help="galdist config whose bands and calibrations the demo follows (default config/config.yaml)")
+    ap.add_argument("--calibration-sample", action="store_true",
+                    help="write the invented calibration sample (groups, reference moduli) instead")
     args = ap.parse_args(argv)
-    table = demo.make_catalog(args.n, args.seed, demo.settings_from_config(args.config))
+    if args.calibration_sample:
+        from galdist import demo_calibration
+
+        table = demo_calibration.make_calibration_sample(args.seed, demo.settings_from_config(args.config))
+    else:
+        table = demo.make_catalog(args.n, args.seed, demo.settings_from_config(args.config))
     demo.write(table, args.out)
     print(f"wrote {len(table)} rows to {args.out}", file=sys.stderr)
     return 0

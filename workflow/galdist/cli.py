@@ -332,6 +332,7 @@ def cmd_run(args) -> int:
     for name, what in (("distances.parquet", "one row per input galaxy"),
                        ("summary.json", f"counts and statistics (galdist summary {shown})"),
                        ("plots/", "Hubble diagram, relations, histograms, sky"),
+                       ("calibrate/", "the fitted calibration file and its fit report (--target calibrate)"),
                        (f"logs/{RUN_LOG}", "the full Snakemake log")):
         if (run_dir / name.rstrip("/")).exists():
             _say(f"  {name:<22} {what}")

@@ -54,6 +54,21 @@ EXTINCTION_CONVENTIONS = {
 }
 
 
+def run_extinction_convention(config: Mapping) -> str | None:
+    """The convention the run's own extinction settings follow ('sf11' or 'sfd98', as a
+    calibration fitted from the run states it), else None: the law with R_V = 3.1 and the
+    convention's map scale, or the shipped SF11 table (which holds the 0.86) on 1998-map values."""
+    ext = config["extinction"]
+    if ext["coefficients"] == "table":
+        return "sf11" if ext["table"] == "sf11_table6" and math.isclose(ext["ebv_scale"], SF11_MAP_SCALE) else None
+    if ext["r_v"] != 3.1:
+        return None
+    for name, conv in EXTINCTION_CONVENTIONS.items():
+        if ext["law"] == conv["law"] and math.isclose(ext["ebv_scale"], conv["map_scale"]):
+            return name
+    return None
+
+
 def run_h0(config: Mapping) -> float:
     """The run's H0 (km/s/Mpc): the named cosmology's, or ``redshift.cosmology.H0``."""
     cosmology = config["redshift"]["cosmology"]

@@ -81,6 +81,9 @@ def check(user: dict, buildable: frozenset = frozenset(), sample_rows: bool = Tr
     if ok_cal and ok_bands:
         step("passbands and systems", lambda: _passbands(cfg, result.calibrations))
         step("method settings", lambda: _method_settings(cfg, result.calibrations))
+    if cfg["calibrate"]["catalog"]:
+        from . import calibrate
+        step("calibration sample", lambda: calibrate.check(cfg, buildable))
     if ok_files and all(Path(p).exists() for p in spec[0]):
         from . import ingest
         ok_plan, result.plan = step("catalog structure", lambda: ingest.plan(
@@ -99,6 +102,7 @@ _DONE = {
     "calibrations and stages": "calibrations load and fit the configured bands and settings",
     "passbands and systems": "each calibration's band, colour bands and system fit the configured bands",
     "method settings": "every setting the enabled methods need is present and valid",
+    "calibration sample": "the calibrate target's sample, method, form and selection are usable",
     "catalog structure": "every catalog file has the needed columns with usable types and units",
     "rows": "the catalog holds rows",
     "column values": "a sample of rows has redshifts, coordinates, widths and axis ratios in the declared units",

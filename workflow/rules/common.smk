@@ -14,11 +14,12 @@ from galdist import kcorr as gkcorr
 from galdist.methods import REGISTRY, plot_names, prefixes
 
 DEMO_CATALOG = "results/demo-input/corvid_reach_survey.parquet"
+DEMO_CALIBRATION_SAMPLE = "results/demo-input/corvid_reach_calibration.parquet"
 
 # the user's config (--configfile, --config) laid over config/config.yaml, then every
 # check that can run before a job (galdist.preflight, the same as `galdist check`)
 # (a job started on a cluster node parses this file again: it skips the row sample)
-_checked = preflight.check(dict(config), buildable=frozenset({DEMO_CATALOG}),
+_checked = preflight.check(dict(config), buildable=frozenset({DEMO_CATALOG, DEMO_CALIBRATION_SAMPLE}),
                            sample_rows=workflow.is_main_process)
 config.clear()
 config.update(_checked.config)
