@@ -100,7 +100,7 @@ def for_run(bands, methods=None, keep: dict[str, str] | None = None) -> list[Ent
 
     methods = list(REGISTRY) if methods is None else list(methods)
     out = _catalog(bands, methods)
-    out.append(Entry("quality_flags", "", "input problems found at ingest (bits below)", FLAGS, "quality_flags",
+    out.append(Entry("quality_flags", "", "input problems found at ingest, a bit per reason", FLAGS, "quality_flags",
                      "ingest"))
     for stage in ("extinction", "kcorr", "redshift"):
         for name, (unit, text) in stages.output_columns(stage, bands).items():

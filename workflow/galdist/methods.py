@@ -46,7 +46,7 @@ COMMON_DESCRIPTIONS = {
              "malmquist_applied",
     "d_err_mpc": "error of d_mpc, first order from mu_err",
     "malmquist_applied": "true where d_mpc and d_err_mpc carry the Malmquist-bias factor (mu never does)",
-    "flags": "{title} flags (bits below)",
+    "flags": "{title} flags, a bit per reason",
 }
 
 #: The per-shard stages whose files a method may read, in DAG order.

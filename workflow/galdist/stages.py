@@ -21,7 +21,7 @@ _OUTPUTS = {
         "ebv_used_err": ("mag", "error of ebv_used"),
         "A_{band}": ("mag", "Galactic extinction in band {band} (subtracted from the magnitudes)"),
         "A_{band}_err": ("mag", "error of A_{band}"),
-        "ext_flags": ("", "Galactic extinction flags (bits below)"),
+        "ext_flags": ("", "Galactic extinction flags, a bit per reason"),
     },
     "kcorr": {
         "K_{band}": ("mag", "K-correction of band {band} (subtracted from the magnitudes)"),
@@ -29,7 +29,7 @@ _OUTPUTS = {
         "kcorr_template": ("", "the spectral template used for the K-corrections, as a fractional index "
                                "along the ordered template sequence (0 = first template; 3.85 lies "
                                "between the 4th and 5th, nearer the 5th)"),
-        "kcorr_flags": ("", "K-correction flags (bits below)"),
+        "kcorr_flags": ("", "K-correction flags, a bit per reason"),
     },
     "redshift": {
         "z_cmb": ("", "redshift in the CMB rest frame"),
@@ -38,7 +38,7 @@ _OUTPUTS = {
                         "measurement)"),
         "mu_z_err": ("mag", "error of mu_z from z_cmb_err"),
         "d_z_mpc": ("Mpc", "luminosity distance of z_cmb in the configured cosmology"),
-        "z_flags": ("", "redshift-distance flags (bits below)"),
+        "z_flags": ("", "redshift-distance flags, a bit per reason"),
     },
 }
 
