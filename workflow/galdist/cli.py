@@ -332,6 +332,7 @@ def cmd_run(args) -> int:
     _say(f"products in {shown}/:")
     for name, what in (("distances.parquet", "one row per input galaxy"),
                        ("summary.json", f"counts and statistics (galdist summary {shown})"),
+                       ("COLUMNS.md", "what each column means: unit, description, flag bits"),
                        ("plots/", "Hubble diagram, relations, histograms, sky"),
                        (f"logs/{RUN_LOG}", "the full Snakemake log")):
         if (run_dir / name.rstrip("/")).exists():
@@ -489,10 +490,10 @@ def cmd_flags(args) -> int:
     bits = [k for k in range(value.bit_length()) if value >> k & 1]
     undefined = False
     for column in columns:
-        defined = {d["bit"]: d for d in flags.ALL[column].describe()}
+        defined = {d["name"]: d for d in flags.ALL[column].describe()}
         _say(f"{column} = {value}" + ("" if bits else ": no bit set, nothing flagged"))
-        for k in bits:
-            d = defined.get(k)
+        for k, name in zip(bits, flags.decode(column, value)):
+            d = defined.get(name)
             if d is None:
                 undefined = True
                 _say(f"  bit {k:<2} ({1 << k}): not defined for {column}")

@@ -82,9 +82,19 @@ def _catalog(bands, methods) -> list[Entry]:
 
 
 def templates(methods=None) -> list[Entry]:
-    """The dictionary with "{band}" left in band columns' names: every registered
-    method (or ``methods``, config names), every column a run may write but the user's."""
-    return for_run(None, methods)
+    """The dictionary with "{band}" left in band columns' names, in product order: every
+    registered method (or ``methods``, config names), every column a run may write, and
+    ``user_<name>`` standing for the pass-through columns."""
+    from .product import ordered
+
+    keep = {keep_name("<name>"): {"source": "<name>", "type": "as read"}}
+    entries = by_name(for_run(None, methods, keep))
+    return [entries[n] for n in ordered(list(entries))]
+
+
+def readme_section() -> str:
+    """The README's column table (``scripts/sync_flag_table.py`` writes it; a test checks it)."""
+    return markdown(templates(), with_bits=False)
 
 
 def for_run(bands, methods=None, keep: dict[str, str] | None = None) -> list[Entry]:
