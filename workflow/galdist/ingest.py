@@ -482,9 +482,9 @@ def _arrow_schema(p: IngestPlan) -> pa.Schema:
 
 
 def _table(cols: dict, q: np.ndarray, schema: pa.Schema) -> pa.Table:
+    cols = {**cols, "quality_flags": q}
     arrays = [cols[f.name] if isinstance(cols[f.name], pa.Array) else pa.array(cols[f.name], type=f.type)
-              for f in schema if f.name != "quality_flags"]
-    arrays.append(pa.array(q, type=pa.uint32()))
+              for f in schema]
     return pa.Table.from_arrays(arrays, schema=schema)
 
 

@@ -140,17 +140,24 @@ def dtype_name(t: pa.DataType) -> str:
     return "float64" if t == pa.float64() else "float32" if t == pa.float32() else str(t)
 
 
-def product_schema(table: pa.Table, entries: dict, provenance_info: dict) -> pa.Schema:
+def product_schema(table: pa.Table, entries: dict, provenance_info: dict, text_lengths: dict) -> pa.Schema:
     """The product's schema: each field's type checked against its dictionary entry and its
-    metadata (unit, description, flag bits) from it; provenance in the schema metadata."""
+    metadata (unit, description, flag bits) from it; in the schema metadata the provenance
+    and the header astropy reads (``dictionary.astropy_metadata``; ``text_lengths``: the
+    longest value of each text column)."""
+    from .dictionary import TEXT, astropy_metadata
+
     fields = []
     for f in table.schema:
         e = entries[f.name]
         if dtype_name(f.type) != e.dtype:
             raise TypeError(f"product column {f.name} is {f.type}; the column dictionary says {e.dtype}")
         fields.append(pa.field(f.name, f.type, metadata=e.field_metadata()))
-    return pa.schema(fields, metadata={b"galdist.provenance": json.dumps(provenance_info, sort_keys=True,
-                                                                          default=str).encode()})
+    schema = pa.schema(fields)
+    lengths = {f.name: text_lengths.get(f.name, 0) for f in schema if entries[f.name].dtype == TEXT}
+    meta = {"galdist.provenance": json.dumps(provenance_info, sort_keys=True, default=str)}
+    meta |= astropy_metadata(schema, entries, lengths)
+    return schema.with_metadata({k.encode(): v.encode() for k, v in meta.items()})
 
 
 def longest_texts(paths) -> dict[str, int]:
@@ -185,7 +192,6 @@ def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, 
     the assembly. Besides the provenance, the schema metadata holds the header astropy
     reads (``dictionary.astropy_metadata``).
     """
-    from .dictionary import TEXT, astropy_metadata
     from .redshift import C_KMS
 
     prefixes = [METHOD_PREFIX[m] for m in methods]
@@ -215,12 +221,9 @@ def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, 
                 names = [e.name for e in used]
                 table = table_from_columns({n: cols[n] for n in names})
                 if writer is None:
-                    schema = product_schema(table, entries, provenance_info)
-                    lengths = {e.name: text_lengths.get(e.name, 0) for e in used if e.dtype == TEXT}
-                    lengths["best_method"] = max(len("+".join(prefixes)), len(crosscheck.NO_METHOD))
-                    schema = schema.with_metadata(schema.metadata | {
-                        k.encode(): v.encode() for k, v in astropy_metadata(schema, entries, lengths).items()})
-                    writer = AtomicParquetWriter(out_path, schema)
+                    text_lengths["best_method"] = max(len("+".join(prefixes)), len(crosscheck.NO_METHOD))
+                    writer = AtomicParquetWriter(out_path, product_schema(table, entries, provenance_info,
+                                                                          text_lengths))
                 writer.write(table.cast(writer.writer.schema))
                 for c in FLAG_COLUMNS:
                     if c in cols:
