@@ -97,7 +97,7 @@ def readme_section() -> str:
     return markdown(templates(), with_bits=False)
 
 
-def for_run(bands, methods=None, keep: dict[str, str] | None = None) -> list[Entry]:
+def for_run(bands, methods=None, keep: dict[str, dict] | None = None) -> list[Entry]:
     """Every column of a run's product, in no particular order (``product.ordered``
     orders them): ``bands`` the configured band labels (None: "{band}" templates),
     ``methods`` config names (default every registered method), ``keep`` the
