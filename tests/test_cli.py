@@ -254,6 +254,27 @@ def test_flags_unknown_column_and_undefined_bit(capsys):
     assert "REDSHIFT_INVALID" in out and "LOCAL_FLOW" in out and "OUT_OF_RANGE" in out
 
 
+# --- export without a run ----------------------------------------------------------------
+
+def test_export_writes_the_asked_columns_and_names_unknown_ones(tmp_path, capsys):
+    from galdist import dictionary, product
+
+    entries = dictionary.by_name(dictionary.for_run(["I"], ["tully_fisher"]))
+    table = pa.table({"galaxy_id": ["a", "bb"], "tf_mu": [33.1, float("nan")],
+                      "tf_flags": pa.array([0, 5], type=pa.uint32())})
+    pq.write_table(table.cast(product.product_schema(table, entries, {}, {"galaxy_id": 2})),
+                   tmp_path / "distances.parquet")
+    assert cli.main(["export", str(tmp_path), "--format", "csv", "--columns", "galaxy_id,tf_mu"]) == 0
+    assert "2 rows x 2 columns" in capsys.readouterr().out
+    assert (tmp_path / "distances.csv").read_text().splitlines() == ["galaxy_id,tf_mu", '"a",33.1', '"bb",nan']
+    side = json.loads((tmp_path / "distances.csv.columns.json").read_text())
+    assert side["columns"][1]["unit"] == "mag"
+    assert cli.main(["export", str(tmp_path), "--format", "fits", "--columns", "tf_mu", "tf_flagz"]) == 1
+    assert "'tf_flagz'" in capsys.readouterr().err and not (tmp_path / "distances.fits").exists()
+    assert cli.main(["export", str(tmp_path / "nowhere"), "--format", "ecsv"]) == 1
+    assert "no distances.parquet" in capsys.readouterr().err
+
+
 # --- summary without a run ---------------------------------------------------------------
 
 def test_summary_of_a_single_method_run_with_missing_keys(tmp_path, capsys):

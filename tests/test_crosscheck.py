@@ -314,7 +314,7 @@ def test_best_distance_with_one_method(grid):
     flags.set_where(cols["tf_flags"], np.arange(6) == 2, Method.LOW_INCLINATION)
     flags.set_where(cols["z_flags"], np.arange(6) == 3, Redshift.LOCAL_FLOW)
     out, summary = crosscheck(cols, grid, methods=["tf"])
-    assert out["best_method"].to_pylist() == ["tf", "", "", "tf", "tf", "tf"]
+    assert out["best_method"].to_pylist() == ["tf", "none", "none", "tf", "tf", "tf"]  # one spelling: as in summary.json
     use = np.array([True, False, False, True, True, True])
     np.testing.assert_allclose(out["mu_best"][use], cols["tf_mu"][use], rtol=1e-14)
     np.testing.assert_allclose(out["mu_best_err"][use], cols["tf_mu_err"][use], rtol=1e-14)
@@ -341,7 +341,7 @@ def test_best_distance_inverse_variance():
     assert out["mu_best"][2] == 33.0
     assert np.isnan(out["mu_best"][3]) and np.isnan(out["mu_best_err"][3]) and np.isnan(out["mu_best_err_sys"][3])
     # LOCAL_FLOW and OUTLIER leave the distance usable (the flag stays on tf_flags)
-    assert out["best_method"].to_pylist() == ["tf+sbf", "sbf", "tf", "", "tf+sbf", "tf+sbf"]
+    assert out["best_method"].to_pylist() == ["tf+sbf", "sbf", "tf", "none", "tf+sbf", "tf+sbf"]
     assert out["mu_best"][5] == out["mu_best"][0]
     with pytest.raises(ValueError, match="crosscheck.best_ignore_flags.*LOCAL_FLOW"):
         best_distance({"tf": (mu_tf, np.full(6, 0.4), f_tf)}, ignore_flags=("LOCAL_FLOWS",))

@@ -7,6 +7,7 @@ the physical limits behind them are common practice (|dec| <= 90, 0 < b/a <= 1).
 from __future__ import annotations
 
 import numpy as np
+import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
@@ -291,3 +292,29 @@ def test_truncated_fits_names_the_file(tmp_path):
     with pytest.raises(ingest.CatalogError, match="c.fits"):
         p = ingest.plan([path], "auto", {}, {}, BANDS, METHODS)
         ingest.run(p, tmp_path / "s", tmp_path / "s.json", 1000)
+
+
+def test_kept_columns_pass_through_as_read(tmp_path):
+    """config keep_columns: the user's columns arrive as user_<name>, Parquet types kept
+    (an integer above 2^53 stays exact), text as text, CSV as the text written."""
+    cols = small_catalog(6)
+    cols["objid"] = np.arange(6, dtype=np.int64) + 2**60 + 1
+    cols["notes"] = np.array(["a", None, "c, d", "", "e", "f"], dtype=object)
+    path = write_parquet(cols, tmp_path / "cat.parquet")
+    p = ingest.plan([path], "auto", {}, {}, BANDS, METHODS, keep=["objid", "notes"])
+    summary = ingest.run(p, tmp_path / "shards", tmp_path / "summary.json", 4)
+    table = pa.concat_tables([pq.read_table(f) for f in sorted((tmp_path / "shards").glob("part-*.parquet"))])
+    assert table.column("user_objid").type == pa.int64()
+    assert table.column("user_objid").to_pylist() == cols["objid"].tolist()
+    assert table.column("user_notes").to_pylist() == ["a", None, "c, d", "", "e", "f"]
+    assert summary["kept_columns"]["user_objid"] == {"source": "objid", "type": "int64", "unit": None}
+    csv = tmp_path / "cat.csv"
+    pd.DataFrame({k: v for k, v in cols.items()}).to_csv(csv, index=False)
+    p = ingest.plan([str(csv)], "auto", {}, {}, BANDS, METHODS, keep=["objid"])
+    assert p.keep == {"user_objid": ("objid", pa.string(), None)}
+
+
+def test_an_unknown_kept_column_is_named_before_any_job(tmp_path):
+    path = write_parquet(small_catalog(3), tmp_path / "cat.parquet")
+    with pytest.raises(ingest.IngestError, match="keep_columns.*'stellar_mass'"):
+        ingest.plan([path], "auto", {}, {}, BANDS, METHODS, keep=["stellar_mass"])

@@ -72,6 +72,46 @@ def test_product_metadata(demo_run):
     assert units["mu_z"] == "mag" and units["A_V"] == "mag"
 
 
+def test_product_describes_itself(demo_run, tmp_path):
+    """The demo product as a user outside galdist reads it: astropy gives every column of
+    the run's column dictionary its unit and description without a warning, COLUMNS.md
+    lists every column, best_method says 'none' as summary.json does, cz_cmb_kms is c
+    z_cmb, and a FITS export keeps units (TUNIT) and descriptions (TCOMM)."""
+    import warnings
+
+    import astropy.units as u
+    from astropy.io import fits
+    from astropy.table import Table
+
+    from galdist import dictionary, export
+    from galdist.redshift import C_KMS
+
+    run = demo_run / "results" / "demo"
+    path = run / "distances.parquet"
+    config = json.loads(pq.read_schema(path).metadata[b"galdist.provenance"])["config"]
+    entries = dictionary.by_name(dictionary.for_run(list(config["bands"]), config["methods"]))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        t = Table.read(path)
+    assert set(t.colnames) <= set(entries)
+    for name in t.colnames:
+        e = entries[name]
+        assert t[name].description == e.description, name
+        if e.dtype == "float64":
+            assert t[name].unit == u.Unit(e.unit), name
+    assert t["tf_d_mpc"].quantity.unit == u.Mpc
+    columns_md = (run / "COLUMNS.md").read_text(encoding="utf-8")
+    assert all(f"| `{n}` |" in columns_md for n in t.colnames)
+    summary = json.loads((run / "summary.json").read_text())
+    labels = pq.read_table(path, columns=["best_method"]).column(0).to_pylist()
+    assert "" not in labels and labels.count("none") == summary["best_method"]["none"] > 0
+    np.testing.assert_allclose(np.asarray(t["cz_cmb_kms"]), C_KMS * np.asarray(t["z_cmb"]), rtol=1e-15)
+    export.export(path, tmp_path / "d.fits", "fits", ["galaxy_id", "cz_cmb_kms", "tf_mu", "tf_flags"])
+    header = fits.getheader(tmp_path / "d.fits", 1)
+    assert (header["TUNIT2"], header["TUNIT3"]) == ("km s-1", "mag")
+    assert header["TCOMM3"].startswith("Tully-Fisher distance modulus")
+
+
 def test_interpolated_values_match_their_direct_computation(demo_run):
     """mu_z, A_<band> and the K(z) tables in the demo product against their direct
     computation, through the factories the rules use (galdist.stages). Tolerances are
@@ -166,12 +206,25 @@ def test_other_calibration_writes_beside_not_over(demo_run):
 
 
 def test_user_catalog_by_name_on_the_command_line(workflow_copy):
-    pq.write_table(pa.table(small_catalog(25)), workflow_copy / "my.parquet")
-    result = run_snakemake(workflow_copy, "--config", "catalog=my.parquet", "run=mine")
+    cols = small_catalog(25)
+    cols["survey_objid"] = np.arange(25, dtype=np.int64) + 2**59 + 7  # beyond float64's exact integers
+    cols["stellar_mass"] = np.linspace(9.0, 11.0, 25)
+    pq.write_table(pa.table(cols), workflow_copy / "my.parquet")
+    result = run_snakemake(workflow_copy, "--config", "catalog=my.parquet", "run=mine",
+                           "keep_columns=[survey_objid, stellar_mass]")
     assert result.returncode == 0, result.stderr[-3000:]
     product = pq.read_table(workflow_copy / "results" / "mine" / "distances.parquet")
     assert product.num_rows == 25
     assert np.isfinite(product.column("mu_z").to_numpy()).all()
+    # the kept columns, prefixed, as they were in the catalog
+    assert product.column("user_survey_objid").to_pylist() == cols["survey_objid"].tolist()
+    assert product.column("user_stellar_mass").to_pylist() == cols["stellar_mass"].tolist()
+    assert "user_survey_objid" in (workflow_copy / "results" / "mine" / "COLUMNS.md").read_text()
+    # a name the catalog lacks stops before any job, named
+    result = run_snakemake(workflow_copy, "--config", "catalog=my.parquet", "run=mine2",
+                           "keep_columns=[stellar_mas]", "-n")
+    out = result.stdout + result.stderr
+    assert result.returncode != 0 and "keep_columns" in out and "'stellar_mas'" in out, out[-2000:]
 
 
 def test_dry_run_shows_the_dag(workflow_copy):

@@ -1,7 +1,7 @@
 """Rule script: stream every shard's stages into distances.parquet and write summary.json."""
 from pathlib import Path
 
-from galdist import calibration, conventions, io, product, redshift
+from galdist import calibration, conventions, dictionary, io, product, redshift
 from galdist.methods import REGISTRY
 from galdist.logs import logged
 
@@ -16,10 +16,13 @@ with logged(snakemake.log[0], "assemble") as log:
                         f"computed with another version of calibration {cal.path}")
     conventions.mark_h0_independence(stats, {REGISTRY[m].prefix: cal for m, cal in cals.items()})
     info = product.provenance(snakemake.config, cals, ingest_summary, Path(snakemake.scriptdir).parents[1])
+    entries = dictionary.by_name(dictionary.for_run(list(snakemake.config["bands"]), snakemake.params.methods,
+                                                    ingest_summary.get("kept_columns", {})))
     counts = product.assemble(shards, snakemake.output.distances, snakemake.output.plot_sample,
                               redshift.MuGrid.load(inp.grid), stats, snakemake.params.methods, info,
                               min_cz=min_cz, clip_sigma=cfg["clip_sigma"],
-                              plot_max_points=cfg["plot_max_points"], total_rows=ingest_summary["rows_out"])
+                              plot_max_points=cfg["plot_max_points"], total_rows=ingest_summary["rows_out"],
+                              entries=entries)
     if counts["rows"] != ingest_summary["rows_in"]:
         raise RuntimeError(f"row count changed: {ingest_summary['rows_in']} in, {counts['rows']} out")
     summary = {"rows_in": ingest_summary["rows_in"], "rows_out": counts["rows"],
@@ -30,3 +33,5 @@ with logged(snakemake.log[0], "assemble") as log:
                "inputs": info["inputs"], "git_commit": info["git_commit"], "cautions": info["cautions"]}
     log.info("%d rows written", counts["rows"])
     io.write_json(summary, snakemake.output.summary)
+    with io.atomic_path(snakemake.output.columns) as tmp:
+        tmp.write_text(dictionary.columns_markdown(counts["entries"], snakemake.config["run"]), encoding="utf-8")

@@ -5,6 +5,7 @@
   galdist run run.yaml      run the workflow (Snakemake) with progress per stage
   galdist summary RUN_DIR   the key numbers of a finished run
   galdist flags VALUE       what the bits of a flag value mean
+  galdist export RUN_DIR    the product as FITS, ECSV or CSV, with units and descriptions
 
 Snakemake stays the engine: ``galdist run`` runs ``python -m snakemake`` on the
 installed workflow in a subprocess, in the current folder.
@@ -331,6 +332,7 @@ def cmd_run(args) -> int:
     _say(f"products in {shown}/:")
     for name, what in (("distances.parquet", "one row per input galaxy"),
                        ("summary.json", f"counts and statistics (galdist summary {shown})"),
+                       ("COLUMNS.md", "what each column means: unit, description, flag bits"),
                        ("plots/", "Hubble diagram, relations, histograms, sky"),
                        ("calibrate/", "the fitted calibration file and its fit report (--target calibrate)"),
                        (f"logs/{RUN_LOG}", "the full Snakemake log")):
@@ -493,10 +495,10 @@ def cmd_flags(args) -> int:
     bits = [k for k in range(value.bit_length()) if value >> k & 1]
     undefined = False
     for column in columns:
-        defined = {d["bit"]: d for d in flags.ALL[column].describe()}
+        defined = {d["name"]: d for d in flags.ALL[column].describe()}
         _say(f"{column} = {value}" + ("" if bits else ": no bit set, nothing flagged"))
-        for k in bits:
-            d = defined.get(k)
+        for k, name in zip(bits, flags.decode(column, value)):
+            d = defined.get(name)
             if d is None:
                 undefined = True
                 _say(f"  bit {k:<2} ({1 << k}): not defined for {column}")
@@ -506,6 +508,29 @@ def cmd_flags(args) -> int:
     if not args.column:
         _say("(the same value means different things in each column: give --column to pick one)")
     return 1 if undefined and args.column else 0
+
+
+# --- export ----------------------------------------------------------------------------
+
+def cmd_export(args) -> int:
+    """The product (some columns, if asked) as FITS, ECSV or CSV, streamed."""
+    from . import export
+
+    path = Path(args.run_dir)
+    product = path / "distances.parquet" if path.is_dir() else path
+    if not product.is_file():
+        raise Refused(f"no distances.parquet in {args.run_dir}: give a finished run's folder "
+                      f"(<output_dir>/<run>, e.g. {DEFAULT_OUTPUT_DIR}/mine) or the product file")
+    columns = [c for item in args.columns or [] for c in item.split(",") if c]
+    out = Path(args.output) if args.output else product.with_suffix("." + args.format)
+    if out.resolve() == product.resolve():
+        raise Refused(f"-o {out}: that is the product itself; choose another file name")
+    try:
+        done = export.export(product, out, args.format, columns or None)
+    except ValueError as exc:
+        raise Refused(str(exc)) from None
+    _say(f"wrote {done['rows']} rows x {done['columns']} columns to " + " and ".join(done["files"]))
+    return 0
 
 
 # --- the parser ------------------------------------------------------------------------
@@ -544,6 +569,16 @@ def parser() -> argparse.ArgumentParser:
     p.add_argument("--column", help="flag column: quality_flags, ext_flags, kcorr_flags, z_flags, tf_flags, "
                    "sbf_flags (default: all)")
     p.set_defaults(func=cmd_flags)
+
+    p = sub.add_parser("export", help="the product as FITS, ECSV or CSV, with units and descriptions")
+    p.add_argument("run_dir", help="the run's folder, <output_dir>/<run> (or its distances.parquet)")
+    p.add_argument("--format", required=True, choices=("fits", "ecsv", "csv"),
+                   help="fits (TUNIT/TCOMM), ecsv (astropy's header) or csv (plain, with a .columns.json beside it)")
+    p.add_argument("--columns", nargs="+", help="only these columns, in this order (names or comma-separated lists; "
+                   "COLUMNS.md lists them)")
+    p.add_argument("-o", "--output", help="file to write (default: distances.<format> in the run's folder; "
+                   "an existing file is replaced)")
+    p.set_defaults(func=cmd_export)
     return top
 
 

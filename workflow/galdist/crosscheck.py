@@ -257,6 +257,10 @@ def pair_statistics(mu_a, mu_a_err, flags_a, mu_b, mu_b_err, flags_b, *,
                                   clip_sigma=clip_sigma, max_iter=max_iter, exclude_flags=exclude_flags)
 
 
+#: ``best_method`` of a galaxy no method measured usably: one spelling in the product and
+#: in summary.json (a word, not "": an empty string vanishes in CSV and reads as missing)
+NO_METHOD = "none"
+
 #: flags that leave a distance usable for mu_best: a nearby galaxy (LOCAL_FLOW) or a
 #: Hubble-flow outlier (OUTLIER: a large peculiar velocity is science, not a bad distance)
 BEST_IGNORE_FLAGS = ("LOCAL_FLOW", "OUTLIER")
@@ -271,7 +275,7 @@ def best_distance(methods: Mapping[str, tuple], *, ignore_flags=BEST_IGNORE_FLAG
     on the method's column, the distance is kept). Returns mu_best, mu_best_err
     (random, 1/sqrt(sum w)), mu_best_err_sys (sqrt(sum (w_m sys_m)^2) / sum w: the
     methods' calibrations are independent) and best_method: the usable prefixes joined
-    by '+' in the order given, "" when none, as a pyarrow string array (built per row
+    by '+' in the order given, NO_METHOD when none, as a pyarrow string array (built per row
     from a dictionary of the 2^k subsets, which is what keeps it cheap at survey scale).
     """
     keep = _flags.FLAG_DTYPE(ALL_METHOD_BITS & ~_bits(ignore_flags, "crosscheck.best_ignore_flags"))
@@ -300,7 +304,7 @@ def best_distance(methods: Mapping[str, tuple], *, ignore_flags=BEST_IGNORE_FLAG
         mu_best_err_sys = np.where(has, np.sqrt(sws2) / np.where(has, sw, 1.0), np.nan)
     # the label of each subset of methods, indexed by its bit mask: built once, then
     # looked up per row as a dictionary (a per-row Python string would cost ~2 us/row)
-    labels = pa.array(["+".join(n for i, n in enumerate(names) if c >> i & 1)
+    labels = pa.array(["+".join(n for i, n in enumerate(names) if c >> i & 1) or NO_METHOD
                        for c in range(1 << len(names))], type=pa.string())
     label = pa.DictionaryArray.from_arrays(pa.array(code.ravel()), labels).cast(pa.string())
     return {"mu_best": mu_best, "mu_best_err": mu_best_err, "mu_best_err_sys": mu_best_err_sys,
@@ -308,8 +312,8 @@ def best_distance(methods: Mapping[str, tuple], *, ignore_flags=BEST_IGNORE_FLAG
 
 
 def count_labels(labels: pa.Array) -> dict[str, int]:
-    """Counts of each ``best_method`` label ("none" for the empty one)."""
-    return {(str(v) or "none"): int(c) for v, c in
+    """Counts of each ``best_method`` label."""
+    return {(str(v) or NO_METHOD): int(c) for v, c in
             ((item["values"].as_py(), item["counts"].as_py()) for item in labels.value_counts())}
 
 
@@ -444,7 +448,7 @@ def galaxy_columns(columns: Mapping[str, Sequence], grid: MuGrid, statistics: di
         n = z.shape[0]
         out |= {"mu_best": np.full(n, np.nan), "mu_best_err": np.full(n, np.nan),
                 "mu_best_err_sys": np.full(n, np.nan),
-                "best_method": pa.array([""] * n, type=pa.string())}
+                "best_method": pa.array([NO_METHOD] * n, type=pa.string())}
     return out
 
 

@@ -199,6 +199,26 @@ def new(n: int) -> np.ndarray:
     return np.zeros(n, dtype=FLAG_DTYPE)
 
 
+def decode(column: str, value: int) -> list[str]:
+    """The names of the bits set in one value of flag column ``column`` (``ALL``'s keys),
+    lowest bit first; a set bit the column does not define is named ``BIT<k>``."""
+    enum_cls = __getattr__("ALL")[column]
+    value = int(value)
+    if value < 0:
+        raise ValueError(f"{value}: flag values are never negative")
+    defined = {int(m.value): m.name for m in enum_cls}
+    return [defined.get(1 << k, f"BIT{k}") for k in range(value.bit_length()) if value >> k & 1]
+
+
+def decoded(column: str, values) -> np.ndarray:
+    """A flag column's values as text, the set bits' names joined by '|' ("" where none
+    is set): one decode per distinct value, so a survey-sized column costs little."""
+    values = np.asarray(values, dtype=FLAG_DTYPE)
+    distinct, index = np.unique(values, return_inverse=True)
+    names = np.array(["|".join(decode(column, v)) for v in distinct], dtype=object)
+    return names[index.ravel()].reshape(values.shape)
+
+
 def markdown_table() -> str:
     """The flag table of the README."""
     lines = []

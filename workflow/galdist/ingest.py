@@ -68,6 +68,8 @@ class IngestPlan:
     units: dict[str, str]  # canonical -> unit of the source column, where every file has the same
     columns: list[Column] = field(default_factory=list)  # all shard columns
     files: list[SourceFile] = field(default_factory=list)  # in reading order, each with its own units
+    #: pass-through columns (config keep_columns): product name -> (source column, Arrow type, declared unit)
+    keep: dict[str, tuple[str, pa.DataType, str | None]] = field(default_factory=dict)
 
     def __post_init__(self):
         if not self.files:  # a plan made by hand: every file in the plan's units
@@ -83,13 +85,15 @@ MAX_LISTED = 20  # problems listed in one structural error
 
 
 def plan(paths: list[str], fmt: str, mapping: dict, units: dict, bands: list[str],
-         methods: list[str], extra_required=()) -> IngestPlan:
+         methods: list[str], extra_required=(), keep=()) -> IngestPlan:
     """Check the catalog's structure without reading its rows; raise on any problem.
 
     ``mapping`` is config ``columns`` (canonical -> user column), ``units`` config
     ``units`` (canonical -> unit of the user's column, for every file). Every file,
     each file of a Parquet directory included, is checked on its own; a unit the file
-    declares applies to that file where config gives none.
+    declares applies to that file where config gives none. ``keep``: config
+    ``keep_columns``, the user's columns passed through as ``user_<name>``
+    (``keep_types``).
     """
     from .methods import REGISTRY
 
@@ -129,13 +133,80 @@ def plan(paths: list[str], fmt: str, mapping: dict, units: dict, bands: list[str
                 problems.append((spec.path, f"missing column '{src}' for canonical '{name}', which {first} "
                                             "has; every file of a catalog needs the same columns: add it "
                                             "(empty values are fine) or remove it from the other files"))
+    kept, found = keep_types([spec.path for spec, _ in files], fmts[0], list(keep))
+    problems += found
     if problems:
         raise IngestError(_problem_message(problems))
     files = [spec for spec, _ in files]
     source_of = {name: mapping.get(name, name) for name in first_with}
     common = {name: files[0].units[name] for name in source_of if name in files[0].units
               and all(spec.units.get(name) == files[0].units[name] for spec in files)}
-    return IngestPlan(list(paths), fmts[0], list(bands), list(methods), source_of, common, shard_cols, files)
+    return IngestPlan(list(paths), fmts[0], list(bands), list(methods), source_of, common, shard_cols, files, kept)
+
+
+def keep_types(files: list[str], fmt: str, keep: list[str]) -> tuple[dict, list[tuple[str, str]]]:
+    """The pass-through columns (config ``keep_columns``): product name ``user_<name>`` ->
+    (source column, Arrow type, unit the file declares), and the problems found, per file.
+
+    Parquet keeps the column's type (integers stay exact); other formats give numbers as
+    float64, text as text, and CSV, which declares no types, text as written. Every
+    file must have the column, with one type."""
+    from .dictionary import keep_name
+
+    kept, problems = {}, []
+    for name in keep:
+        types = []
+        for path in files:
+            declared = describe(path, fmt)
+            col = declared.get(name)
+            if col is None:
+                shown = ", ".join(sorted(declared)[:30]) + (" ..." if len(declared) > 30 else "")
+                problems.append((path, f"config key 'keep_columns': no column '{name}' in this file (its columns: "
+                                       f"{shown}); fix the name or remove it from keep_columns"))
+                continue
+            if fmt == "parquet":
+                t = _parquet_type(path, name)
+            else:
+                t = {"numeric": pa.float64(), "text": pa.string(), "unknown": pa.string(),
+                     "boolean": pa.bool_()}.get(col.kind)
+            if t is None or not (pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_boolean(t)
+                                 or pa.types.is_string(t)):
+                problems.append((path, f"config key 'keep_columns': column '{name}' is a {col.kind}; galdist "
+                                       "passes through one number, text or true/false per row: remove it from "
+                                       "keep_columns or write the part you need as a column of its own"))
+                continue
+            types.append((t, col.unit))
+        if types and len({str(t) for t, _ in types}) > 1:
+            problems.append((files[0], f"config key 'keep_columns': column '{name}' has different types in the "
+                                       f"catalog's files ({', '.join(sorted({str(t) for t, _ in types}))}); "
+                                       "give it one type in every file"))
+        elif types:
+            units = {u for _, u in types}
+            kept[keep_name(name)] = (name, types[0][0], units.pop() if len(units) == 1 else None)
+    return kept, problems
+
+
+def _parquet_type(path: str, name: str) -> pa.DataType:
+    import pyarrow.parquet as pq
+
+    t = pq.read_schema(path).field(name).type
+    if pa.types.is_dictionary(t):
+        t = t.value_type
+    return pa.string() if pa.types.is_large_string(t) else t
+
+
+def _kept_values(values, t: pa.DataType, name: str, first_row: int, where: str) -> pa.Array:
+    """A pass-through column of one batch as an Arrow array of type ``t`` (missing: null)."""
+    if pa.types.is_string(t):
+        return pa.array(_to_text(values), type=t)
+    if isinstance(values, (pa.Array, pa.ChunkedArray)):
+        if pa.types.is_dictionary(values.type):
+            values = pc.cast(values, values.type.value_type)
+        if values.type == t:
+            return values.combine_chunks() if isinstance(values, pa.ChunkedArray) else values
+    if pa.types.is_floating(t):
+        return pa.array(_to_float(values, name, first_row, where), type=t)
+    return pa.array(values, type=t) if not isinstance(values, (pa.Array, pa.ChunkedArray)) else pc.cast(values, t)
 
 
 def _plan_file(path: str, catalog: str, fmt: str, shard_cols: list[Column], required: set, mapping: dict,
@@ -406,12 +477,14 @@ def _arrow_schema(p: IngestPlan) -> pa.Schema:
         fields.append(arrow_field(col.name, pa.string() if col.is_text else pa.float64(),
                                   None if col.is_text or not col.unit else col.unit))
     fields.append(pa.field("quality_flags", pa.uint32()))
+    fields += [pa.field(name, t) for name, (_, t, _) in p.keep.items()]
     return pa.schema(fields)
 
 
 def _table(cols: dict, q: np.ndarray, schema: pa.Schema) -> pa.Table:
-    arrays = [pa.array(cols[f.name], type=f.type) for f in schema if f.name != "quality_flags"]
-    arrays.append(pa.array(q, type=pa.uint32()))
+    cols = {**cols, "quality_flags": q}
+    arrays = [cols[f.name] if isinstance(cols[f.name], pa.Array) else pa.array(cols[f.name], type=f.type)
+              for f in schema]
     return pa.Table.from_arrays(arrays, schema=schema)
 
 
@@ -506,11 +579,13 @@ def run(p: IngestPlan, out_dir: str | Path, summary_path: str | Path, shard_rows
     rows = flagged = 0
     writer = _ShardWriter(tmp_dir, schema, shard_rows)
     try:
-        needed = sorted(set(p.source_of.values()))
+        needed = sorted(set(p.source_of.values()) | {src for src, _, _ in p.keep.values()})
         for source in p.files:
             in_file = 0
             for raw in iter_batches(source.path, p.fmt, needed, max(1, min(batch_rows, shard_rows))):
                 cols = canonical_batch(raw, p, in_file, source)
+                cols |= {name: _kept_values(raw[src], t, src, in_file, f"catalog {source.path}: ")
+                         for name, (src, t, _) in p.keep.items()}
                 q = quality(cols, p.bands, present, p.methods)
                 cols["gal_l"], cols["gal_b"] = galactic_coordinates(cols["ra"], cols["dec"])
                 for member in F.Quality:
@@ -541,6 +616,7 @@ def run(p: IngestPlan, out_dir: str | Path, summary_path: str | Path, shard_rows
         "columns": {canonical: {"source": src, "unit": _summary_unit(p, canonical)}
                     for canonical, src in sorted(p.source_of.items())},
         "absent_optional_columns": sorted(c.name for c in OPTIONAL if c.name not in p.source_of),
+        "kept_columns": {name: {"source": src, "type": str(t), "unit": unit} for name, (src, t, unit) in p.keep.items()},
     }
     write_json(summary, summary_path)
     return summary

@@ -38,6 +38,22 @@ COMMON_KEYS = ("calibration", "mc_draws", "mc_seed", "mc_max_rows", "malmquist",
 #: one (calibration coefficients and zero point, common to all galaxies).
 COMMON_OUTPUTS = {"mu": "mag", "mu_err": "mag", "mu_err_sys": "mag", "mu_err_mc": "mag", "d_mpc": "Mpc",
                   "d_err_mpc": "Mpc", "malmquist_applied": "", "flags": ""}
+#: What each of COMMON_OUTPUTS means ("{title}": the method's title), for the column dictionary
+#: (``galdist.dictionary``): a column added to COMMON_OUTPUTS needs its line here.
+COMMON_DESCRIPTIONS = {
+    "mu": "{title} distance modulus, mu = 5 log10(d_L / 10 pc)",
+    "mu_err": "random error of mu (first order): the inputs' errors, the extinction and K errors and the "
+               "calibration's intrinsic scatter; galaxy by galaxy",
+    "mu_err_sys": "systematic error of mu: the calibration's coefficients and zero point (common to every "
+                  "galaxy; not in mu_err)",
+    "mu_err_mc": "Monte Carlo of the random error of mu (NaN beyond mc_max_rows measured rows, or with "
+                 "mc_draws 0)",
+    "d_mpc": "{title} luminosity distance, 10^((mu - 25) / 5), times the Malmquist factor where "
+             "malmquist_applied",
+    "d_err_mpc": "error of d_mpc, first order from mu_err",
+    "malmquist_applied": "true where d_mpc and d_err_mpc carry the Malmquist-bias factor (mu never does)",
+    "flags": "{title} flags, a bit per reason",
+}
 
 #: The per-shard stages whose files a method may read, in DAG order.
 STAGES = ("ingest", "extinction", "kcorr", "redshift")
@@ -94,6 +110,7 @@ class MethodSpec:
     bands: Mapping[str, str]  # band role -> config key naming it ("color_bands.0": first of a list)
     inputs: Mapping[str, Input]  # distance-function input -> where it comes from
     outputs: Mapping[str, str]  # its own columns (without prefix) -> unit, before COMMON_OUTPUTS
+    descriptions: Mapping[str, str]  # its own columns (without prefix) -> what they mean (column dictionary)
     derive: Callable[[dict, object], dict] = lambda config, calibration: {}  # from ``used_config``
     uses: tuple[str, ...] = ()  # config sections besides its own and ``bands`` its settings derive from
     setup_check: str | Callable | None = None  # (calibration, settings) -> raise ValueError; str: in the module
@@ -108,6 +125,12 @@ class MethodSpec:
         """Every column the method writes, in order, with its unit ("" dimensionless)."""
         own = {f"{self.prefix}_{k}": u for k, u in self.outputs.items()}
         return own | {f"{self.prefix}_{k}": u for k, u in COMMON_OUTPUTS.items()}
+
+    def output_descriptions(self) -> dict[str, str]:
+        """What every column the method writes means, in order (a column without a
+        description is missing from the result; the dictionary's tests catch it)."""
+        own = {f"{self.prefix}_{k}": t for k, t in self.descriptions.items()}
+        return own | {f"{self.prefix}_{k}": t.format(title=self.title) for k, t in COMMON_DESCRIPTIONS.items()}
 
     def band_keys(self) -> list[str]:
         """The config keys of the section that name band labels."""
@@ -332,6 +355,18 @@ TULLY_FISHER = MethodSpec(
     },
     outputs={"inclination_deg": "deg", "w_z": "km / s", "w_r": "km / s", "logw_i": "dex(km / s)",
              "a_int": "mag", "mag_corr": "mag", "abs_mag": "mag"},
+    descriptions={
+        "inclination_deg": "disc inclination from axis_ratio (oblate disc of intrinsic axis ratio tully_fisher.q0)",
+        "w_z": "w50 corrected for instrumental resolution (where w50_resolution is given) and divided by "
+               "(1 + z_helio): the rest-frame width",
+        "w_r": "w_z corrected for turbulent broadening",
+        "logw_i": "log10 of the inclination-corrected width, W^i = w_r / sin(inclination)",
+        "a_int": "internal extinction of the disc in the calibration's band (subtracted; depends on "
+                 "axis_ratio and logw_i)",
+        "mag_corr": "magnitude corrected for Galactic and internal extinction and K, in the calibration's "
+                    "photometric system",
+        "abs_mag": "absolute magnitude (baryonic form: the same for the magnitude the predicted mass implies)",
+    },
     derive=_tf_derive,
     relation_plot=RelationPlot("logw_i", "mag_corr", r"$\log_{10} W^i$ (W in km/s)", "Tully-Fisher relation"),
 )
@@ -367,6 +402,11 @@ SBF = MethodSpec(
         "kcorr_flags": _flags("kcorr", "kcorr_flags"),
     },
     outputs={"color_0": "mag", "mag_0": "mag", "abs_mag": "mag"},
+    descriptions={
+        "color_0": "sbf_color corrected for Galactic extinction and K, in the calibration's system",
+        "mag_0": "sbf_mag corrected for Galactic extinction and K, in the calibration's system",
+        "abs_mag": "absolute fluctuation magnitude the calibration gives at color_0",
+    },
     derive=_sbf_derive,
     relation_plot=RelationPlot("color_0", "mag_0", "dereddened colour ({colour})$_0$ (mag)",
                                r"SBF: $\bar M$ against colour"),
@@ -444,6 +484,21 @@ FUNDAMENTAL_PLANE = MethodSpec(
     outputs={"sigma_0": "km / s", "mu_e_0": "mag / arcsec2", "log_sigma_0": "dex(km / s)",
              "log_ie": "dex(Lsun / pc2)", "log_re_z": "dex(kpc)", "log_re_pred": "dex(kpc)", "eta": "dex",
              "eta_err": "dex", "eta_post_std": "dex", "eta_post_mode": "dex"},
+    descriptions={
+        "sigma_0": "velocity dispersion corrected to the standard aperture (the calibration's fraction of R_e)",
+        "mu_e_0": "mean surface brightness within R_e corrected for Galactic extinction, K and the (1 + z)^4 "
+                  "dimming, in the calibration's system",
+        "log_sigma_0": "log10 sigma_0",
+        "log_ie": "log10 of the mean surface brightness within R_e, in Lsun / pc2",
+        "log_re_z": "log10 of R_e in kpc at the redshift distance D_A(z)",
+        "log_re_pred": "log10 of R_e in kpc the plane predicts from log_sigma_0 and log_ie (its sizes rescaled "
+                       "to the run's H0)",
+        "eta": "log distance ratio log10(D_A(z) / D_A), angular-diameter distances: log_re_z - log_re_pred "
+               "(estimator plane) or the mean of its posterior (estimator gaussian)",
+        "eta_err": "error of eta",
+        "eta_post_std": "standard deviation of the posterior of eta (estimator gaussian)",
+        "eta_post_mode": "mode of the posterior of eta (estimator gaussian)",
+    },
     derive=_fp_derive, uses=("redshift",),
 )
 

@@ -88,7 +88,7 @@ def check(user: dict, buildable: frozenset = frozenset(), sample_rows: bool = Tr
         from . import ingest
         ok_plan, result.plan = step("catalog structure", lambda: ingest.plan(
             spec[0], spec[1], cfg["columns"], cfg["units"], list(cfg["bands"]), list(cfg["methods"]),
-            gconfig.extra_required_columns(cfg)))
+            gconfig.extra_required_columns(cfg), cfg["keep_columns"]))
         if ok_plan and sample_rows:
             step("rows", lambda: _has_rows(result.plan))
             step("column values", lambda: _column_sanity(result.plan, cfg["units"]))

@@ -33,11 +33,39 @@ log = logging.getLogger(__name__)
 METHOD_PREFIX = {name: spec.prefix for name, spec in REGISTRY.items()}
 FLAG_COLUMNS = tuple(F.ALL)
 LEADING = ["galaxy_id", "ra", "dec", "gal_l", "gal_b", "galaxy_class", *FLAG_COLUMNS,
-           "z_helio", "z_helio_err", "z_cmb", "z_cmb_err", "mu_z", "mu_z_err", "d_z_mpc",
+           "z_helio", "z_helio_err", "z_cmb", "z_cmb_err", "cz_cmb_kms", "mu_z", "mu_z_err", "d_z_mpc",
            "ebv", "ebv_err", "ebv_used", "ebv_used_err"]
 TRAILING = ["mu_best", "mu_best_err", "mu_best_err_sys", "best_method"]
-CROSSCHECK_UNITS = {"dmu": "mag", "vpec": "km / s", "vpec_err": "km / s", "vpec_lr": "km / s",
-                    "vpec_lr_err": "km / s", "logd_ratio": "dex"}
+#: The columns the assembly derives (the cross-check's per galaxy, and its own), for the
+#: column dictionary (galdist.dictionary): per method ("{title}", "{prefix}" filled in) and
+#: per row. Each is (unit, description[, storage type]).
+DERIVED_COLUMNS = {
+    "per_method": {
+        "dmu": ("mag", "{prefix}_mu - mu_z: positive when the {title} distance is larger than the redshift "
+                       "distance"),
+        "logd_ratio": ("dex", "log10(d_z / d) = (mu_z - {prefix}_mu) / 5, luminosity distances: negative when "
+                              "the {title} distance is larger than the redshift distance"),
+        "vpec": ("km / s", "peculiar velocity from (1 + z_cmb) = (1 + z_cos)(1 + z_pec), z_cos the redshift "
+                           "of {prefix}_mu in the configured cosmology; positive = receding faster than the "
+                           "Hubble flow at that distance"),
+        "vpec_err": ("km / s", "error of vpec (mu_err and z_cmb_err)"),
+        "vpec_lr": ("km / s", "peculiar velocity by the log-ratio estimator of Watkins & Feldman 2015 "
+                              "(MNRAS 450, 1868)"),
+        "vpec_lr_err": ("km / s", "error of vpec_lr"),
+    },
+    "per_row": {
+        "cz_cmb_kms": ("km / s", "c z_cmb, the velocity the LOCAL_FLOW flags and redshift.min_cz_kms speak of",
+                       "float64"),
+        "mu_best": ("mag", "inverse-variance mean of the usable methods' mu (a method is usable where mu and "
+                           "mu_err are finite and it has no flag besides LOCAL_FLOW and OUTLIER, "
+                           "crosscheck.BEST_IGNORE_FLAGS)", "float64"),
+        "mu_best_err": ("mag", "random error of mu_best, 1 / sqrt(sum of the weights 1 / mu_err^2)", "float64"),
+        "mu_best_err_sys": ("mag", "systematic error of mu_best: the methods' mu_err_sys combined with the same "
+                                   "weights, the calibrations independent of each other", "float64"),
+        "best_method": ("", f"prefixes of the methods mu_best combines, joined by '+' (e.g. tf+sbf); "
+                            f"'{crosscheck.NO_METHOD}' where no method is usable", "string"),
+    },
+}
 CAUTIONS = (
     "Tully-Fisher distances of discs below the inclination limit (LOW_INCLINATION) are unreliable: "
     "the deprojection 1/sin i blows up for face-on discs.",
@@ -65,7 +93,9 @@ PACKAGES = ("galdist", "numpy", "pandas", "pyarrow", "astropy", "scipy", "specli
 def ordered(names: list[str]) -> list[str]:
     """Product column order: identity and flags, redshift, extinction, then the rest
     in stage order, the combined distance last."""
-    first = [n for n in LEADING if n in names]
+    from .dictionary import KEEP_PREFIX
+
+    first = [n for n in LEADING if n in names] + [n for n in names if n.startswith(KEEP_PREFIX)]
     last = [n for n in TRAILING if n in names]
     middle = [n for n in names if n not in first and n not in last]
     methods = [p + "_" for p in METHOD_PREFIX.values()]
@@ -107,31 +137,80 @@ def provenance(config: dict, calibrations: dict, ingest_summary: dict, repo: Pat
     }
 
 
-def _unit(name: str, units: dict) -> str | None:
-    if name in units:
-        return units[name]
-    for suffix, unit in CROSSCHECK_UNITS.items():
-        if name.endswith("_" + suffix):
-            return unit
-    if name.startswith("mu_best"):
-        return "mag"
-    return None
+def ordered_entries(names, entries: dict) -> list:
+    """The dictionary entries of ``names`` in product order (KeyError naming any without one)."""
+    from .dictionary import lookup
+
+    return lookup(entries, ordered(list(names)))
+
+
+def dtype_name(t: pa.DataType) -> str:
+    """The dictionary's name of an Arrow type (float64, uint32, bool, string, int64...)."""
+    return "float64" if t == pa.float64() else "float32" if t == pa.float32() else str(t)
+
+
+def product_schema(table: pa.Table, entries: dict, provenance_info: dict, text_lengths: dict) -> pa.Schema:
+    """The product's schema: each field's type checked against its dictionary entry and its
+    metadata (unit, description, flag bits) from it; in the schema metadata the provenance
+    and the header astropy reads (``dictionary.astropy_metadata``; ``text_lengths``: the
+    longest value of each text column)."""
+    from .dictionary import TEXT, astropy_metadata
+
+    fields = []
+    for f in table.schema:
+        e = entries[f.name]
+        if dtype_name(f.type) != e.dtype:
+            raise TypeError(f"product column {f.name} is {f.type}; the column dictionary says {e.dtype}")
+        fields.append(pa.field(f.name, f.type, metadata=e.field_metadata()))
+    schema = pa.schema(fields)
+    lengths = {f.name: text_lengths.get(f.name, 0) for f in schema if entries[f.name].dtype == TEXT}
+    meta = {"galdist.provenance": json.dumps(provenance_info, sort_keys=True, default=str)}
+    meta |= astropy_metadata(schema, entries, lengths)
+    return schema.with_metadata({k.encode(): v.encode() for k, v in meta.items()})
+
+
+def longest_texts(paths) -> dict[str, int]:
+    """The longest value (in characters) of every text column of the ingest shards: astropy
+    needs it in the header (``table::len::<name>``) before the first row is written. Reads
+    only the text columns, a row group at a time."""
+    import pyarrow.compute as pc
+    import pyarrow.parquet as pq
+
+    from .io import is_arrow_text, iter_rows
+
+    out: dict[str, int] = {}
+    for path in paths:
+        names = [f.name for f in pq.read_schema(path) if is_arrow_text(f.type)]
+        if not names:
+            continue
+        for table in iter_rows(path, names, 1 << 18):
+            for name in names:
+                out[name] = max(out.get(name, 0), pc.max(pc.utf8_length(table.column(name))).as_py() or 0)
+    return out
 
 
 def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, methods: list[str],
              provenance_info: dict, *, min_cz: float, clip_sigma: float, plot_max_points: int,
-             total_rows: int) -> dict:
-    """Stream the shards into ``out_path``; returns flag counts and best-method counts.
+             total_rows: int, entries: dict) -> dict:
+    """Stream the shards into ``out_path``; returns flag counts, best-method counts and the
+    product's dictionary entries in column order.
 
     ``shards``: one dict per shard, in order, mapping "shard" to the ingest shard
-    and each stage name to its narrow file.
+    and each stage name to its narrow file. ``entries``: the run's column dictionary
+    (``dictionary.by_name(dictionary.for_run(...))``); a column without an entry stops
+    the assembly. Besides the provenance, the schema metadata holds the header astropy
+    reads (``dictionary.astropy_metadata``).
     """
+    from .redshift import C_KMS
+
     prefixes = [METHOD_PREFIX[m] for m in methods]
     flag_counts = {c: Counter() for c in FLAG_COLUMNS}
     best = Counter()
     rows = 0
     writer = None
     samples = []
+    used: list = []
+    text_lengths = longest_texts([f["shard"] for f in shards])
     keep_fraction = min(1.0, plot_max_points / max(total_rows, 1))
     try:
         for index, files in enumerate(shards):
@@ -140,13 +219,20 @@ def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, 
             for cols, units in iter_shard(files["shard"], stages):
                 cols |= crosscheck.galaxy_columns(cols, grid, statistics, methods=prefixes, min_cz=min_cz,
                                                   clip_sigma=clip_sigma)
-                names = ordered(list(cols))
-                table = table_from_columns({n: cols[n] for n in names},
-                                           {n: u for n in names if (u := _unit(n, units))})
+                cols["cz_cmb_kms"] = C_KMS * np.asarray(cols["z_cmb"], dtype=float)
                 if writer is None:
-                    schema = table.schema.with_metadata({b"galdist.provenance": json.dumps(
-                        provenance_info, sort_keys=True, default=str).encode()})
-                    writer = AtomicParquetWriter(out_path, schema)
+                    used = ordered_entries(cols, entries)
+                    stale = [f"{e.name} ({units[e.name]!r} in the stage file, {e.unit!r} in the dictionary)"
+                             for e in used if e.name in units and units[e.name] != e.unit]
+                    if stale:
+                        raise ValueError("units differ between the stage files and the column dictionary: "
+                                         + ", ".join(stale))
+                names = [e.name for e in used]
+                table = table_from_columns({n: cols[n] for n in names})
+                if writer is None:
+                    text_lengths["best_method"] = max(len("+".join(prefixes)), len(crosscheck.NO_METHOD))
+                    writer = AtomicParquetWriter(out_path, product_schema(table, entries, provenance_info,
+                                                                          text_lengths))
                 writer.write(table.cast(writer.writer.schema))
                 for c in FLAG_COLUMNS:
                     if c in cols:
@@ -161,9 +247,10 @@ def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, 
         if writer is not None:
             writer.__exit__(RuntimeError, None, None)
         raise
-    writer.__exit__(None, None, None)
+    if writer is not None:
+        writer.__exit__(None, None, None)
     write_parquet(pa.concat_tables(samples), sample_path)
     return {"rows": rows,
             "flag_counts": {c: {m.name: flag_counts[c].get(m.name, 0) for m in F.ALL[c]}
                             for c in FLAG_COLUMNS if flag_counts[c] or c in ("quality_flags",)},
-            "best_method": dict(sorted(best.items()))}
+            "best_method": dict(sorted(best.items())), "entries": used}

@@ -558,6 +558,8 @@ def render(p: Proposal) -> str:
     else:
         out.append("units: {}")
     out += [f"#   {k}: {e.why}" for k, e in p.units.items() if e.value is None]
+    out += ["", "# columns of your catalog to pass through to distances.parquet as user_<name>, as read",
+            "keep_columns: []"]
     out += ["", "# band label -> filter curve and photometric system; columns: mag_<label>, mag_<label>_err"]
     if p.bands:
         out.append("bands:")

@@ -12,19 +12,49 @@ extinction law and a table, or a map and a catalog column, is written once.
 
 from __future__ import annotations
 
-#: stage -> output column -> unit ("" dimensionless); "{band}" stands for each configured band
+#: stage -> output column -> (unit ("" dimensionless), description for the column dictionary);
+#: "{band}" stands for each configured band
 _OUTPUTS = {
-    "extinction": {"ebv_used": "mag", "ebv_used_err": "mag", "A_{band}": "mag", "A_{band}_err": "mag",
-                   "ext_flags": ""},
-    "kcorr": {"K_{band}": "mag", "K_{band}_err": "mag", "kcorr_template": "", "kcorr_flags": ""},
-    "redshift": {"z_cmb": "", "z_cmb_err": "", "mu_z": "mag", "mu_z_err": "mag", "d_z_mpc": "Mpc",
-                 "z_flags": ""},
+    "extinction": {
+        "ebv_used": ("mag", "E(B-V) the corrections used: the catalog's or the map's value times "
+                            "extinction.ebv_scale (on the true scale); ebv is the value as given"),
+        "ebv_used_err": ("mag", "error of ebv_used"),
+        "A_{band}": ("mag", "Galactic extinction in band {band} (subtracted from the magnitudes)"),
+        "A_{band}_err": ("mag", "error of A_{band}"),
+        "ext_flags": ("", "Galactic extinction flags, a bit per reason"),
+    },
+    "kcorr": {
+        "K_{band}": ("mag", "K-correction of band {band} (subtracted from the magnitudes)"),
+        "K_{band}_err": ("mag", "error of K_{band}"),
+        "kcorr_template": ("", "the spectral template used for the K-corrections, as a fractional index "
+                               "along the ordered template sequence (0 = first template; 3.85 lies "
+                               "between the 4th and 5th, nearer the 5th)"),
+        "kcorr_flags": ("", "K-correction flags, a bit per reason"),
+    },
+    "redshift": {
+        "z_cmb": ("", "redshift in the CMB rest frame"),
+        "z_cmb_err": ("", "error of z_cmb (measurement and the configured peculiar-velocity term)"),
+        "mu_z": ("mag", "distance modulus of z_cmb in the configured cosmology (a convention, not a "
+                        "measurement)"),
+        "mu_z_err": ("mag", "error of mu_z from z_cmb_err"),
+        "d_z_mpc": ("Mpc", "luminosity distance of z_cmb in the configured cosmology"),
+        "z_flags": ("", "redshift-distance flags, a bit per reason"),
+    },
 }
 
 
 def output_units(stage: str, bands) -> dict[str, str]:
     """Every column ``stage`` writes with its unit, for the configured ``bands``."""
-    return {name.format(band=label): unit for name, unit in _OUTPUTS[stage].items()
+    return {name: unit for name, (unit, _) in output_columns(stage, bands).items()}
+
+
+def output_columns(stage: str, bands) -> dict[str, tuple[str, str]]:
+    """Every column ``stage`` writes -> (unit, description), for the configured ``bands``
+    (``bands`` None: the templates, "{band}" left in)."""
+    if bands is None:
+        return dict(_OUTPUTS[stage])
+    return {name.format(band=label): (unit, text.format(band=label))
+            for name, (unit, text) in _OUTPUTS[stage].items()
             for label in (bands if "{band}" in name else [None])}
 
 

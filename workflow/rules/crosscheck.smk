@@ -46,6 +46,7 @@ rule assemble:
         distances=update(f"{RUN}/distances.parquet"),
         summary=update(f"{RUN}/summary.json"),
         plot_sample=update(f"{RUN}/plot_sample.parquet"),
+        columns=update(f"{RUN}/COLUMNS.md"),
     params:
         crosscheck=config["crosscheck"],
         min_cz=config["redshift"]["min_cz_kms"],

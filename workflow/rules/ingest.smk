@@ -15,6 +15,7 @@ checkpoint ingest:
         units=config["units"],
         bands=BANDS,
         methods=METHODS,
+        keep=config["keep_columns"],
         shard_rows=SHARD_ROWS,
     log:
         f"{LOGS}/ingest.log",
