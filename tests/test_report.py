@@ -71,3 +71,21 @@ def test_opens_in_a_real_browser(page, tmp_path):
     dom, shot = open_in_browser(page, tmp_path)
     assert "IMAGES LOADED" in dom and "69.8 ± 0.7" in dom
     assert shot.stat().st_size > 10_000
+
+
+def test_calibration_fit_section_where_the_calibrate_target_ran(tmp_path):
+    fig, ax = plt.subplots(figsize=(3, 2))
+    ax.plot([0, 1], [0, 1])
+    fig.savefig(tmp_path / "fit_report.png")
+    plt.close(fig)
+    fit = {"calibration": "tf_fitted", "form": "luminosity", "galaxies_fitted": 324, "groups": 24,
+           "groups_with_reference": 6,
+           "selection_aware": {"coefficients": [-21.41, -8.52], "errors": [0.08, 0.22], "scatter": 0.410,
+                               "scatter_err": 0.019},
+           "naive": {"coefficients": [-21.49, -7.98], "errors": [0.08, 0.18], "scatter": 0.392, "scatter_err": 0.016},
+           "bootstrap": {"errors": [0.07, 0.2]}}
+    text = report.render("demo", SUMMARY, PROVENANCE, [], [(fit, tmp_path / "fit_report.png")])
+    assert "Calibration fits" in text and "tf_fitted" in text
+    assert "-21.410 ± 0.080, -8.520 ± 0.220" in text and "-7.980 ± 0.180" in text
+    assert text.count("data:image/png;base64") == 1
+    assert "Calibration fits" not in report.render("demo", SUMMARY, PROVENANCE, [])

@@ -105,8 +105,28 @@ def _figure(name: str, png: Path, caption: str) -> str:
             f"<figcaption>{_e(caption)}</figcaption></figure>")
 
 
-def render(run: str, summary: dict, provenance: dict, plots: list[tuple[str, Path, str]]) -> str:
-    """The report page. ``plots``: (name, PNG path, caption text) in display order."""
+def _fits(fits) -> str:
+    """The calibration fits of the ``calibrate`` target: (fit summary, figure PNG) each."""
+    out = []
+    for fit, png in fits:
+        def coeffs(key):
+            f = fit.get(key, {})
+            return ", ".join(_pm(c, e, "+.3f", ".3f") for c, e in zip(f.get("coefficients", []), f.get("errors", []))) + \
+                f"; scatter {_pm(f.get('scatter'), f.get('scatter_err'), '.3f', '.3f')}"
+        boot = fit.get("bootstrap", {})
+        out.append(f"""<h3><code>{_e(fit.get('calibration'))}</code> ({_e(fit.get('form'))} form)</h3>
+<table><tr><th>galaxies / groups (with reference distances)</th><td class="num">{_e(fit.get('galaxies_fitted'))} /
+{_e(fit.get('groups'))} ({_e(fit.get('groups_with_reference'))})</td></tr>
+<tr><th>selection-aware fit</th><td>{coeffs('selection_aware')}</td></tr>
+<tr><th>naive fit (selection ignored)</th><td>{coeffs('naive')}</td></tr>
+<tr><th>bootstrap errors over groups</th><td>{_e(', '.join(_num(e) for e in boot.get('errors', [])) or '–')}</td></tr>
+</table>{_figure('fit-' + str(fit.get('calibration')), png, 'The fitted relation with its sample, residuals against the predictor and against distance (the signature of selection bias), and the group offsets.')}""")
+    return "".join(out)
+
+
+def render(run: str, summary: dict, provenance: dict, plots: list[tuple[str, Path, str]], fits=()) -> str:
+    """The report page. ``plots``: (name, PNG path, caption text) in display order;
+    ``fits``: (fit summary, figure PNG) of the calibrate target, where it ran."""
     stats = summary.get("statistics", {})
     inputs = "".join(f"<li><code>{_e(i.get('path'))}</code> <span class='muted'>({_e(i.get('format'))}, "
                      f"SHA-256 {_e(str(i.get('sha256'))[:16])}…)</span></li>" for i in summary.get("inputs", []))
@@ -136,6 +156,7 @@ a positive offset means larger distances, hence a smaller implied H0.</p>
 {_method_cards(stats)}
 <h2>Methods compared</h2>
 {_pairs(stats)}
+{'<h2>Calibration fits</h2>' + _fits(fits) if fits else ''}
 <h2>Cautions: what these values are not good for</h2>
 {cautions}
 <h2>Plots</h2>
@@ -163,7 +184,7 @@ def caption_text(rst_path: str | Path) -> str:
     return " ".join(text.replace("``", "").split())
 
 
-def write(path: str | Path, run: str, summary: dict, provenance: dict, plots) -> None:
+def write(path: str | Path, run: str, summary: dict, provenance: dict, plots, fits=()) -> None:
     """Write the page atomically."""
     with atomic_path(path) as tmp:
-        Path(tmp).write_text(render(run, summary, provenance, plots), encoding="utf-8")
+        Path(tmp).write_text(render(run, summary, provenance, plots, fits), encoding="utf-8")

@@ -1,9 +1,18 @@
 # The run report: one static, self-contained HTML page (galdist.report), built at the end of
-# every run from summary.json, the product's provenance and the plots with their captions.
+# every run from summary.json, the product's provenance and the plots with their captions,
+# and the calibration fit where config `calibrate` names a sample (calibrate.smk).
+
+
+def calibration_fit_files(wildcards):
+    """The calibrate target's summary and figure, where a calibration sample is configured."""
+    if not CALIBRATION_SAMPLE:
+        return {}
+    return {"fit_summary": f"{CALIBRATE}/fit_summary.json", "fit_report": f"{CALIBRATE}/fit_report.png"}
 
 
 rule run_report:
     input:
+        unpack(calibration_fit_files),
         summary=rules.assemble.output.summary,
         distances=rules.assemble.output.distances,
         plots=[f"{RUN}/plots/{name}.png" for name in PLOTS],
