@@ -194,7 +194,7 @@ def _observe(rng, ra, dec, z_cos, v_pec, is_disc, conf):
     cols["sbf_color_err"] = np.where(is_disc, np.nan, c_err)
     # FP for every early type (see make_catalog), where the config has the FP band
     if conf["fp"]["band"] in bands:
-        fp_cols = _fundamental_plane(rng, n, conf, z_helio, mu, a[conf["fp"]["band"]], k[conf["fp"]["band"]])
+        fp_cols, _ = _fundamental_plane(rng, n, conf, z_helio, mu, a[conf["fp"]["band"]], k[conf["fp"]["band"]])
         for name, values in fp_cols.items():
             cols[name] = np.where(is_disc, np.nan, values)
     return cols
@@ -256,6 +256,7 @@ def _fundamental_plane(rng, n, conf, z_helio, mu, a_gal, k_corr, noise: bool = T
     demo's fibre from sigma_0 by the aperture correction; then measurement errors.
     Steps the config switches off are not applied here either. ``noise=False``
     leaves the measurement errors out (the values stay exact, the errors are quoted).
+    Returns (catalog columns, the true {"r", "s", "i"}).
     """
     from . import fp
     from .calibration import load_calibration
@@ -296,7 +297,7 @@ def _fundamental_plane(rng, n, conf, z_helio, mu, a_gal, k_corr, noise: bool = T
         "fp_aperture_arcsec": aperture,
         "fp_re_arcsec": theta + scale * rng.normal(0.0, 1.0, n) * re_err, "fp_re_err": re_err,
         "fp_mu_e": mu_e + scale * rng.normal(0.0, 1.0, n) * mu_e_err, "fp_mu_e_err": mu_e_err,
-    }
+    }, {"r": r, "s": s, "i": i}
 
 
 def _sprinkle_bad_rows(rng, cols, settings):

@@ -100,10 +100,10 @@ def _save(fig, path) -> None:
 
 def _finish(fig, notes: Sequence[str]) -> None:
     """Lay the figure out and write ``notes`` (what the plot counts) under it."""
-    text = "\n".join(textwrap.fill(n, 150) for n in notes if n)
+    width, height = fig.get_size_inches()
+    text = "\n".join(textwrap.fill(n, int(22 * width), subsequent_indent="    ") for n in notes if n)
     lines = text.count("\n") + 1 if text else 0
-    height = fig.get_size_inches()[1]
-    bottom = min(0.4, (0.12 + 0.13 * lines) / height) if lines else 0.0
+    bottom = min(0.45, (0.06 + 0.115 * lines) / height) if lines else 0.0
     fig.tight_layout(rect=(0, bottom, 1, 1))
     if text:
         fig.text(0.01, 0.01, text, fontsize=6.5, va="bottom", ha="left", color="0.25")
@@ -167,7 +167,7 @@ def hubble_diagram(df, path, grid, methods: Sequence[str] = _DEFAULT_METHODS, mi
         no_z = int((np.isfinite(mu) & ~(np.isfinite(z) & (z > 0))).sum())
         bad = ok & _flagged(df, m)
         notes.append(_count_note(name, int((ok & ~bad).sum()), int(bad.sum()),
-                                 f"; not drawn: {no_z} with a distance but no z_CMB > 0, {off} off-scale"))
+                                 f"; not drawn: {no_z} without z_CMB > 0, {off} off-scale"))
         if not ok.any():
             continue
         _points(ax, z, mu, err, ok & ~bad, bad, color, marker, name)
@@ -192,7 +192,7 @@ def hubble_diagram(df, path, grid, methods: Sequence[str] = _DEFAULT_METHODS, mi
     ax.set_ylabel(r"distance modulus $\mu$ (mag)")
     ax.set_title("Hubble diagram")
     ax.grid(alpha=0.3)
-    _finish(fig, ["Counts (points drawn): " + "; ".join(notes)] if notes else [])
+    _finish(fig, ["Points drawn, per method:", *notes] if notes else [])
     _save(fig, path)
     return n
 
@@ -269,7 +269,7 @@ def relation(df, path, prefix: str, calibration=None, bands: dict | None = None,
             span = [np.nanmin(np.r_[x[ok], y[ok]]), np.nanmax(np.r_[x[ok], y[ok]])] if n else [0.0, 1.0]
             cx = np.linspace(span[0] - 0.05, span[1] + 0.05, 50)
             cy = cx
-            line_label = f"1:1, the calibration {calibration.name}"
+            line_label = f"1:1 (on the plane of {calibration.name})"
         else:
             lo, hi = calibration.valid_range
             curve = _calibration_curve(calibration, np.linspace(lo, hi, 200))
@@ -356,7 +356,7 @@ def dmu_histograms(df, path, methods: Sequence[str] = _DEFAULT_METHODS, min_cz: 
         ax.set_title(f"{name}: c z ≥ {min_cz:g} km/s")
     if not present:
         _no_data(axes[0])
-    _finish(fig, ["Counts: " + "; ".join(notes)] if notes else [])
+    _finish(fig, ["Points drawn, per method:", *notes] if notes else [])
     _save(fig, path)
     return total
 
@@ -392,7 +392,7 @@ def dmu_cz(df, path, methods: Sequence[str] = _DEFAULT_METHODS, min_cz: float = 
         ax.grid(alpha=0.3)
     if not present:
         _no_data(axes[0])
-    _finish(fig, ["Counts: " + "; ".join(notes)] if notes else [])
+    _finish(fig, ["Points drawn, per method:", *notes] if notes else [])
     _save(fig, path)
     return total
 
@@ -434,7 +434,7 @@ def dmu_predictor(df, path, methods: Sequence[str] = _DEFAULT_METHODS, calibrati
         ax.grid(alpha=0.3)
     if not present:
         _no_data(axes[0])
-    _finish(fig, ["Counts: " + "; ".join(notes)] if notes else [])
+    _finish(fig, ["Points drawn, per method:", *notes] if notes else [])
     _save(fig, path)
     return total
 
@@ -474,7 +474,7 @@ def method_comparison(df, path, methods: Sequence[str] = _DEFAULT_METHODS) -> in
         ax.grid(alpha=0.3)
     if not pairs:
         _no_data(axes[0], "fewer than two methods")
-    _finish(fig, ["Galaxies with both distances: " + "; ".join(notes)] if notes else [])
+    _finish(fig, ["Galaxies with both distances, per pair:", *notes] if notes else [])
     _save(fig, path)
     return total
 
@@ -530,7 +530,7 @@ def vpec_sky(df, path, methods: Sequence[str] = _DEFAULT_METHODS, column: str = 
         ax.set_ylabel("galactic latitude b")
         ax.grid(alpha=0.3)
         ax.set_title(f"{name}: peculiar velocity ({column})", fontsize=10)
-    _finish(fig, ["Counts: " + "; ".join(notes)] if notes else [])
+    _finish(fig, ["Points drawn, per method:", *notes] if notes else [])
     _save(fig, path)
     return total
 
