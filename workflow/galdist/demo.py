@@ -4,6 +4,14 @@ Invented data, for the demo and the benchmark only: never a check value for
 science tests. Galaxies get a true cosmological redshift and distance, a
 peculiar velocity, and observables generated forward through the corrections the
 pipeline undoes.
+
+Discs carry HI (Tully-Fisher); early types carry SBF and Fundamental-Plane inputs,
+and a few lenticulars HI as well, so every pair of methods has galaxies in common.
+Every early type gets FP inputs (where the config has the FP band): a velocity
+dispersion from the survey's own spectrum and R_e and <mu_e> from its imaging are all
+the FP needs, which is why real FP samples are many times larger than SBF samples and
+reach farther; giving FP to all of them also keeps the demo's FP zero point tested
+on as many galaxies as SBF's.
 """
 
 from __future__ import annotations
