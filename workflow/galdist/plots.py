@@ -89,11 +89,11 @@ def _no_data(ax, text="no data"):
 
 
 def _save(fig, path) -> None:
-    """Write the PNG atomically (temporary name, then rename) and free the figure;
-    the bounding box takes in legends and footnotes placed outside the axes."""
+    """Write the PNG atomically (temporary name, then rename) and free the figure.
+    (``tight_layout`` in ``_finish`` makes room for legends placed outside the axes.)"""
     try:
         with atomic_path(path) as tmp:
-            fig.savefig(tmp, dpi=DPI, bbox_inches="tight", pad_inches=0.15)
+            fig.savefig(tmp, dpi=DPI)
     finally:
         plt.close(fig)
 
