@@ -36,6 +36,11 @@ def small_catalog(n: int = 40, seed: int = 1) -> dict:
     for b in BANDS:
         cols[f"mag_{b}"] = rng.uniform(11, 16, n)
         cols[f"mag_{b}_err"] = np.full(n, 0.04)
+    # Fundamental-Plane inputs (the default config runs fp): the shipped J-band plane's ranges, except
+    # dispersions below ~110 km/s (log sigma_0 < 2.05), which that calibration leaves out
+    cols |= {"fp_sigma": rng.uniform(90, 250, n), "fp_sigma_err": np.full(n, 8.0),
+             "fp_aperture_arcsec": np.full(n, 1.5), "fp_re_arcsec": rng.uniform(2, 10, n),
+             "fp_re_err": np.full(n, 0.3), "fp_mu_e": rng.uniform(16.5, 18.5, n), "fp_mu_e_err": np.full(n, 0.05)}
     return cols
 
 

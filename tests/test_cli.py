@@ -49,7 +49,8 @@ def galdist(*args: str, cwd: Path, timeout: float = 600) -> subprocess.Completed
 # --- catalogs with foreign column names and units ----------------------------------------
 
 def write_csv(folder: Path) -> Path:
-    """cz in km/s as 'vhel', RA in hours, widths in m/s, Cousins magnitudes 'Imag'/'Vmag', SBF, E(B-V)."""
+    """cz in km/s as 'vhel', RA in hours, widths in m/s, Cousins magnitudes 'Imag'/'Vmag', SBF, E(B-V),
+    Fundamental-Plane columns 'sigma', 'Re', 'mue_J' (J-band <mu_e>), 'aperture'."""
     c = small_catalog(N_ROWS, seed=11)
     df = pd.DataFrame({
         "galaxy_name": c["galaxy_id"], "RAJ2000": c["ra"] / 15.0, "DEJ2000": c["dec"],
@@ -58,7 +59,9 @@ def write_csv(folder: Path) -> Path:
         "ba": c["axis_ratio"], "e_ba": c["axis_ratio_err"],
         "Imag": c["mag_I"], "e_Imag": c["mag_I_err"], "Vmag": c["mag_V"], "e_Vmag": c["mag_V_err"],
         "mbar": c["sbf_mag"], "e_mbar": c["sbf_mag_err"], "V-I": c["sbf_color"], "e_V-I": c["sbf_color_err"],
-        "E(B-V)": c["ebv"], "e_E(B-V)": c["ebv_err"], "Type": c["galaxy_class"], "remark": ["ok"] * N_ROWS})
+        "E(B-V)": c["ebv"], "e_E(B-V)": c["ebv_err"], "Type": c["galaxy_class"], "remark": ["ok"] * N_ROWS,
+        "sigma": c["fp_sigma"], "e_sigma": c["fp_sigma_err"], "aperture": c["fp_aperture_arcsec"],
+        "Re": c["fp_re_arcsec"], "e_Re": c["fp_re_err"], "mue_J": c["fp_mu_e"], "e_mue_J": c["fp_mu_e_err"]})
     path = folder / "survey.csv"
     df.to_csv(path, index=False)
     return path
@@ -100,9 +103,12 @@ EXPECTED = {
     "csv": (write_csv,
             {"galaxy_id": "galaxy_name", "ra": "RAJ2000", "z_helio": "vhel", "z_helio_err": "e_vhel", "w50": "W50",
              "w50_err": "e_W50", "axis_ratio": "ba", "mag_I": "Imag", "mag_V_err": "e_Vmag", "sbf_mag": "mbar",
-             "sbf_color": "V-I", "sbf_color_err": "e_V-I", "ebv": "E(B-V)", "ebv_err": "e_E(B-V)"},
+             "sbf_color": "V-I", "sbf_color_err": "e_V-I", "ebv": "E(B-V)", "ebv_err": "e_E(B-V)",
+             "fp_sigma": "sigma", "fp_sigma_err": "e_sigma", "fp_aperture_arcsec": "aperture", "fp_re_arcsec": "Re",
+             "fp_re_err": "e_Re", "fp_mu_e": "mue_J", "fp_mu_e_err": "e_mue_J"},
             {"z_helio": "km/s", "z_helio_err": "km/s", "ra": "hourangle", "w50": "m/s", "w50_err": "m/s"},
-            ["tully_fisher", "sbf"], {"tully_fisher": "tf_i_tully_courtois_2012", "sbf": "sbf_tonry1997_cousins_i"}),
+            ["tully_fisher", "sbf", "fp"], {"tully_fisher": "tf_i_tully_courtois_2012", "sbf": "sbf_tonry1997_cousins_i",
+                                            "fp": "fp_j_magoulas_2012"}),
     "fits": (write_fits,
              {"galaxy_id": "NAME", "ra": "RA", "dec": "DEC", "z_helio": "CZ", "w50": "W50_HI",
               "w50_err": "W50_HI_ERR", "axis_ratio": "AXIS_RATIO", "mag_Ks": "KMAG", "mag_Ks_err": "E_KMAG"},
@@ -153,9 +159,13 @@ def test_init_details_of_the_csv_proposal(tmp_path, monkeypatch):
     assert cfg["run"] == RUN
     assert cfg["catalog"] == {"paths": ["survey.csv"], "format": "csv"}
     assert cfg["bands"] == {"V": {"filter": "bessell-V", "system": "Vega", "ab_minus_vega": 0.02},
-                            "I": {"filter": "bessell-I", "system": "Vega", "ab_minus_vega": 0.45}}
+                            "I": {"filter": "bessell-I", "system": "Vega", "ab_minus_vega": 0.45},
+                            "J": {"filter": "twomass-J", "system": "Vega", "ab_minus_vega": 0.91}}
     assert cfg["kcorr"]["colour_pair"] == ["V", "I"]
     assert cfg["sbf"]["color_bands"] == ["V", "I"] and cfg["sbf"]["band"] == "I"
+    # the Fundamental Plane's band from the surface brightness's name: J, a filter curve only
+    assert cfg["fp"] == {"calibration": "fp_j_magoulas_2012", "band": "J"}
+    assert "mue_J' reads as the mean surface brightness within R_e in J" in text
     assert "logW" not in cfg["columns"].values()
     assert "logW: a logarithm" in text
     assert "Blanton & Roweis 2007" in text
@@ -199,13 +209,34 @@ def test_init_takes_a_w20_width_and_says_so(tmp_path):
     assert cfg["kcorr"]["colour_pair"] is None  # one band: no colour
 
 
+def test_init_proposes_the_fundamental_plane_from_its_columns(tmp_path):
+    """An early-type catalog with SDSS r surface brightnesses and no aperture column: fp with
+    the r-band calibration, the band a filter curve, and a TODO naming the aperture."""
+    c = small_catalog(60, seed=9)
+    pd.DataFrame({"objid": c["galaxy_id"], "ra": c["ra"], "dec": c["dec"], "z": c["z_helio"], "zerr": c["z_helio_err"],
+                  "veldisp": c["fp_sigma"], "veldisp_err": c["fp_sigma_err"], "r_e": c["fp_re_arcsec"],
+                  "r_e_err": c["fp_re_err"], "mu_e_r": c["fp_mu_e"], "mu_e_r_err": c["fp_mu_e_err"],
+                  "ebv": c["ebv"], "ebv_err": c["ebv_err"]}).to_csv(tmp_path / "early.csv", index=False)
+    p = propose.propose(str(tmp_path / "early.csv"))
+    assert p.methods == ["fp"]
+    assert {k: p.columns[k].value for k in ("fp_sigma", "fp_sigma_err", "fp_re_arcsec", "fp_re_err", "fp_mu_e",
+                                            "fp_mu_e_err")} == {
+        "fp_sigma": "veldisp", "fp_sigma_err": "veldisp_err", "fp_re_arcsec": "r_e", "fp_re_err": "r_e_err",
+        "fp_mu_e": "mu_e_r", "fp_mu_e_err": "mu_e_r_err"}
+    cfg = yaml.safe_load(propose.render(p))
+    assert cfg["fp"] == {"calibration": "fp_r_bernardi_2003", "band": "r"}
+    assert cfg["bands"] == {"r": {"filter": "sdss2010-r", "system": "AB", "ab_minus_vega": None}}
+    assert any("fp_aperture_arcsec" in t and "apply_aperture_correction" in t for t in p.todo)
+
+
 @pytest.mark.parametrize("name, role", [
     ("PGC", "galaxy_id"), ("_RAJ2000", "ra"), ("DEJ2000", "dec"), ("decl", "dec"),
     ("vhel", "z_helio"), ("V_helio", "z_helio"), ("cz", "z_helio"), ("W50", "w50"), ("wHI", "w50"),
     ("b/a", "axis_ratio"), ("gmag", "mag_g"), ("mag_g", "mag_g"), ("g_mag", "mag_g"), ("Imag", "mag_I"),
     ("imag", "mag_i"), ("Ks", "mag_Ks"), ("kmag", "mag_Ks"), ("Kmag", "mag_Ks"), ("m_bar", "sbf_mag"),
     ("V-I", "sbf_color"), ("g_z", "sbf_color"), ("E(B-V)", "ebv"), ("logW", None), ("logW50", None),
-    ("flux", None)])
+    ("flux", None), ("vdisp", "fp_sigma"), ("sigma0", "fp_sigma"), ("R_e", "fp_re_arcsec"), ("Reff", "fp_re_arcsec"),
+    ("mu_e", "fp_mu_e"), ("mue_r", "fp_mu_e"), ("aperture", "fp_aperture_arcsec"), ("logsigma", None)])
 def test_column_names(name, role):
     m = propose.match_name(name)
     assert (m.role if m else None) == role
@@ -214,7 +245,9 @@ def test_column_names(name, role):
 @pytest.mark.parametrize("name, role", [("e_vhel", "z_helio_err"), ("W50_err", "w50_err"),
                                         ("sigma_ba", "axis_ratio_err"), ("e_Imag", "mag_I_err"),
                                         ("Imag_error", "mag_I_err"), ("eVmag", "mag_V_err"), ("zerr", "z_helio_err"),
-                                        ("e_V-I", "sbf_color_err"), ("err_mbar", "sbf_mag_err")])
+                                        ("e_V-I", "sbf_color_err"), ("err_mbar", "sbf_mag_err"),
+                                        ("e_sigma", "fp_sigma_err"), ("Re_err", "fp_re_err"),
+                                        ("e_mue_J", "fp_mu_e_err")])
 def test_error_column_names(name, role):
     assert propose.match_name(name) is None
     assert propose.match_error(name)[1] == role
@@ -337,7 +370,7 @@ def test_run_puts_every_row_in_the_product(clean):
     assert table.column("galaxy_id").to_pylist() == source["galaxy_name"].tolist()
     assert not (REPO / "galdist-results" / RUN).exists()
     out = result.stdout
-    assert "[ingest] done" in out and "[distance] 6/6 jobs" in out and "[assemble] done" in out
+    assert "[ingest] done" in out and "[distance] 9/9 jobs" in out and "[assemble] done" in out  # 3 methods x 3 shards
     assert "distances.parquet" in out.split("products in", 1)[1]
     log = (run / "logs" / "galdist-run.log").read_text()
     assert "Finished jobid" in log and "Rule: assemble" in log

@@ -198,7 +198,9 @@ def test_every_list_of_methods_follows_the_registry():
     assert product.METHOD_PREFIX == dict(zip(names, prefixes))
     assert crosscheck.DEFAULT_METHODS == tuple(prefixes)
     assert plots.plot_names(prefixes) == ["hubble_diagram", *(f"{s.prefix}_relation" for s in SPECS
-                                                              if s.relation_plot), "dmu_histograms", "vpec_sky"]
+                                                              if s.relation_plot), "dmu_histograms", "dmu_cz",
+                                          "dmu_predictor", "method_comparison", "vpec_sky"]
+    assert len({s.marker for s in SPECS}) == len(SPECS)  # flagged points told apart by shape
     for spec in SPECS:
         assert columns.method_columns(spec.name) == list(spec.catalog_columns)
         if spec.relation_plot:

@@ -124,10 +124,11 @@ def test_filter_file_needs_its_passband(tmp_path):
     Table({"wavelength": wave, "throughput": np.exp(-0.5 * ((wave - 8100) / 500) ** 2)}).write(curve)
     path = write(small_catalog(20), tmp_path / "cat.parquet")
     bands = JC | {"I": {"filter": str(curve), "system": "Vega", "ab_minus_vega": 0.45}}
-    msgs = errors(preflight.check({"catalog": path, "bands": bands}), "passbands and systems")
+    methods = ["tully_fisher", "sbf"]  # the default's fp would need its J band
+    msgs = errors(preflight.check({"catalog": path, "bands": bands, "methods": methods}), "passbands and systems")
     assert any("bands.I.passband" in m for m in msgs), msgs
     bands["I"]["passband"] = "Cousins I"
-    assert preflight.check({"catalog": path, "bands": bands}).errors == []
+    assert preflight.check({"catalog": path, "bands": bands, "methods": methods}).errors == []
 
 
 def test_vega_colour_band_needs_an_offset(tmp_path):

@@ -41,7 +41,8 @@ from test_determinism import assert_same_products, product_files
 # 20000 rows in 4 shards: phases long enough to hit (a clean run takes ~35 s on 2 cores).
 ARGS = ("--config", "demo={n_galaxies: 20000}", "shard_rows=5000")
 SHARD_IDS = [f"{i:05d}" for i in range(4)]
-PLOTS = ["hubble_diagram", "tf_relation", "sbf_relation", "dmu_histograms", "vpec_sky"]
+PLOTS = ["hubble_diagram", "tf_relation", "sbf_relation", "fp_relation", "dmu_histograms", "dmu_cz",
+         "dmu_predictor", "method_comparison", "vpec_sky"]
 LOCKED = "Directory cannot be locked"
 INCOMPLETE = "IncompleteFilesException"
 
@@ -336,7 +337,7 @@ def test_failed_shard_names_itself_others_finish_and_only_it_reruns(reference, k
     workdir, run = killed["workdir"], killed["run"]
     assert run_snakemake(workdir, *ARGS).returncode == 0  # complete (nothing to do)
     # the state of a run that has finished the extinction stage and nothing after it...
-    for name in ("shards/kcorr", "shards/tully_fisher", "shards/sbf", "plots"):
+    for name in ("shards/kcorr", "shards/tully_fisher", "shards/sbf", "shards/fp", "plots"):
         shutil.rmtree(run / name)
     for name in ("crosscheck_statistics.json", "distances.parquet", "summary.json", "plot_sample.parquet"):
         (run / name).unlink()
@@ -355,7 +356,8 @@ def test_failed_shard_names_itself_others_finish_and_only_it_reruns(reference, k
     assert "part-00001.parquet: not a readable Parquet file" in log
     # the other shards' jobs ran to the end; nothing after the failed shard's job ran
     for shard in ("00000", "00002", "00003"):
-        for stage in ("kcorr", "tully_fisher/tf_i_tully_courtois_2012", "sbf/sbf_tonry1997_cousins_i"):
+        for stage in ("kcorr", "tully_fisher/tf_i_tully_courtois_2012", "sbf/sbf_tonry1997_cousins_i",
+                      "fp/fp_j_magoulas_2012"):
             assert (run / "shards" / stage / f"part-{shard}.parquet").exists(), (stage, shard)
     assert not (run / "shards" / "kcorr" / "part-00001.parquet").exists()
     assert not (run / "distances.parquet").exists()
@@ -366,7 +368,7 @@ def test_failed_shard_names_itself_others_finish_and_only_it_reruns(reference, k
     planned = plan.stdout + plan.stderr
     assert plan.returncode == 0, planned[-2000:]
     assert _job_counts(planned) == {
-        "extinction": 1, "kcorr": 1, "distance": 2, "crosscheck_statistics": 1,
+        "extinction": 1, "kcorr": 1, "distance": 3, "crosscheck_statistics": 1,  # one per method
         "assemble": 1, "plots": 1, "run_report": 1, "all": 1}
     outputs = [line for line in planned.splitlines() if line.strip().startswith("output:")]
     assert any("part-00001.parquet" in line for line in outputs)

@@ -1,7 +1,8 @@
-"""End-to-end runs with one distance method: a Tully-Fisher-only HI survey (no SBF
-columns, no Ks magnitudes in the catalog) and an SBF-only early-type sample (no TF
-columns and no broadband magnitudes at all), each through `galdist run` from a folder
-outside the code checkout, with the default bands (V, I, Ks) still configured.
+"""End-to-end runs with one distance method: a Tully-Fisher-only HI survey (no SBF or FP
+columns, no Ks magnitudes in the catalog), an SBF-only and a Fundamental-Plane-only
+early-type sample (no other method's columns and no broadband magnitudes at all), each
+through `galdist run` from a folder outside the code checkout, with the default bands
+(V, I, J, Ks) still configured.
 
 Every input row must reach distances.parquet in input order, the absent method must
 leave no columns, jobs, statistics or plots behind, summary.json must say plainly that
@@ -28,18 +29,19 @@ from galdist.columns import method_columns
 pytestmark = pytest.mark.slow
 
 N_ROWS = 300
-PREFIX = {"tully_fisher": "tf", "sbf": "sbf"}
-OTHER = {"tully_fisher": "sbf", "sbf": "tully_fisher"}
+PREFIX = {"tully_fisher": "tf", "sbf": "sbf", "fp": "fp"}
+OTHERS = {m: [o for o in PREFIX if o != m] for m in PREFIX}
 
 
 def _catalog(method: str) -> pa.Table:
     """small_catalog without the other method's columns, rows shuffled so that input
     order is not the sorted order of galaxy_id."""
     cols = small_catalog(N_ROWS, seed=11)
-    for c in method_columns(OTHER[method]):
-        del cols[c.name]
+    for other in OTHERS[method]:
+        for c in method_columns(other):
+            cols.pop(c.name, None)
     # bands no stage reads need no magnitude columns: Ks never, V and I only for the
-    # K-correction colour (the SBF-only run sets kcorr.colour_pair: null)
+    # K-correction colour (the SBF- and FP-only runs set kcorr.colour_pair: null)
     unused = ("Ks",) if method == "tully_fisher" else ("V", "I", "Ks")
     for b in unused:
         del cols[f"mag_{b}"], cols[f"mag_{b}_err"]
@@ -47,14 +49,14 @@ def _catalog(method: str) -> pa.Table:
     return pa.table({k: np.asarray(v)[order] for k, v in cols.items()})
 
 
-@pytest.fixture(scope="module", params=["tully_fisher", "sbf"])
+@pytest.fixture(scope="module", params=["tully_fisher", "sbf", "fp"])
 def single_run(request, tmp_path_factory):
     method = request.param
     folder = tmp_path_factory.mktemp(f"only-{method}")  # the user's own folder, not the checkout
     catalog = _catalog(method)
     pq.write_table(catalog, folder / "cat.parquet")
     conf = {"catalog": "cat.parquet", "run": "single", "methods": [method], "shard_rows": 100}
-    if method == "sbf":
+    if method != "tully_fisher":
         conf["kcorr"] = {"colour_pair": None}
     (folder / "run.yaml").write_text(json.dumps(conf))
     env = {k: v for k, v in os.environ.items() if k != "SNAKEMAKE_PROFILE"}
@@ -68,15 +70,16 @@ def test_every_row_in_input_order_without_the_other_method(single_run):
     method, run, catalog = single_run
     product = pq.read_table(run / "distances.parquet")
     assert product.column("galaxy_id").to_pylist() == catalog.column("galaxy_id").to_pylist()
-    p, other = PREFIX[method], PREFIX[OTHER[method]]
+    p = PREFIX[method]
     names = product.column_names
-    assert not [n for n in names if n.startswith(f"{other}_")]
-    assert not {c.name for c in method_columns(OTHER[method])} & set(names)
+    for other in OTHERS[method]:
+        assert not [n for n in names if n.startswith(f"{PREFIX[other]}_")], other
+        assert not {c.name for c in method_columns(other)} & set(names), other
     for c in ("mu", "mu_err", "flags", "dmu", "vpec", "vpec_lr"):
         assert f"{p}_{c}" in names, c
     assert np.isfinite(product.column(f"{p}_mu").to_numpy(zero_copy_only=False)).sum() > 0
-    # no job of the absent method ran
-    assert not (run / "shards" / OTHER[method]).exists()
+    # no job of an absent method ran
+    assert not any((run / "shards" / other).exists() for other in OTHERS[method])
     assert len(list((run / "shards" / method).glob("*/part-*.parquet"))) == 3
 
 
@@ -113,13 +116,15 @@ def test_summary_has_the_one_method_and_no_pairs(single_run):
     assert s["n_used"] > 10 and np.isfinite(s["wmean"]) and s["h0_implied"] > 0
     outliers = flags.has(product.column(f"{p}_flags").to_numpy(), flags.Method.OUTLIER)
     assert summary["flag_counts"][f"{p}_flags"]["OUTLIER"] == int(outliers.sum()) == s["n_outliers"]
-    assert f"{PREFIX[OTHER[method]]}_flags" not in summary["flag_counts"]
+    assert not any(f"{PREFIX[other]}_flags" in summary["flag_counts"] for other in OTHERS[method])
     assert list(summary["calibrations"]) == [method]
 
 
 def test_plots_are_those_of_the_method(single_run):
     method, run, _ = single_run
-    expected = {"hubble_diagram", f"{PREFIX[method]}_relation", "dmu_histograms", "vpec_sky"}
+    # no method-against-method plot: there is no second method
+    expected = {"hubble_diagram", f"{PREFIX[method]}_relation", "dmu_histograms", "dmu_cz", "dmu_predictor",
+                "vpec_sky"}
     pngs = list((run / "plots").iterdir())
     assert {p.name for p in pngs} == {f"{n}.png" for n in expected}
     for png in pngs:

@@ -49,7 +49,8 @@ def test_every_row_in_every_product(demo_run):
 
 def test_zero_point_consistent_with_zero(demo_run):
     stats = json.loads((demo_run / "results" / "demo" / "summary.json").read_text())["statistics"]
-    for method in ("tf", "sbf"):
+    assert set(stats["methods"]) == {"tf", "sbf", "fp"}  # the demo's config runs every method
+    for method in ("tf", "sbf", "fp"):
         s = stats["methods"][method]
         assert s["n_used"] > 100, method
         assert abs(s["wmean"]) < 3 * s["wmean_err"], (method, s["wmean"], s["wmean_err"])
@@ -149,8 +150,16 @@ def test_interpolated_values_match_their_direct_computation(demo_run):
 
 def test_plots_and_report(demo_run):
     plots = demo_run / "results" / "demo" / "plots"
-    for name in ("hubble_diagram", "tf_relation", "sbf_relation", "dmu_histograms", "vpec_sky"):
+    names = ["hubble_diagram", "tf_relation", "sbf_relation", "fp_relation", "dmu_histograms", "dmu_cz",
+             "dmu_predictor", "method_comparison", "vpec_sky"]
+    assert sorted(p.stem for p in plots.glob("*.png")) == sorted(names)
+    for name in names:
         assert (plots / f"{name}.png").stat().st_size > 10_000, name
+    # the run's own report shows every plot with its caption
+    page = (demo_run / "results" / "demo" / "report.html").read_text()
+    for name in names:
+        assert f"<figure id='{name}'>" in page, name
+    assert "Fundamental Plane seen edge-on" in page and "selection (Malmquist-type) bias" in page
     result = run_snakemake(demo_run, *DEMO, "--report", "report.html")
     assert result.returncode == 0, result.stderr[-3000:]
     html = (demo_run / "report.html").read_text(errors="replace")
@@ -187,6 +196,7 @@ def _jobs(dry_run_output: str) -> dict:
     ("tully_fisher", "tully_fisher={calibration: tf_ks_masters_2008, band: Ks}"),
     ("tully_fisher", "tully_fisher={min_inclination_deg: 50}"),
     ("sbf", "sbf={calibration: sbf_tonry1997_cousins_i, mc_draws: 20}"),
+    ("fp", "fp={mc_draws: 20}"),
 ])
 def test_calibration_change_reruns_only_that_method(demo_run, method, override):
     result = run_snakemake(demo_run, *DEMO, override, "-n")

@@ -14,7 +14,8 @@ with logged(snakemake.log[0], "plots") as log:
     if sorted(outputs) != sorted(plots.plot_names(prefixes)):
         raise ValueError(f"plots rule outputs {sorted(outputs)} are not the plots of methods {prefixes}: "
                          f"{plots.plot_names(prefixes)}")
+    sections = {methods.REGISTRY[m].prefix: section for m, section in snakemake.params.sections.items()}
     for name, path in outputs.items():
         n = plots.draw(name, df, path, grid, methods=prefixes, calibrations=cals,
-                       min_cz=snakemake.params.min_cz)
+                       min_cz=snakemake.params.min_cz, bands=snakemake.params.bands, sections=sections)
         log.info("%s: %d galaxies drawn", name, n)

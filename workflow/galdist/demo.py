@@ -4,6 +4,14 @@ Invented data, for the demo and the benchmark only: never a check value for
 science tests. Galaxies get a true cosmological redshift and distance, a
 peculiar velocity, and observables generated forward through the corrections the
 pipeline undoes.
+
+Discs carry HI (Tully-Fisher); early types carry SBF and Fundamental-Plane inputs,
+and a few lenticulars HI as well, so every pair of methods has galaxies in common.
+Every early type gets FP inputs (where the config has the FP band): a velocity
+dispersion from the survey's own spectrum and R_e and <mu_e> from its imaging are all
+the FP needs, which is why real FP samples are many times larger than SBF samples and
+reach farther; giving FP to all of them also keeps the demo's FP zero point tested
+on as many galaxies as SBF's.
 """
 
 from __future__ import annotations
@@ -18,6 +26,13 @@ from .io import write_parquet
 
 C_KMS = 299792.458
 SURVEY_PREFIX = "CRS"
+#: the Fundamental-Plane columns of the demo's early types
+FP_COLUMNS = ("fp_sigma", "fp_sigma_err", "fp_aperture_arcsec", "fp_re_arcsec", "fp_re_err", "fp_mu_e",
+              "fp_mu_e_err")
+#: the demo survey's spectra: fibres 3 arcsec across (invented survey), so r_ap = 1.5 arcsec
+FP_APERTURE_ARCSEC = 1.5
+#: in-plane margin (dex) kept from the ends of the calibrated ranges of s and i (see ``_plane_sample``)
+FP_RANGE_MARGIN = 0.08
 
 
 @dataclass(frozen=True)
@@ -72,7 +87,7 @@ def make_catalog(n: int, seed: int, settings: DemoSettings | None = None, first_
     for b in settings.config["bands"]:
         order += [f"mag_{b}", f"mag_{b}_err"]
     order += ["w50", "w50_err", "axis_ratio", "axis_ratio_err", "hi_flux",
-              "sbf_mag", "sbf_mag_err", "sbf_color", "sbf_color_err", "galaxy_class"]
+              "sbf_mag", "sbf_mag_err", "sbf_color", "sbf_color_err", *FP_COLUMNS, "galaxy_class"]
     return pa.table({k: cols[k] for k in order if k in cols})
 
 
@@ -198,7 +213,113 @@ def _observe(rng, ra, dec, z_cos, v_pec, is_disc, conf):
     cols["sbf_mag_err"] = np.where(is_disc, np.nan, m_err)
     cols["sbf_color"] = np.where(is_disc, np.nan, sbf_color + rng.normal(0.0, 1.0, n) * c_err)
     cols["sbf_color_err"] = np.where(is_disc, np.nan, c_err)
+    # FP for every early type (see make_catalog), where the config has the FP band
+    if conf["fp"]["band"] in bands:
+        _, a_fp = calibration_and_extinction(conf["fp"])
+        fp_cols, _ = _fundamental_plane(rng, n, conf, z_helio, mu, a_fp[conf["fp"]["band"]], k[conf["fp"]["band"]])
+        for name, values in fp_cols.items():
+            cols[name] = np.where(is_disc, np.nan, values)
     return cols
+
+
+def _plane_sample(rng, n, cal, terms):
+    """True (r, s, i) of ``n`` early types on the calibration's plane.
+
+    With the calibration's 3-D Gaussian (Magoulas et al. 2012; ``galdist.fp``): the
+    position in the plane from its two in-plane axes v2, v3, kept (redrawn) while
+    that position lies within the calibrated ranges of s and i less
+    ``FP_RANGE_MARGIN``, then the offset from the plane along its normal v1. The cut
+    is on the in-plane position only, which is independent of the offset from the
+    plane: a cut on s or i themselves (which carry part of that offset) would select
+    on it and bias the plane estimator (about +0.04 mag in mu for a cut at the
+    Gaussian's 1.1 sigma in s, by a first-order calculation). Without a Gaussian: s
+    and i uniform within the ranges (less the margin), r = the plane + the
+    calibration's scatter in r.
+    """
+    from .fp import plane_axes, plane_log_radius
+
+    lo, hi = cal.valid_range
+    i_lo, i_hi = terms.log_ie_range or (terms.pivot_log_ie - 0.5, terms.pivot_log_ie + 0.5)
+    m = FP_RANGE_MARGIN
+    g = terms.gaussian
+    if g is None:
+        s = rng.uniform(lo + m, hi - m, n)
+        i = rng.uniform(i_lo + m, i_hi - m, n)
+        return plane_log_radius(cal, terms, s, i) + rng.normal(0.0, cal.scatter, n), s, i
+    a, b = cal.coefficients[0], cal.coefficients[1]
+    v1, v2, v3 = plane_axes(a, b)
+    centre = np.array([float(plane_log_radius(cal, terms, g.mean_log_sigma, g.mean_log_ie)),
+                       g.mean_log_sigma, g.mean_log_ie])
+    inplane = np.empty((n, 3))
+    todo = np.arange(n)
+    for _ in range(200):  # rejection: the ranges hold most of the Gaussian, few rounds
+        x = (centre + rng.normal(0.0, g.sigmas[1], (todo.size, 1)) * v2
+             + rng.normal(0.0, g.sigmas[2], (todo.size, 1)) * v3)
+        ok = (x[:, 1] >= lo + m) & (x[:, 1] <= hi - m) & (x[:, 2] >= i_lo + m) & (x[:, 2] <= i_hi - m)
+        inplane[todo[ok]] = x[ok]
+        todo = todo[~ok]
+        if not todo.size:
+            break
+    else:
+        raise ValueError(f"calibration {cal.name}: its 3-D Gaussian hardly meets its calibrated ranges")
+    x = inplane + rng.normal(0.0, g.sigmas[0], (n, 1)) * v1
+    return x[:, 0], x[:, 1], x[:, 2]
+
+
+def _fundamental_plane(rng, n, conf, z_helio, mu, a_gal, k_corr, noise: bool = True):
+    """Observed FP inputs of galaxies on the configured FP calibration's plane.
+
+    Forward through every step ``galdist.fp`` undoes, in reverse: the physical radius
+    (kpc at the calibration's H0, rescaled to the run's) at the angular-diameter
+    distance of the true distance, D_A = D_L / (1 + z_helio)^2 (the reciprocity
+    ``fp`` applies with the observed redshift), so fp_mu is the true mu as TF and SBF
+    see it; <mu_e> from i with the calibration's M_sun, plus the Tolman dimming,
+    Galactic extinction and K, onto the band's photometric system; sigma in the
+    demo's fibre from sigma_0 by the aperture correction; then measurement errors.
+    Steps the config switches off are not applied here either. ``noise=False``
+    leaves the measurement errors out (the values stay exact, the errors are quoted).
+    Returns (catalog columns, the true {"r", "s", "i"}).
+    """
+    from . import fp
+    from .calibration import load_calibration
+    from .methods import FUNDAMENTAL_PLANE
+
+    section = conf["fp"]
+    cal = load_calibration(section["calibration"])
+    terms = fp.check_calibration(cal)
+    derived = FUNDAMENTAL_PLANE.derive(conf, cal)
+    r, s, i = _plane_sample(rng, n, cal, terms)
+    # the size: r is log10 R_e in kpc at the calibration's H0; at the run's H0, r - h
+    h = 0.0 if terms.hubble_constant is None else np.log10(derived["hubble_constant"] / terms.hubble_constant)
+    log_da = 0.2 * mu - 5.0 - 2.0 * np.log10(1.0 + z_helio)                      # Mpc
+    theta = 10.0 ** (r - h - log_da - 3.0) * fp.ARCSEC_PER_RAD                    # arcsec
+    mu_0 = terms.abs_mag_sun + fp.SB_ZERO_POINT - 2.5 * i
+    mu_obs = mu_0
+    if section.get("apply_dimming", True):
+        mu_obs = mu_obs + fp.surface_brightness_dimming(z_helio)
+    if section.get("apply_galactic_extinction", True):
+        mu_obs = mu_obs + a_gal
+    if section.get("apply_kcorrection", True):
+        mu_obs = mu_obs + k_corr
+    mu_e = mu_obs - derived["mag_offset"]
+    sigma_0 = 10.0 ** s
+    aperture = np.full(n, FP_APERTURE_ARCSEC)
+    if section.get("apply_aperture_correction", True):
+        # sigma_0 = sigma_ap (r_ap / (f R_e))^alpha, so sigma_ap = sigma_0 / that factor
+        sigma_ap = sigma_0 / fp.aperture_corrected_sigma(1.0, aperture, theta, terms.aperture_exponent,
+                                                         terms.aperture_fraction)
+    else:
+        sigma_ap = sigma_0
+    sigma_err = sigma_ap * rng.uniform(0.03, 0.07, n)
+    re_err = theta * rng.uniform(0.03, 0.08, n)
+    mu_e_err = rng.uniform(0.03, 0.06, n)
+    scale = 1.0 if noise else 0.0
+    return {
+        "fp_sigma": sigma_ap + scale * rng.normal(0.0, 1.0, n) * sigma_err, "fp_sigma_err": sigma_err,
+        "fp_aperture_arcsec": aperture,
+        "fp_re_arcsec": theta + scale * rng.normal(0.0, 1.0, n) * re_err, "fp_re_err": re_err,
+        "fp_mu_e": mu_e + scale * rng.normal(0.0, 1.0, n) * mu_e_err, "fp_mu_e_err": mu_e_err,
+    }, {"r": r, "s": s, "i": i}
 
 
 def _sprinkle_bad_rows(rng, cols, settings):
@@ -211,10 +332,13 @@ def _sprinkle_bad_rows(rng, cols, settings):
         (f"mag_{band}", np.inf), (f"mag_{band}_err", -0.1), ("w50", -50.0), ("w50", 0.0),
         ("axis_ratio", 1.3), ("axis_ratio_err", np.nan), ("sbf_mag", np.nan), ("sbf_color", 9.0),
         ("sbf_mag_err", -0.2), ("ebv", -0.05), ("hi_flux", -1.0),
+        ("fp_sigma", -30.0), ("fp_re_arcsec", 0.0), ("fp_mu_e_err", -0.1),
     ]
     idx = rng.permutation(n)
     k = 0
     for name, value in kinds:
+        if name not in cols:  # a method the run's config leaves out
+            continue
         rows = idx[k:k + n_bad]
         k += n_bad
         cols[name][rows] = value

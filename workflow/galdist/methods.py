@@ -84,14 +84,25 @@ def _flags(stage: str, column: str) -> Input:
 
 @dataclass(frozen=True)
 class RelationPlot:
-    """The calibration-relation plot of a method: product column ``y`` - mu_z against
-    ``x`` (both without the prefix), with the calibration's curve. ``xlabel`` may name
-    ``{colour}``, the calibration's colour bands joined by '-'."""
+    """The calibration-relation plot of a method, in one of two views.
+
+    ``absolute``: product column ``y`` minus mu_z (the absolute magnitude the redshift
+    distance implies) against ``x``, with the calibration's curve, brighter up.
+    ``identity``: ``y`` against ``x``, two estimates of one quantity (the Fundamental
+    Plane edge-on: the size at the redshift distance against the plane's prediction),
+    with the 1:1 line. Both draw the calibration's scatter (in ``scatter_unit``) as a
+    band. ``x`` (without the prefix) is also the predictor of the dmu-against-predictor
+    plot. Labels may name ``{colour}`` (the calibration's colour bands joined by '-')
+    and ``{band}`` (the run's band of the method: label, filter curve, and the
+    calibration's passband where it differs)."""
 
     x: str
     y: str
     xlabel: str
     title: str
+    ylabel: str = "absolute magnitude in {band}, from $\\mu_z$ (mag)"
+    view: str = "absolute"
+    scatter_unit: str = "mag"
 
 
 @dataclass(frozen=True)
@@ -102,6 +113,7 @@ class MethodSpec:
     prefix: str  # of every column it writes
     title: str  # for people: logs, plots
     colour: str  # matplotlib colour of its points
+    marker: str  # matplotlib marker of its points (filled: usable; hollow: flagged)
     module: str  # galdist.<module> holds the science
     function: str  # the distance function in the module
     settings: str  # its settings class (``galdist.settings.MethodSettings``-like: ``from_config``)
@@ -285,12 +297,15 @@ def shard_distances(method: str, files: Mapping[str, str], config: Mapping, cali
 
 def plot_names(method_prefixes) -> list[str]:
     """The plots of a run whose methods have these prefixes: the Hubble diagram, the
-    relation plot of each method that has one, the dmu histograms and the sky map (a panel
-    per method); none when no method ran (every plot would be empty)."""
+    relation plot of each method that has one, the dmu histograms, dmu against cz and
+    against each method's predictor, the method-against-method plot (two methods or
+    more) and the sky map (a panel per method or pair); none when no method ran (every
+    plot would be empty)."""
     if not method_prefixes:
         return []
     relations = [f"{p}_relation" for p in method_prefixes if (s := by_prefix(p)) and s.relation_plot]
-    return ["hubble_diagram", *relations, "dmu_histograms", "vpec_sky"]
+    pairs = ["method_comparison"] if len(method_prefixes) > 1 else []
+    return ["hubble_diagram", *relations, "dmu_histograms", "dmu_cz", "dmu_predictor", *pairs, "vpec_sky"]
 
 
 def by_prefix(prefix: str) -> MethodSpec | None:
@@ -322,7 +337,7 @@ def _sbf_derive(config, calibration) -> dict:
 
 
 TULLY_FISHER = MethodSpec(
-    name="tully_fisher", prefix="tf", title="Tully–Fisher", colour="tab:blue",
+    name="tully_fisher", prefix="tf", title="Tully–Fisher", colour="tab:blue", marker="o",
     module="tully_fisher", function="tully_fisher_distance", settings="TFSettings", setup_check="check_setup",
     forms=("luminosity", "inverse", "baryonic"),
     # bounds of a usable value (common practice unless a source is named; the flag texts in
@@ -372,7 +387,7 @@ TULLY_FISHER = MethodSpec(
 )
 
 SBF = MethodSpec(
-    name="sbf", prefix="sbf", title="SBF", colour="tab:red",
+    name="sbf", prefix="sbf", title="SBF", colour="tab:red", marker="s",
     module="sbf", function="sbf_distance", settings="SBFSettings", setup_check="check_setup",
     forms=("colour_polynomial",),
     catalog_columns=(
@@ -435,7 +450,7 @@ def _optional(name, unit, meaning, valid):
 
 
 FUNDAMENTAL_PLANE = MethodSpec(
-    name="fp", prefix="fp", title="Fundamental Plane", colour="tab:green",
+    name="fp", prefix="fp", title="Fundamental Plane", colour="tab:green", marker="^",
     module="fp", function="fp_distance", settings="FPSettings", setup_check=_fp_setup,
     forms=("plane",),
     # bounds as galdist.fp.PHYSICAL_BOUNDS (generous: impossible, not merely uncalibrated)
@@ -500,6 +515,11 @@ FUNDAMENTAL_PLANE = MethodSpec(
         "eta_post_mode": "mode of the posterior of eta (estimator gaussian)",
     },
     derive=_fp_derive, uses=("redshift",),
+    relation_plot=RelationPlot("log_re_pred", "log_re_z",
+                               r"$\log_{10} R_e$ predicted by the plane from $\sigma_0$ and $\langle I_e\rangle$ "
+                               "(kpc at the calibration's $H_0$)", "Fundamental Plane, edge-on",
+                               ylabel=r"$\log_{10} R_e$ at the redshift distance (kpc at the calibration's $H_0$)",
+                               view="identity", scatter_unit="dex"),
 )
 
 #: Every distance method, by config name, in the order of the product's columns.

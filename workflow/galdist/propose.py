@@ -47,10 +47,21 @@ ALIASES = {
     "w50_resolution": ["w50_resolution", "resolution", "vres", "v_res", "velocity_resolution", "dv_res"],
     "galaxy_class": ["galaxy_class", "class", "morph", "morphology", "type", "mtype", "morph_type",
                      "hubble_type", "gal_type", "galtype"],
+    # Fundamental Plane: dispersion, effective radius, mean surface brightness within it, aperture
+    "fp_sigma": ["fp_sigma", "sigma", "sigma0", "sigma_0", "sigma_ap", "vdisp", "veldisp", "vel_disp",
+                 "velocity_dispersion", "vel_dispersion", "disp"],
+    "fp_re_arcsec": ["fp_re_arcsec", "re", "r_e", "reff", "r_eff", "re_arcsec", "r_e_arcsec", "half_light_radius",
+                     "r_half", "rhalf"],
+    "fp_mu_e": ["fp_mu_e", "mu_e", "mue", "mean_mu_e", "mu_e_mean", "sb_e", "sbe", "mean_sb_e"],
+    "fp_mag": ["fp_mag"],
+    "fp_aperture_arcsec": ["fp_aperture_arcsec", "aperture", "aperture_arcsec", "r_ap", "rap", "r_aperture",
+                           "aperture_radius", "fibre_radius", "fiber_radius"],
+    **{c: [c] for c in ("fp_re_mu_corr", "fp_re_mag_corr", "fp_sigma_re_corr", "fp_sigma_mu_corr")},
 }
 #: canonical columns that have an error column, and its name
 ERROR_OF = {"z_helio": "z_helio_err", "ebv": "ebv_err", "w50": "w50_err", "w20": "w20_err",
-            "axis_ratio": "axis_ratio_err", "sbf_mag": "sbf_mag_err", "sbf_color": "sbf_color_err"}
+            "axis_ratio": "axis_ratio_err", "sbf_mag": "sbf_mag_err", "sbf_color": "sbf_color_err",
+            "fp_sigma": "fp_sigma_err", "fp_re_arcsec": "fp_re_err", "fp_mu_e": "fp_mu_e_err", "fp_mag": "fp_mag_err"}
 TEXT_ROLES = ("galaxy_id", "galaxy_class")
 
 #: a band letter as written in a column name -> band label (case matters: i is SDSS, I Cousins)
@@ -73,6 +84,8 @@ BANDS = {
 TF_CALIBRATIONS = {"I": "tf_i_tully_courtois_2012", "Ks": "tf_ks_masters_2008"}
 #: SBF (band, blue, red) -> shipped calibration
 SBF_CALIBRATIONS = {("I", "V", "I"): "sbf_tonry1997_cousins_i"}
+#: Fundamental-Plane band -> shipped calibration
+FP_CALIBRATIONS = {"J": "fp_j_magoulas_2012", "r": "fp_r_bernardi_2003"}
 KCORR_PAIRS = [("V", "I"), ("g", "r"), ("g", "i"), ("r", "i"), ("V", "R"), ("g", "z"), ("R", "I"), ("J", "Ks")]
 
 _BAND = r"(?P<b>Ks|KS|ks|[ugrizGZUBVRIbvJHKjhk])"
@@ -81,6 +94,7 @@ _MAG_PATTERNS = [re.compile(rf"^(?i:mag)[_\-. ]?{_BAND}$"), re.compile(rf"^{_BAN
 _COLOUR = re.compile(r"^(?:(?i:sbf|col|color|colour)[_\-. ]?)?(?P<a>[UBVRIugrizbvJHK])\s*[_\-−]\s*"
                      r"(?P<c>[UBVRIugrizJHK]|Ks)$")
 _SBF_BAND = re.compile(r"^(?i:m_?bar|sbf(?:_?mag)?)[_\-. ]?(?P<b>[UBVRIugrizJHK]|Ks)$")
+_FP_SB_BAND = re.compile(r"^(?i:mu_?e|sb_?e|mean_?mu_?e)[_\-. ]?(?P<b>[UBVRIugrizJHK]|Ks)$")
 _ERR_PREFIX = re.compile(r"^(?:(?i:e|err|error|sigma|sig|unc)[_\-. ]+|e(?=[A-Z]))")
 _ERR_SUFFIX = re.compile(r"(?:[_\-. ]?(?i:err|error)|[_\-. ](?i:e|sigma|sig|unc))$")
 _LOG = re.compile(r"^(?:log|lg)", re.I)
@@ -97,7 +111,7 @@ class Match:
     rank: int  # lower is a more usual spelling
     why: str
     colour: tuple[str, str] | None = None
-    sbf_band: str | None = None
+    sbf_band: str | None = None  # also the band of a mean surface brightness (fp_mu_e)
 
 
 def _band(token: str) -> str | None:
@@ -121,6 +135,10 @@ def match_name(name: str) -> Match | None:
     m = _SBF_BAND.match(name.strip())
     if m and _band(m["b"]):
         return Match("sbf_mag", 5, f"'{name}' reads as a fluctuation magnitude in {_band(m['b'])}",
+                     sbf_band=_band(m["b"]))
+    m = _FP_SB_BAND.match(name.strip())
+    if m and _band(m["b"]):
+        return Match("fp_mu_e", 5, f"'{name}' reads as the mean surface brightness within R_e in {_band(m['b'])}",
                      sbf_band=_band(m["b"]))
     m = _COLOUR.match(name.strip())
     if m and _band(m["a"]) and _band(m["c"]) and (m["a"], m["c"]) != ("b", "a"):
@@ -360,20 +378,26 @@ def propose(catalog: str, run: str | None = None, output_dir: str = "galdist-res
     # 4. methods
     has_tf = all(r in chosen for r in ("w50", "axis_ratio")) and bool(mags)
     has_sbf = all(r in chosen for r in ("sbf_mag", "sbf_color"))
-    p.methods = [m for m, ok in (("tully_fisher", has_tf), ("sbf", has_sbf)) if ok]
+    has_fp = all(r in chosen for r in ("fp_sigma", "fp_re_arcsec")) and ("fp_mu_e" in chosen or "fp_mag" in chosen)
+    p.methods = [m for m, ok in (("tully_fisher", has_tf), ("sbf", has_sbf), ("fp", has_fp)) if ok]
     why = []
     why.append("tully_fisher: width, axis ratio and a magnitude found" if has_tf
                else "no tully_fisher: needs a width, an axis ratio and a magnitude")
     why.append("sbf: fluctuation magnitude and colour found" if has_sbf
                else "no sbf: needs a fluctuation magnitude and its colour")
+    why.append("fp: velocity dispersion, effective radius and surface brightness found" if has_fp
+               else "no fp: needs a velocity dispersion, an effective radius and <mu_e> (or a total magnitude)")
     p.methods_why = "; ".join(why)
     if has_tf:
         _tully_fisher(p, mags, chosen)
     if has_sbf:
         _sbf(p, chosen)
+    if has_fp:
+        _fundamental_plane(p, chosen)
     if not p.methods:
         p.todo.append("the catalog feeds no distance method (Tully-Fisher needs w50, axis_ratio and a magnitude; "
-                      "SBF needs sbf_mag and sbf_color): map the columns in 'columns' and list the methods")
+                      "SBF needs sbf_mag and sbf_color; the Fundamental Plane needs fp_sigma, fp_re_arcsec and "
+                      "fp_mu_e): map the columns in 'columns' and list the methods")
 
     # 5. K-correction colour and extinction
     with_errors = [b for b in mags if f"mag_{b}_err" in chosen
@@ -409,6 +433,8 @@ def propose(catalog: str, run: str | None = None, output_dir: str = "galdist-res
         needed += ["w50_err", "axis_ratio_err"]
     if has_sbf:
         needed += ["sbf_mag_err", "sbf_color_err"]
+    if has_fp:
+        needed += ["fp_sigma_err", "fp_re_err", "fp_mu_e_err" if "fp_mu_e" in chosen else "fp_mag_err"]
     for role in needed:
         if role not in chosen:
             p.todo.append(f"no column found for {role}: map yours in 'columns' (galdist needs it)")
@@ -496,6 +522,29 @@ def _sbf(p: Proposal, chosen: dict) -> None:
                          ("color_bands", [blue, red], colour_why)]
 
 
+def _fundamental_plane(p: Proposal, chosen: dict) -> None:
+    sb = chosen.get("fp_mu_e")
+    band = sb[1].sbf_band if sb and sb[1].sbf_band else None
+    band_why = (f"band in the name '{sb[0]}'" if band
+                else "the surface-brightness column does not name its band: J assumed (check it)")
+    band = band or "J"
+    _add_band(p, band, "filter curve for the Fundamental Plane (no magnitude column needed)")
+    cal = FP_CALIBRATIONS.get(band)
+    if cal:
+        assert cal in shipped.names("calibrations"), cal
+        cal_why = f"shipped Fundamental-Plane calibration in {BANDS[band][3]} {band}"
+    else:
+        cal = "my_fp_calibration.yaml"
+        cal_why = (f"TODO: no shipped Fundamental-Plane calibration is in band {band} (shipped: 2MASS J, SDSS r): "
+                   "write your own and give its path")
+        p.todo.append(f"fp.calibration: no shipped calibration fits band {band}; supply your own")
+    p.sections["fp"] = [("calibration", cal, cal_why), ("band", band, band_why)]
+    if "fp_aperture_arcsec" not in chosen:
+        p.todo.append("no spectroscopic aperture column found (fp_aperture_arcsec, the radius in arcsec, e.g. half "
+                      "a fibre's diameter): map it, or set fp.apply_aperture_correction: false if your "
+                      "dispersions are already corrected to R_e/8")
+
+
 # --- writing ----------------------------------------------------------------------------
 
 _PLAIN = re.compile(r"^[A-Za-z_][A-Za-z0-9_.\-/]*$")
@@ -571,9 +620,9 @@ def render(p: Proposal) -> str:
     else:
         out += ["bands: {}  # TODO: no magnitude column recognised; add at least one band"]
     out += ["", _line(0, "methods", p.methods, p.methods_why)]
-    for section in ("tully_fisher", "sbf", "kcorr", "extinction"):
+    for section in ("tully_fisher", "sbf", "fp", "kcorr", "extinction"):
         items = p.sections.get(section)
-        if not items or (section in ("tully_fisher", "sbf") and section not in p.methods):
+        if not items or (section in ("tully_fisher", "sbf", "fp") and section not in p.methods):
             continue
         out += ["", f"{section}:"]
         out += [_line(2, k, v, why) for k, v, why in items]

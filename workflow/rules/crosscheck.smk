@@ -75,6 +75,9 @@ rule plots:
         calibrations=CALIBRATION_FILES,
         content=CALIBRATION_DIGESTS,
         min_cz=config["redshift"]["min_cz_kms"],
+        # the user's band of each method, named in the axis labels
+        bands=config["bands"],
+        sections={m: config[m] for m in METHODS},
     log:
         f"{LOGS}/plots.log",
     benchmark:
