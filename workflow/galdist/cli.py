@@ -333,7 +333,9 @@ def cmd_run(args) -> int:
     for name, what in (("distances.parquet", "one row per input galaxy"),
                        ("summary.json", f"counts and statistics (galdist summary {shown})"),
                        ("COLUMNS.md", "what each column means: unit, description, flag bits"),
-                       ("plots/", "Hubble diagram, relations, histograms, sky"),
+                       ("report.html", "the run report: open it first"),
+                       ("plots/", "Hubble diagram, each method's relation, dmu against cz and predictor, "
+                                  "histograms, methods compared, sky"),
                        ("calibrate/", "the fitted calibration file and its fit report (--target calibrate)"),
                        (f"logs/{RUN_LOG}", "the full Snakemake log")):
         if (run_dir / name.rstrip("/")).exists():
