@@ -1,14 +1,15 @@
 """Rule script: the diagnostic plots of the configured methods, from the product's plotting subsample."""
 import pyarrow.parquet as pq
 
-from galdist import calibration, methods, plots, redshift
+from galdist import calibration, conventions, methods, plots, redshift
 from galdist.logs import logged
 
 with logged(snakemake.log[0], "plots") as log:
     df = pq.read_table(snakemake.input.sample).to_pandas()
-    cals = {methods.REGISTRY[m].prefix: calibration.load_calibration(p)
-            for m, p in snakemake.params.calibrations.items()}
     grid = redshift.MuGrid.load(snakemake.input.grid)
+    # each calibration as the methods applied it: an H0-scaled zero point at the run's H0
+    cals = {methods.REGISTRY[m].prefix: conventions.at_run_h0(calibration.load_calibration(p), grid.h0)
+            for m, p in snakemake.params.calibrations.items()}
     prefixes = methods.prefixes(snakemake.params.methods)
     outputs = dict(snakemake.output.items())
     if sorted(outputs) != sorted(plots.plot_names(prefixes)):
