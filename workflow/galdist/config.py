@@ -257,6 +257,10 @@ def check_stages(config: dict) -> dict:
             problems.append(f"config key '{key}': '{label}' is not a configured band "
                             f"(bands: {', '.join(sorted(bands))})")
 
+    reference = config.get("zero_point", {}).get("reference", "auto")
+    if reference != "auto" and reference not in config["methods"]:
+        problems.append(f"config key 'zero_point.reference': '{reference}' is not a configured method "
+                        f"(methods: {', '.join(config['methods'])}); name one of them or 'auto'")
     ext = config["extinction"]
     if ext["source"] == "healpix" and not ext["map_file"]:
         problems.append("config key 'extinction.map_file': needed when extinction.source is healpix")

@@ -23,6 +23,7 @@ import numpy as np
 import pyarrow as pa
 
 from . import crosscheck
+from .groups import GROUP_COLUMNS
 from . import flags as F
 from .io import AtomicParquetWriter, iter_shard, table_from_columns, write_parquet
 from .methods import REGISTRY
@@ -32,10 +33,10 @@ log = logging.getLogger(__name__)
 #: config name -> column prefix of every registered method
 METHOD_PREFIX = {name: spec.prefix for name, spec in REGISTRY.items()}
 FLAG_COLUMNS = tuple(F.ALL)
-LEADING = ["galaxy_id", "ra", "dec", "gal_l", "gal_b", "galaxy_class", *FLAG_COLUMNS,
+LEADING = ["galaxy_id", "ra", "dec", "gal_l", "gal_b", "galaxy_class", "group_id", *FLAG_COLUMNS,
            "z_helio", "z_helio_err", "z_cmb", "z_cmb_err", "cz_cmb_kms", "mu_z", "mu_z_err", "d_z_mpc",
            "ebv", "ebv_err", "ebv_used", "ebv_used_err"]
-TRAILING = ["mu_best", "mu_best_err", "mu_best_err_sys", "best_method"]
+TRAILING = ["mu_best", "mu_best_err", "mu_best_err_sys", "best_method", *GROUP_COLUMNS]
 #: The columns the assembly derives (the cross-check's per galaxy, and its own), for the
 #: column dictionary (galdist.dictionary): per method ("{title}", "{prefix}" filled in) and
 #: per row. Each is (unit, description[, storage type]).
@@ -58,10 +59,12 @@ DERIVED_COLUMNS = {
                        "float64"),
         "mu_best": ("mag", "inverse-variance mean of the usable methods' mu (a method is usable where mu and "
                            "mu_err are finite and it has no flag besides LOCAL_FLOW and OUTLIER, "
-                           "crosscheck.BEST_IGNORE_FLAGS)", "float64"),
+                           "crosscheck.BEST_IGNORE_FLAGS), each less its zero-point offset where "
+                           "zero_point.apply is true", "float64"),
         "mu_best_err": ("mag", "random error of mu_best, 1 / sqrt(sum of the weights 1 / mu_err^2)", "float64"),
         "mu_best_err_sys": ("mag", "systematic error of mu_best: the methods' mu_err_sys combined with the same "
-                                   "weights, the calibrations independent of each other", "float64"),
+                                   "weights, the calibrations independent of each other, and the zero-point "
+                                   "offsets' errors where applied", "float64"),
         "best_method": ("", f"prefixes of the methods mu_best combines, joined by '+' (e.g. tf+sbf); "
                             f"'{crosscheck.NO_METHOD}' where no method is usable", "string"),
     },
@@ -191,7 +194,7 @@ def longest_texts(paths) -> dict[str, int]:
 
 def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, methods: list[str],
              provenance_info: dict, *, min_cz: float, clip_sigma: float, plot_max_points: int,
-             total_rows: int, entries: dict) -> dict:
+             total_rows: int, entries: dict, zero_point: dict | None = None) -> dict:
     """Stream the shards into ``out_path``; returns flag counts, best-method counts and the
     product's dictionary entries in column order.
 
@@ -199,7 +202,8 @@ def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, 
     and each stage name to its narrow file. ``entries``: the run's column dictionary
     (``dictionary.by_name(dictionary.for_run(...))``); a column without an entry stops
     the assembly. Besides the provenance, the schema metadata holds the header astropy
-    reads (``dictionary.astropy_metadata``).
+    reads (``dictionary.astropy_metadata``). ``zero_point``: the run's zero-point tie
+    (``groups.fit_zero_points``), subtracted in mu_best where "applied".
     """
     from .redshift import C_KMS
 
@@ -218,7 +222,7 @@ def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, 
             rng = np.random.default_rng(index)
             for cols, units in iter_shard(files["shard"], stages):
                 cols |= crosscheck.galaxy_columns(cols, grid, statistics, methods=prefixes, min_cz=min_cz,
-                                                  clip_sigma=clip_sigma)
+                                                  clip_sigma=clip_sigma, zero_point=zero_point)
                 cols["cz_cmb_kms"] = C_KMS * np.asarray(cols["z_cmb"], dtype=float)
                 if writer is None:
                     used = ordered_entries(cols, entries)

@@ -84,6 +84,35 @@ def _pairs(stats: dict) -> str:
             "<th>median (mag)</th><th>scatter (mag)</th><th>χ²/ν</th></tr>" + rows + "</table>")
 
 
+def _zero_point(zp: dict | None) -> str:
+    """The zero-point tie between methods (summary.json "zero_point", galdist.groups)."""
+    if not zp or not zp.get("offsets"):
+        return "<p>Only one method ran: no zero-point tie.</p>"
+    ref = METHOD_NAMES.get(zp.get("reference"), zp.get("reference"))
+    rows = "".join(
+        f"<tr><td>{_e(METHOD_NAMES.get(p, p))}</td><td class='num'>"
+        f"{'reference' if p == zp.get('reference') else _pm(o.get('offset'), o.get('err'))}</td>"
+        f"<td class='num'>{_e(o.get('n_overlap', 0))}</td></tr>" for p, o in zp["offsets"].items())
+    applied = ("applied: mu_best and group_mu carry them, their errors in the systematic errors"
+               if zp.get("applied") else "not applied (config zero_point.apply)")
+    return (f"<p class='muted'>Offsets of each method's μ relative to {_e(ref)}, fitted by maximum likelihood "
+            f"(random errors only) on {_e(zp.get('n_overlap_objects', 0))} groups and galaxies measured by two or "
+            f"more methods ({_e(zp.get('n_overlap_galaxies', 0))} galaxies); {_e(applied)}.</p>"
+            "<table><tr><th>method</th><th>offset (mag)</th><th>objects in common</th></tr>" + rows + "</table>")
+
+
+def _groups(g: dict | None) -> str:
+    """Group counts (summary.json "groups")."""
+    if not g:
+        return "<p>No group statistics.</p>"
+    return (f"<table><tr><th>groups</th><td class='num'>{_e(g.get('n_groups'))} ({_e(g.get('n_catalog_groups'))} from "
+            f"group_id, {_e(g.get('n_singletons'))} of one member)</td></tr>"
+            f"<tr><th>with a distance</th><td class='num'>{_e(g.get('n_groups_measured'))}</td></tr>"
+            f"<tr><th>largest group</th><td class='num'>{_e(g.get('largest_group'))}</td></tr>"
+            f"<tr><th>members rejected as outliers</th><td class='num'>{_e(g.get('n_members_rejected'))} "
+            f"(at {_num(g.get('clip_sigma'), 'g')} σ; flagged group_rejected, kept)</td></tr></table>")
+
+
 def _flag_tables(flag_counts: dict) -> str:
     out = []
     for column, counts in flag_counts.items():
@@ -156,6 +185,10 @@ a positive offset means larger distances, hence a smaller implied H0.</p>
 {_method_cards(stats)}
 <h2>Methods compared</h2>
 {_pairs(stats)}
+<h2>Zero point tie between methods</h2>
+{_zero_point(summary.get('zero_point'))}
+<h2>Groups</h2>
+{_groups(summary.get('groups'))}
 {'<h2>Calibration fits</h2>' + _fits(fits) if fits else ''}
 <h2>Cautions: what these values are not good for</h2>
 {cautions}
