@@ -188,3 +188,13 @@ def test_end_to_end_with_group_catalog(tmp_path):
     assert summary["groups"]["n_groups"] == 200
     meta = pq.read_schema(run / "distances.parquet").field("group_mu").metadata
     assert meta[b"unit"] == b"mag"
+    # the eta likelihoods: row for row with the product, their summaries in it
+    lk = pq.read_table(run / "eta_likelihoods.parquet")
+    assert lk.column("galaxy_id").to_pylist() == list(product["galaxy_id"])
+    grid = json.loads(lk.schema.metadata[b"galdist.eta_grid"])
+    eta = np.linspace(grid["min"], grid["max"], grid["n"])
+    like = lk.column("tf_eta_like").combine_chunks().flatten().to_numpy().reshape(-1, grid["n"])
+    has = np.isfinite(product["tf_eta_mode"].to_numpy())
+    assert has.sum() > 50
+    np.testing.assert_allclose(eta[np.argmax(like[has], axis=1)], product["tf_eta_mode"].to_numpy()[has])
+    assert {"best_eta_like", "sbf_eta_like"} <= set(lk.column_names)

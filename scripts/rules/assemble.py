@@ -1,7 +1,7 @@
 """Rule script: stream every shard's stages into distances.parquet and write summary.json."""
 from pathlib import Path
 
-from galdist import calibration, conventions, dictionary, io, product, redshift
+from galdist import calibration, conventions, dictionary, io, likelihood, product, redshift
 from galdist.methods import REGISTRY
 from galdist.logs import logged
 
@@ -10,7 +10,7 @@ with logged(snakemake.log[0], "assemble") as log:
     stages = ["extinction", "kcorr", "redshift", *snakemake.params.methods]
     shards = [{"shard": s} | {st: inp[st][i] for st in stages} | {"groups": Path(inp.group_members) / Path(s).name}
               for i, s in enumerate(inp.shards)]
-    grouped = io.read_json(inp.groups)
+    grouped, lk = io.read_json(inp.groups), snakemake.params.likelihoods
     stats, ingest_summary = io.read_json(inp.statistics), io.read_json(inp.ingest_summary)
     cals = {m: calibration.load_calibration(p) for m, p in snakemake.params.calibrations.items()}
     for m, cal in cals.items():  # provenance must describe the calibration the distances came from
@@ -25,13 +25,18 @@ with logged(snakemake.log[0], "assemble") as log:
                               redshift.MuGrid.load(inp.grid), stats, snakemake.params.methods, info,
                               min_cz=min_cz, clip_sigma=cfg["clip_sigma"],
                               plot_max_points=cfg["plot_max_points"], total_rows=ingest_summary["rows_out"],
-                              entries=entries, zero_point=grouped["zero_point"])
+                              entries=entries, zero_point=grouped["zero_point"],
+                              likelihood_path=snakemake.output.likelihoods, eta_grid=likelihood.eta_grid(
+                                  lk["eta_min"], lk["eta_max"], lk["eta_step"]))
     if counts["rows"] != ingest_summary["rows_in"]:
         raise RuntimeError(f"row count changed: {ingest_summary['rows_in']} in, {counts['rows']} out")
     summary = {"rows_in": ingest_summary["rows_in"], "rows_out": counts["rows"],
                "methods": list(snakemake.params.methods),
                "flag_counts": counts["flag_counts"], "best_method": counts["best_method"],
                "statistics": stats, "groups": grouped["groups"], "zero_point": grouped["zero_point"],
+               "eta_likelihoods": {"file": Path(snakemake.output.likelihoods).name, "eta_min": lk["eta_min"],
+                                   "eta_max": lk["eta_max"], "eta_step": lk["eta_step"],
+                                   "bytes": Path(snakemake.output.likelihoods).stat().st_size},
                "cosmology": info["config"]["redshift"]["cosmology"],
                "calibrations": {m: c["reference"] for m, c in info["calibrations"].items()},
                "inputs": info["inputs"], "git_commit": info["git_commit"], "cautions": info["cautions"]}

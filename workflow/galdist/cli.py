@@ -429,6 +429,10 @@ def cmd_summary(args) -> int:
     if isinstance(cosmo, dict):
         name = cosmo.get("name") or f"flat LCDM, H0 {_num(cosmo.get('H0'), 'g')}, Om0 {_num(cosmo.get('Om0'), 'g')}"
         _say(f"  mu_z cosmology      {name} (a convention, not a measurement)")
+    lk = s.get("eta_likelihoods")
+    if isinstance(lk, dict):
+        _say(f"  eta likelihoods     {lk.get('file')}: {_num(lk.get('eta_min'), 'g')} to {_num(lk.get('eta_max'), 'g')} "
+             f"dex in {_num(lk.get('eta_step'), 'g')} dex, per method and for mu_best")
     methods = _get(s, "statistics", "methods")
     if not isinstance(methods, dict) or not methods:
         _say(f"  methods             {DASH} (no statistics in summary.json)")

@@ -84,6 +84,15 @@ def _pairs(stats: dict) -> str:
             "<th>median (mag)</th><th>scatter (mag)</th><th>χ²/ν</th></tr>" + rows + "</table>")
 
 
+def _eta(lk: dict | None) -> str:
+    """Where the per-galaxy η likelihoods are and on which grid (summary.json "eta_likelihoods")."""
+    if not lk:
+        return "–"
+    return (f"<code>{_e(lk.get('file'))}</code>: per method and for mu_best, η = log10(d_z/d) from "
+            f"{_num(lk.get('eta_min'), 'g')} to {_num(lk.get('eta_max'), 'g')} dex in {_num(lk.get('eta_step'), 'g')} "
+            f"dex ({_num((lk.get('bytes') or 0) / 2**20, '.1f')} MB)")
+
+
 def _zero_point(zp: dict | None) -> str:
     """The zero-point tie between methods (summary.json "zero_point", galdist.groups)."""
     if not zp or not zp.get("offsets"):
@@ -175,6 +184,7 @@ def render(run: str, summary: dict, provenance: dict, plots: list[tuple[str, Pat
 <tr><th>rows in / out</th><td class="num">{_e(summary.get('rows_in'))} / {_e(summary.get('rows_out'))}</td></tr>
 <tr><th>methods</th><td>{_e(', '.join(METHOD_NAMES.get(m, m) for m in stats.get('methods', {})) or 'none')}</td></tr>
 <tr><th>best distance per galaxy</th><td>{best}</td></tr>
+<tr><th>η likelihoods</th><td>{_eta(summary.get('eta_likelihoods'))}</td></tr>
 <tr><th>redshift distances</th><td>{_e(cosmo.get('name') or 'flat ΛCDM')} H0 = {_e(cosmo.get('H0'))}, Ωm = {_e(cosmo.get('Om0'))} (a convention for the comparison, not a claim)</td></tr>
 </table>
 <p>Catalog:</p><ul>{inputs}</ul>

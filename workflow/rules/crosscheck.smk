@@ -73,6 +73,7 @@ rule assemble:
         distances=update(f"{RUN}/distances.parquet"),
         summary=update(f"{RUN}/summary.json"),
         plot_sample=update(f"{RUN}/plot_sample.parquet"),
+        likelihoods=update(f"{RUN}/eta_likelihoods.parquet"),
         columns=update(f"{RUN}/COLUMNS.md"),
     params:
         crosscheck=config["crosscheck"],
@@ -80,6 +81,7 @@ rule assemble:
         methods=METHODS,
         calibrations=CALIBRATION_FILES,
         content=CALIBRATION_DIGESTS,
+        likelihoods=config["likelihoods"],
     log:
         f"{LOGS}/assemble.log",
     benchmark:
