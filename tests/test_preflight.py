@@ -209,3 +209,19 @@ def test_old_name_of_the_k_correction_section_names_the_new_one(tmp_path):
     path = write(small_catalog(20), tmp_path / "cat.parquet")
     (msg,) = errors(preflight.check({"catalog": path, "kcorrect": {"colour_pair": None}}), "config")
     assert "'kcorrect' is now 'kcorr'" in msg
+
+
+def test_zero_point_reference_must_be_a_configured_method(tmp_path):
+    path = write(small_catalog(20), tmp_path / "cat.parquet")
+    user = {"catalog": path, "methods": ["tully_fisher"], "zero_point": {"reference": "sbf"}}
+    (msg,) = errors(preflight.check(user), "calibrations and stages")
+    assert "zero_point.reference" in msg and "tully_fisher" in msg
+    user["zero_point"]["reference"] = "nonsense"
+    assert any("zero_point" in m for m in errors(preflight.check(user), "config"))
+
+
+def test_eta_grid_must_run_upwards(tmp_path):
+    path = write(small_catalog(20), tmp_path / "cat.parquet")
+    user = {"catalog": path, "methods": ["tully_fisher"], "likelihoods": {"eta_min": 0.5, "eta_max": -0.5}}
+    (msg,) = errors(preflight.check(user), "calibrations and stages")
+    assert "likelihoods.eta_min" in msg

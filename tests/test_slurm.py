@@ -174,7 +174,7 @@ def test_every_job_was_a_slurm_job(runs):
     assert kinds.count("rule_redshift") == 2, kinds
     assert kinds.count("group_product_assemble_plots_run_report") == 1, kinds
     for rule in ("demo_catalog", "ingest", "mu_grid", "extinction_coefficients", "kcorr_grid",
-                 "crosscheck_statistics"):
+                 "crosscheck_statistics", "groups"):
         assert kinds.count(f"rule_{rule}") == 1, (rule, kinds)
 
 

@@ -431,6 +431,10 @@ def cmd_summary(args) -> int:
     if isinstance(cosmo, dict):
         name = cosmo.get("name") or f"flat LCDM, H0 {_num(cosmo.get('H0'), 'g')}, Om0 {_num(cosmo.get('Om0'), 'g')}"
         _say(f"  mu_z cosmology      {name} (a convention, not a measurement)")
+    lk = s.get("eta_likelihoods")
+    if isinstance(lk, dict):
+        _say(f"  eta likelihoods     {lk.get('file')}: {_num(lk.get('eta_min'), 'g')} to {_num(lk.get('eta_max'), 'g')} "
+             f"dex in {_num(lk.get('eta_step'), 'g')} dex, per method and for mu_best")
     methods = _get(s, "statistics", "methods")
     if not isinstance(methods, dict) or not methods:
         _say(f"  methods             {DASH} (no statistics in summary.json)")
@@ -463,6 +467,21 @@ def cmd_summary(args) -> int:
         _say(f"  galaxies            {_int(st.get('n_both'))} with both, {_int(st.get('n_used'))} used")
         _say(f"  offset              {_num(st.get('wmean'), sign=True)} {pm} {_num(st.get('wmean_err'))} mag; "
              f"scatter {_num(st.get('std'))} vs {_num(st.get('rms_expected_err'))} expected")
+    zp = s.get("zero_point")
+    if isinstance(zp, dict) and zp.get("offsets"):
+        _say(f"\nzero-point tie      relative to {zp.get('reference')}, "
+             f"{'applied' if zp.get('applied') else 'not applied'}; {_int(zp.get('n_overlap_objects'))} objects "
+             f"({_int(zp.get('n_overlap_galaxies'))} galaxies) with two or more methods")
+        for p, o in zp["offsets"].items():
+            o = o if isinstance(o, dict) else {}
+            if p != zp.get("reference"):
+                _say(f"  {p:<19} {_num(o.get('offset'), sign=True)} {pm} {_num(o.get('err'))} mag "
+                     f"({_int(o.get('n_overlap'))} objects in common)")
+    g = s.get("groups")
+    if isinstance(g, dict):
+        _say(f"\ngroups              {_int(g.get('n_groups'))} ({_int(g.get('n_catalog_groups'))} from group_id, "
+             f"{_int(g.get('n_singletons'))} of one), {_int(g.get('n_groups_measured'))} with a distance, "
+             f"{_int(g.get('n_members_rejected'))} members rejected")
     counts = s.get("flag_counts")
     _say("\nflags (rows with the bit set; bits set on no row left out)")
     if isinstance(counts, dict) and counts:

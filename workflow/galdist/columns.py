@@ -49,6 +49,8 @@ OPTIONAL = [
     _c("ebv", "mag", "E(B-V) on the scale of the map it came from"),
     _c("ebv_err", "mag", "error of ebv"),
     _c("galaxy_class", "string", "free-text class"),
+    _c("group_id", "string", "the galaxy's group in your group catalog (galaxies sharing it are at one "
+                             "distance); empty: a group of one"),
     _c("hi_flux", "Jy km / s", "integrated HI line flux"),
     _c("w50_resolution", "km / s", "instrumental velocity resolution of the HI spectrum"),
 ]

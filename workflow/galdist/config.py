@@ -257,6 +257,17 @@ def check_stages(config: dict) -> dict:
             problems.append(f"config key '{key}': '{label}' is not a configured band "
                             f"(bands: {', '.join(sorted(bands))})")
 
+    lk = config.get("likelihoods", {})
+    if lk and not lk.get("eta_max", 0.5) > lk.get("eta_min", -0.5):
+        problems.append(f"config keys 'likelihoods.eta_min' and 'likelihoods.eta_max': the grid needs eta_min < "
+                        f"eta_max (got {lk.get('eta_min')} and {lk.get('eta_max')})")
+    elif lk and (lk.get("eta_max", 0.5) - lk.get("eta_min", -0.5)) / lk.get("eta_step", 0.005) > 10_000:
+        problems.append("config key 'likelihoods.eta_step': more than 10000 grid points per galaxy and method; "
+                        "take a larger step or a narrower range")
+    reference = config.get("zero_point", {}).get("reference", "auto")
+    if reference != "auto" and reference not in config["methods"]:
+        problems.append(f"config key 'zero_point.reference': '{reference}' is not a configured method "
+                        f"(methods: {', '.join(config['methods'])}); name one of them or 'auto'")
     ext = config["extinction"]
     if ext["source"] == "healpix" and not ext["map_file"]:
         problems.append("config key 'extinction.map_file': needed when extinction.source is healpix")

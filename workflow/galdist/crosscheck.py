@@ -266,7 +266,8 @@ NO_METHOD = "none"
 BEST_IGNORE_FLAGS = ("LOCAL_FLOW", "OUTLIER")
 
 
-def best_distance(methods: Mapping[str, tuple], *, ignore_flags=BEST_IGNORE_FLAGS) -> dict:
+def best_distance(methods: Mapping[str, tuple], *, ignore_flags=BEST_IGNORE_FLAGS,
+                  zero_point: dict | None = None) -> dict:
     """Inverse-variance mean of the usable methods per galaxy.
 
     ``methods`` maps a prefix to (mu, mu_err, flags[, mu_err_sys]), mu_err the random
@@ -277,7 +278,14 @@ def best_distance(methods: Mapping[str, tuple], *, ignore_flags=BEST_IGNORE_FLAG
     methods' calibrations are independent) and best_method: the usable prefixes joined
     by '+' in the order given, NO_METHOD when none, as a pyarrow string array (built per row
     from a dictionary of the 2^k subsets, which is what keeps it cheap at survey scale).
+    ``zero_point``: an applied zero-point tie (``groups.fit_zero_points`` with "applied"
+    true): each method's offset is subtracted, and the offsets' covariance joins
+    mu_best_err_sys (``groups.tie_variance``).
     """
+    from .groups import tie, tie_variance
+
+    offsets, cov = tie(zero_point, list(methods))
+    weights = {}
     keep = _flags.FLAG_DTYPE(ALL_METHOD_BITS & ~_bits(ignore_flags, "crosscheck.best_ignore_flags"))
     names = list(methods)
     if not names:
@@ -293,15 +301,17 @@ def best_distance(methods: Mapping[str, tuple], *, ignore_flags=BEST_IGNORE_FLAG
         if sw is None:
             sw, swx, sws2 = np.zeros(mu.shape), np.zeros(mu.shape), np.zeros(mu.shape)
             code = np.zeros(mu.shape, dtype=np.int32)
+        weights[names[bit]] = w
         sw += w
-        swx += np.where(use, w * np.where(use, mu, 0.0), 0.0)
+        swx += np.where(use, w * np.where(use, mu - offsets[names[bit]], 0.0), 0.0)
         sws2 += (w * sys) ** 2
         code |= use.astype(np.int32) << bit
     has = sw > 0
     with np.errstate(divide="ignore", invalid="ignore"):
         mu_best = np.where(has, swx / np.where(has, sw, 1.0), np.nan)
         mu_best_err = np.where(has, 1.0 / np.sqrt(np.where(has, sw, 1.0)), np.nan)
-        mu_best_err_sys = np.where(has, np.sqrt(sws2) / np.where(has, sw, 1.0), np.nan)
+        mu_best_err_sys = np.where(has, np.sqrt(sws2 / np.where(has, sw, 1.0) ** 2
+                                                + tie_variance(weights, names, cov)), np.nan)
     # the label of each subset of methods, indexed by its bit mask: built once, then
     # looked up per row as a dictionary (a per-row Python string would cost ~2 us/row)
     labels = pa.array(["+".join(n for i, n in enumerate(names) if c >> i & 1) or NO_METHOD
@@ -415,8 +425,10 @@ def _outliers(dmu, z_cmb, stats: dict, min_cz: float, clip_sigma: float) -> np.n
 
 def galaxy_columns(columns: Mapping[str, Sequence], grid: MuGrid, statistics: dict, *,
                    methods: Sequence[str] = DEFAULT_METHODS, min_cz: float = 3000.0,
-                   clip_sigma: float = 3.5, best_ignore_flags=BEST_IGNORE_FLAGS) -> dict:
-    """Per-galaxy cross-check columns of one shard, given the sample ``statistics``.
+                   clip_sigma: float = 3.5, best_ignore_flags=BEST_IGNORE_FLAGS,
+                   zero_point: dict | None = None) -> dict:
+    """Per-galaxy cross-check columns of one shard, given the sample ``statistics``
+    (``zero_point``: an applied tie for mu_best, see ``best_distance``).
 
     Per method M present: M_dmu, M_logd_ratio, M_vpec, M_vpec_err, M_vpec_lr,
     M_vpec_lr_err and M_flags (input flags + LOCAL_FLOW inherited from z_flags +
@@ -443,7 +455,7 @@ def galaxy_columns(columns: Mapping[str, Sequence], grid: MuGrid, statistics: di
                 f"{m}_vpec_lr": v_lr, f"{m}_vpec_lr_err": v_lr_err, f"{m}_flags": fl}
     if present:
         out |= best_distance({m: (col(f"{m}_mu"), col(f"{m}_mu_err"), out[f"{m}_flags"], col(f"{m}_mu_err_sys"))
-                              for m in present}, ignore_flags=best_ignore_flags)
+                              for m in present}, ignore_flags=best_ignore_flags, zero_point=zero_point)
     else:
         n = z.shape[0]
         out |= {"mu_best": np.full(n, np.nan), "mu_best_err": np.full(n, np.nan),

@@ -8,6 +8,7 @@ declared, never written twice:
 * the methods' columns: ``galdist.methods`` (``outputs`` and ``descriptions`` of each
   entry, ``COMMON_OUTPUTS`` and ``COMMON_DESCRIPTIONS``);
 * the cross-check's and the assembly's columns: ``galdist.product`` (``DERIVED_COLUMNS``);
+* the groups' per-galaxy columns: ``galdist.groups`` (``GROUP_COLUMNS``);
 * the user's pass-through columns (config ``keep_columns``): ``user_<name>``, as given.
 
 The product's field metadata (unit, description, flag bits), the astropy-readable
@@ -106,6 +107,7 @@ def for_run(bands, methods=None, keep: dict[str, dict] | None = None) -> list[En
     from . import stages
     from .flags import STAGE_FLAGS
     from .methods import REGISTRY
+    from .groups import GROUP_COLUMNS
     from .product import DERIVED_COLUMNS
 
     methods = list(REGISTRY) if methods is None else list(methods)
@@ -130,6 +132,8 @@ def for_run(bands, methods=None, keep: dict[str, dict] | None = None) -> list[En
                              FLOAT, origin="assemble"))
     for name, (unit, text, dtype) in DERIVED_COLUMNS["per_row"].items():
         out.append(Entry(name, unit, text, dtype, origin="assemble"))
+    for name, (unit, text, dtype) in GROUP_COLUMNS.items():
+        out.append(Entry(name, unit, text, dtype, origin="groups"))
     for name, info in (keep or {}).items():
         unit = f"; unit the file declares: {info['unit']}" if info.get("unit") else ""
         dtype = {"double": FLOAT, "float": "float32"}.get(info["type"], info["type"])

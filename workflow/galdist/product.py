@@ -23,6 +23,8 @@ import numpy as np
 import pyarrow as pa
 
 from . import crosscheck
+from .groups import GROUP_COLUMNS
+from .likelihood import SUMMARIES
 from . import flags as F
 from .io import AtomicParquetWriter, iter_shard, table_from_columns, write_parquet
 from .methods import REGISTRY
@@ -32,10 +34,11 @@ log = logging.getLogger(__name__)
 #: config name -> column prefix of every registered method
 METHOD_PREFIX = {name: spec.prefix for name, spec in REGISTRY.items()}
 FLAG_COLUMNS = tuple(F.ALL)
-LEADING = ["galaxy_id", "ra", "dec", "gal_l", "gal_b", "galaxy_class", *FLAG_COLUMNS,
+LEADING = ["galaxy_id", "ra", "dec", "gal_l", "gal_b", "galaxy_class", "group_id", *FLAG_COLUMNS,
            "z_helio", "z_helio_err", "z_cmb", "z_cmb_err", "cz_cmb_kms", "mu_z", "mu_z_err", "d_z_mpc",
            "ebv", "ebv_err", "ebv_used", "ebv_used_err"]
-TRAILING = ["mu_best", "mu_best_err", "mu_best_err_sys", "best_method"]
+TRAILING = ["mu_best", "mu_best_err", "mu_best_err_sys", "best_method", *(f"best_{k}" for k in SUMMARIES),
+            *GROUP_COLUMNS]
 #: The columns the assembly derives (the cross-check's per galaxy, and its own), for the
 #: column dictionary (galdist.dictionary): per method ("{title}", "{prefix}" filled in) and
 #: per row. Each is (unit, description[, storage type]).
@@ -52,18 +55,24 @@ DERIVED_COLUMNS = {
         "vpec_lr": ("km / s", "peculiar velocity by the log-ratio estimator of Watkins & Feldman 2015 "
                               "(MNRAS 450, 1868)"),
         "vpec_lr_err": ("km / s", "error of vpec_lr"),
+        **{k: ("dex", f"{text} (the {{title}} distance's; eta = log10(d_z / d), its likelihood in "
+                      f"eta_likelihoods.parquet, {{prefix}}_eta_like)") for k, text in SUMMARIES.items()},
     },
     "per_row": {
         "cz_cmb_kms": ("km / s", "c z_cmb, the velocity the LOCAL_FLOW flags and redshift.min_cz_kms speak of",
                        "float64"),
         "mu_best": ("mag", "inverse-variance mean of the usable methods' mu (a method is usable where mu and "
                            "mu_err are finite and it has no flag besides LOCAL_FLOW and OUTLIER, "
-                           "crosscheck.BEST_IGNORE_FLAGS)", "float64"),
+                           "crosscheck.BEST_IGNORE_FLAGS), each less its zero-point offset where "
+                           "zero_point.apply is true", "float64"),
         "mu_best_err": ("mag", "random error of mu_best, 1 / sqrt(sum of the weights 1 / mu_err^2)", "float64"),
         "mu_best_err_sys": ("mag", "systematic error of mu_best: the methods' mu_err_sys combined with the same "
-                                   "weights, the calibrations independent of each other", "float64"),
+                                   "weights, the calibrations independent of each other, and the zero-point "
+                                   "offsets' errors where applied", "float64"),
         "best_method": ("", f"prefixes of the methods mu_best combines, joined by '+' (e.g. tf+sbf); "
                             f"'{crosscheck.NO_METHOD}' where no method is usable", "string"),
+        **{f"best_{k}": ("dex", f"{text} (mu_best's; its likelihood in eta_likelihoods.parquet, best_eta_like)",
+                         "float64") for k, text in SUMMARIES.items()},
     },
 }
 CAUTIONS = (
@@ -189,9 +198,23 @@ def longest_texts(paths) -> dict[str, int]:
     return out
 
 
+def likelihood_schema(schema: pa.Schema, eta_grid) -> pa.Schema:
+    """eta_likelihoods.parquet's schema: each list's description and unit, the grid in the metadata."""
+    from .likelihood import schema_metadata
+
+    fields = [pa.field(f.name, f.type, metadata=None if f.name == "galaxy_id" else {
+        b"unit": b"1 / dex", b"description": (f"likelihood of eta = log10(d_z / d) from "
+                                              f"{'mu_best' if f.name.startswith('best_') else f.name[:-9] + '_mu'}"
+                                              " on the grid of the schema metadata (galdist.eta_grid): a density "
+                                              "in 1/dex, NaN where there is no distance").encode()})
+              for f in schema]
+    return pa.schema(fields, metadata=schema_metadata(np.asarray(eta_grid)))
+
+
 def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, methods: list[str],
              provenance_info: dict, *, min_cz: float, clip_sigma: float, plot_max_points: int,
-             total_rows: int, entries: dict) -> dict:
+             total_rows: int, entries: dict, zero_point: dict | None = None,
+             likelihood_path=None, eta_grid=None) -> dict:
     """Stream the shards into ``out_path``; returns flag counts, best-method counts and the
     product's dictionary entries in column order.
 
@@ -199,15 +222,19 @@ def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, 
     and each stage name to its narrow file. ``entries``: the run's column dictionary
     (``dictionary.by_name(dictionary.for_run(...))``); a column without an entry stops
     the assembly. Besides the provenance, the schema metadata holds the header astropy
-    reads (``dictionary.astropy_metadata``).
+    reads (``dictionary.astropy_metadata``). ``zero_point``: the run's zero-point tie
+    (``groups.fit_zero_points``), subtracted in mu_best where "applied". ``likelihood_path``:
+    the companion file of every row's eta likelihoods on ``eta_grid`` per method and for
+    mu_best (``galdist.likelihood``), in product order; their summaries go into the product.
     """
+    from .likelihood import likelihood_blocks
     from .redshift import C_KMS
 
     prefixes = [METHOD_PREFIX[m] for m in methods]
     flag_counts = {c: Counter() for c in FLAG_COLUMNS}
     best = Counter()
     rows = 0
-    writer = None
+    writer = like_writer = None
     samples = []
     used: list = []
     text_lengths = longest_texts([f["shard"] for f in shards])
@@ -218,8 +245,23 @@ def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, 
             rng = np.random.default_rng(index)
             for cols, units in iter_shard(files["shard"], stages):
                 cols |= crosscheck.galaxy_columns(cols, grid, statistics, methods=prefixes, min_cz=min_cz,
-                                                  clip_sigma=clip_sigma)
+                                                  clip_sigma=clip_sigma, zero_point=zero_point)
                 cols["cz_cmb_kms"] = C_KMS * np.asarray(cols["z_cmb"], dtype=float)
+                if eta_grid is not None:
+                    # the likelihoods go to their file a block at a time; their summaries into the product
+                    dists = {p: (cols[f"{p}_mu"], cols[f"{p}_mu_err"]) for p in prefixes if f"{p}_mu" in cols}
+                    dists["best"] = (cols["mu_best"], cols["mu_best_err"])
+                    n_rows = len(cols["mu_z"])
+                    for a, b, lists, summaries in likelihood_blocks(dists, cols["mu_z"], eta_grid):
+                        for k, v in summaries.items():
+                            cols.setdefault(k, np.full(n_rows, np.nan))[a:b] = v
+                        if likelihood_path is not None:
+                            lt = pa.table({"galaxy_id": cols["galaxy_id"][a:b]}
+                                          | {f"{name}_eta_like": arr for name, arr in lists.items()})
+                            if like_writer is None:
+                                like_writer = AtomicParquetWriter(likelihood_path,
+                                                                  likelihood_schema(lt.schema, eta_grid))
+                            like_writer.write(lt.cast(like_writer.writer.schema))
                 if writer is None:
                     used = ordered_entries(cols, entries)
                     stale = [f"{e.name} ({units[e.name]!r} in the stage file, {e.unit!r} in the dictionary)"
@@ -244,11 +286,13 @@ def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, 
                 rows += table.num_rows
                 log.info("shard %d/%d: %d of %d rows written", index + 1, len(shards), rows, total_rows)
     except BaseException:
-        if writer is not None:
-            writer.__exit__(RuntimeError, None, None)
+        for w in (writer, like_writer):
+            if w is not None:
+                w.__exit__(RuntimeError, None, None)
         raise
-    if writer is not None:
-        writer.__exit__(None, None, None)
+    for w in (writer, like_writer):
+        if w is not None:
+            w.__exit__(None, None, None)
     write_parquet(pa.concat_tables(samples), sample_path)
     return {"rows": rows,
             "flag_counts": {c: {m.name: flag_counts[c].get(m.name, 0) for m in F.ALL[c]}

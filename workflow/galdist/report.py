@@ -84,6 +84,44 @@ def _pairs(stats: dict) -> str:
             "<th>median (mag)</th><th>scatter (mag)</th><th>χ²/ν</th></tr>" + rows + "</table>")
 
 
+def _eta(lk: dict | None) -> str:
+    """Where the per-galaxy η likelihoods are and on which grid (summary.json "eta_likelihoods")."""
+    if not lk:
+        return "–"
+    return (f"<code>{_e(lk.get('file'))}</code>: per method and for mu_best, η = log10(d_z/d) from "
+            f"{_num(lk.get('eta_min'), 'g')} to {_num(lk.get('eta_max'), 'g')} dex in {_num(lk.get('eta_step'), 'g')} "
+            f"dex ({_num((lk.get('bytes') or 0) / 2**20, '.1f')} MB)")
+
+
+def _zero_point(zp: dict | None) -> str:
+    """The zero-point tie between methods (summary.json "zero_point", galdist.groups)."""
+    if not zp or not zp.get("offsets"):
+        return "<p>Only one method ran: no zero-point tie.</p>"
+    ref = METHOD_NAMES.get(zp.get("reference"), zp.get("reference"))
+    rows = "".join(
+        f"<tr><td>{_e(METHOD_NAMES.get(p, p))}</td><td class='num'>"
+        f"{'reference' if p == zp.get('reference') else _pm(o.get('offset'), o.get('err'))}</td>"
+        f"<td class='num'>{_e(o.get('n_overlap', 0))}</td></tr>" for p, o in zp["offsets"].items())
+    applied = ("applied: mu_best and group_mu carry them, their errors in the systematic errors"
+               if zp.get("applied") else "not applied (config zero_point.apply)")
+    return (f"<p class='muted'>Offsets of each method's μ relative to {_e(ref)}, fitted by maximum likelihood "
+            f"(random errors only) on {_e(zp.get('n_overlap_objects', 0))} groups and galaxies measured by two or "
+            f"more methods ({_e(zp.get('n_overlap_galaxies', 0))} galaxies); {_e(applied)}.</p>"
+            "<table><tr><th>method</th><th>offset (mag)</th><th>objects in common</th></tr>" + rows + "</table>")
+
+
+def _groups(g: dict | None) -> str:
+    """Group counts (summary.json "groups")."""
+    if not g:
+        return "<p>No group statistics.</p>"
+    return (f"<table><tr><th>groups</th><td class='num'>{_e(g.get('n_groups'))} ({_e(g.get('n_catalog_groups'))} from "
+            f"group_id, {_e(g.get('n_singletons'))} of one member)</td></tr>"
+            f"<tr><th>with a distance</th><td class='num'>{_e(g.get('n_groups_measured'))}</td></tr>"
+            f"<tr><th>largest group</th><td class='num'>{_e(g.get('largest_group'))}</td></tr>"
+            f"<tr><th>members rejected as outliers</th><td class='num'>{_e(g.get('n_members_rejected'))} "
+            f"(at {_num(g.get('clip_sigma'), 'g')} σ; flagged group_rejected, kept)</td></tr></table>")
+
+
 def _flag_tables(flag_counts: dict) -> str:
     out = []
     for column, counts in flag_counts.items():
@@ -146,6 +184,7 @@ def render(run: str, summary: dict, provenance: dict, plots: list[tuple[str, Pat
 <tr><th>rows in / out</th><td class="num">{_e(summary.get('rows_in'))} / {_e(summary.get('rows_out'))}</td></tr>
 <tr><th>methods</th><td>{_e(', '.join(METHOD_NAMES.get(m, m) for m in stats.get('methods', {})) or 'none')}</td></tr>
 <tr><th>best distance per galaxy</th><td>{best}</td></tr>
+<tr><th>η likelihoods</th><td>{_eta(summary.get('eta_likelihoods'))}</td></tr>
 <tr><th>redshift distances</th><td>{_e(cosmo.get('name') or 'flat ΛCDM')} H0 = {_e(cosmo.get('H0'))}, Ωm = {_e(cosmo.get('Om0'))} (a convention for the comparison, not a claim)</td></tr>
 </table>
 <p>Catalog:</p><ul>{inputs}</ul>
@@ -156,6 +195,10 @@ a positive offset means larger distances, hence a smaller implied H0.</p>
 {_method_cards(stats)}
 <h2>Methods compared</h2>
 {_pairs(stats)}
+<h2>Zero point tie between methods</h2>
+{_zero_point(summary.get('zero_point'))}
+<h2>Groups</h2>
+{_groups(summary.get('groups'))}
 {'<h2>Calibration fits</h2>' + _fits(fits) if fits else ''}
 <h2>Cautions: what these values are not good for</h2>
 {cautions}

@@ -50,6 +50,7 @@ def config_schema() -> dict:
 
     schema = copy.deepcopy(_read(CONFIG_SCHEMA))
     schema["properties"]["methods"]["items"]["enum"] = list(REGISTRY)
+    schema["properties"]["zero_point"]["properties"]["reference"]["enum"] = ["auto", *REGISTRY]
     return schema
 
 

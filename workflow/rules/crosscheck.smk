@@ -32,11 +32,38 @@ rule crosscheck_statistics:
         "../../scripts/rules/crosscheck_statistics.py"
 
 
+rule groups:
+    input:
+        shards=per_shard(f"{SHARDS}/ingest/part-{{shard}}.parquet"),
+        grid=rules.mu_grid.output[0],
+        calibrations=list(CALIBRATION_FILES.values()),
+        redshift=per_shard(STAGE_SHARDS["redshift"]),
+        **{m: per_shard(METHOD_SHARDS[m]) for m in METHODS},
+    output:
+        groups=update(f"{RUN}/groups.parquet"),
+        summary=f"{RUN}/groups_summary.json",
+        members=directory(f"{SHARDS}/groups"),
+    params:
+        groups=config["groups"],
+        zero_point=config["zero_point"],
+        methods=METHODS,
+        calibrations=CALIBRATION_FILES,
+        content=CALIBRATION_DIGESTS,
+    log:
+        f"{LOGS}/groups.log",
+    benchmark:
+        f"{BENCH}/groups.tsv"
+    script:
+        "../../scripts/rules/groups.py"
+
+
 rule assemble:
     input:
         shards=per_shard(f"{SHARDS}/ingest/part-{{shard}}.parquet"),
         ingest_summary=rules.ingest.output.summary,
         statistics=rules.crosscheck_statistics.output[0],
+        groups=rules.groups.output.summary,
+        group_members=rules.groups.output.members,
         grid=rules.mu_grid.output[0],
         calibrations=list(CALIBRATION_FILES.values()),
         **{stage: per_shard(pattern) for stage, pattern in JOINED_SHARDS.items()},
@@ -46,6 +73,7 @@ rule assemble:
         distances=update(f"{RUN}/distances.parquet"),
         summary=update(f"{RUN}/summary.json"),
         plot_sample=update(f"{RUN}/plot_sample.parquet"),
+        likelihoods=update(f"{RUN}/eta_likelihoods.parquet"),
         columns=update(f"{RUN}/COLUMNS.md"),
     params:
         crosscheck=config["crosscheck"],
@@ -53,6 +81,7 @@ rule assemble:
         methods=METHODS,
         calibrations=CALIBRATION_FILES,
         content=CALIBRATION_DIGESTS,
+        likelihoods=config["likelihoods"],
     log:
         f"{LOGS}/assemble.log",
     benchmark:
