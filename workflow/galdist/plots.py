@@ -361,40 +361,53 @@ def dmu_histograms(df, path, methods: Sequence[str] = _DEFAULT_METHODS, min_cz: 
     return total
 
 
-def dmu_cz(df, path, methods: Sequence[str] = _DEFAULT_METHODS, min_cz: float = 3000.0) -> int:
-    """dmu against c z_cmb per method, with the running median of the usable rows and
-    the local-flow cut: a trend with distance is the first sign of selection bias."""
-    cz = C_KMS * _col(df, "z_cmb")
-    present = _present(df, methods)
+def _dmu_against(df, path, present, axis) -> int:
+    """dmu against a per-method x, one panel per method in ``present``, with the running
+    median of the usable rows. ``axis(m)`` gives (x values, the product column they come
+    from, x label, title, extra(ax) drawing what the panel adds)."""
     fig, axes = _panels(len(present))
     total = 0
     notes = []
     for ax, m in zip(axes, present):
+        x, xcol, xlabel, title, extra = axis(m)
         dmu = _col(df, f"{m}_dmu")
-        ok = np.isfinite(dmu) & np.isfinite(cz)
+        ok = np.isfinite(x) & np.isfinite(dmu)
         bad = ok & _flagged(df, m)
         good = ok & ~bad
         name, color, marker = _label(m)
         total += int(ok.sum())
         notes.append(_count_note(name, int(good.sum()), int(bad.sum()),
-                                 f"; {int(_off_scale(df, f'{m}_dmu', 'z_cmb').sum())} off-scale not drawn"))
+                                 f"; {int(_off_scale(df, f'{m}_dmu', xcol).sum())} off-scale not drawn"))
         if not ok.any():
             _no_data(ax)
         else:
-            _points(ax, cz, dmu, None, good, bad, color, marker, name, size=8)
-            _running_median(ax, np.where(good, cz, np.nan), dmu, color)
+            _points(ax, x, dmu, None, good, bad, color, marker, name, size=8)
+            _running_median(ax, np.where(good, x, np.nan), dmu, color)
             ax.axhline(0.0, color="0.3", lw=0.8)
-            ax.axvline(min_cz, color="0.3", ls=":", lw=1.2, label=f"local-flow cut, {min_cz:g} km/s")
+            extra(ax)
             ax.legend(fontsize=6.5)
-        ax.set_xlabel(r"$c\,z_{\rm CMB}$ (km/s)")
+        ax.set_xlabel(xlabel, fontsize=8)
         ax.set_ylabel(rf"$\Delta\mu = \mu_{{\rm {m}}} - \mu_z$ (mag)")
-        ax.set_title(f"{name}: Δμ against redshift", fontsize=10)
+        ax.set_title(f"{name}: {title}", fontsize=10)
         ax.grid(alpha=0.3)
     if not present:
         _no_data(axes[0])
     _finish(fig, ["Points drawn, per method:", *notes] if notes else [])
     _save(fig, path)
     return total
+
+
+def dmu_cz(df, path, methods: Sequence[str] = _DEFAULT_METHODS, min_cz: float = 3000.0) -> int:
+    """dmu against c z_cmb per method, with the running median of the usable rows and
+    the local-flow cut: a trend with distance is the first sign of selection bias."""
+    cz = C_KMS * _col(df, "z_cmb")
+
+    def axis(m):
+        def cut(ax):
+            ax.axvline(min_cz, color="0.3", ls=":", lw=1.2, label=f"local-flow cut, {min_cz:g} km/s")
+        return cz, "z_cmb", r"$c\,z_{\rm CMB}$ (km/s)", "Δμ against redshift", cut
+
+    return _dmu_against(df, path, _present(df, methods), axis)
 
 
 def dmu_predictor(df, path, methods: Sequence[str] = _DEFAULT_METHODS, calibrations: dict | None = None) -> int:
@@ -402,41 +415,20 @@ def dmu_predictor(df, path, methods: Sequence[str] = _DEFAULT_METHODS, calibrati
     colour, the plane's predicted size), with the running median of the usable rows
     and the calibration's valid range of the predictor where it is that quantity."""
     present = [m for m in _present(df, methods) if (s := by_prefix(m)) and s.relation_plot]
-    fig, axes = _panels(len(present))
-    total = 0
-    notes = []
-    for ax, m in zip(axes, present):
+
+    def axis(m):
         spec = by_prefix(m)
         rp = spec.relation_plot
         cal = (calibrations or {}).get(m)
         xlabel, _ = _labels(rp, cal, band_text(spec, cal))
-        x, dmu = _col(df, f"{m}_{rp.x}"), _col(df, f"{m}_dmu")
-        ok = np.isfinite(x) & np.isfinite(dmu)
-        bad = ok & _flagged(df, m)
-        good = ok & ~bad
-        name, color, marker = _label(m)
-        total += int(ok.sum())
-        notes.append(_count_note(name, int(good.sum()), int(bad.sum()),
-                                 f"; {int(_off_scale(df, f'{m}_dmu', f'{m}_{rp.x}').sum())} off-scale not drawn"))
-        if not ok.any():
-            _no_data(ax)
-        else:
-            _points(ax, x, dmu, None, good, bad, color, marker, name, size=8)
-            _running_median(ax, np.where(good, x, np.nan), dmu, color)
-            ax.axhline(0.0, color="0.3", lw=0.8)
+
+        def edges(ax):
             if cal is not None and rp.view == "absolute":
                 for edge in cal.valid_range:
                     ax.axvline(edge, color="0.5", ls="--", lw=0.8)
-            ax.legend(fontsize=6.5)
-        ax.set_xlabel(xlabel, fontsize=8)
-        ax.set_ylabel(rf"$\Delta\mu = \mu_{{\rm {m}}} - \mu_z$ (mag)")
-        ax.set_title(f"{name}: Δμ against the predictor", fontsize=10)
-        ax.grid(alpha=0.3)
-    if not present:
-        _no_data(axes[0])
-    _finish(fig, ["Points drawn, per method:", *notes] if notes else [])
-    _save(fig, path)
-    return total
+        return _col(df, f"{m}_{rp.x}"), f"{m}_{rp.x}", xlabel, "Δμ against the predictor", edges
+
+    return _dmu_against(df, path, present, axis)
 
 
 def method_comparison(df, path, methods: Sequence[str] = _DEFAULT_METHODS) -> int:
