@@ -44,7 +44,7 @@ def page(tmp_path):
         plt.close(fig)
         plots.append((name, tmp_path / f"{name}.png", f"caption of {name}"))
     path = tmp_path / "report.html"
-    report.write(path, "demo", SUMMARY, PROVENANCE, plots)
+    report.write(path, "demo", SUMMARY, PROVENANCE, plots, config_files=["run.yaml"])
     return path
 
 
@@ -52,7 +52,7 @@ def test_key_numbers_are_text_and_the_page_stands_alone(page):
     text = page.read_text()
     for needle in ("384", "+0.006 ± 0.022", "69.8 ± 0.7", "800 / 800", "Tully–Fisher − SBF",
                    "tf_i_tully_courtois_2012", "LOW_INCLINATION", "caption of dmu_histograms",
-                   "inclination limit are unreliable"):
+                   "inclination limit are unreliable", "config/config.yaml (defaults) + run.yaml"):
         assert needle in text, needle
     assert "<script" not in text.lower()
     images = re.findall(r"src='data:image/png;base64,([^']+)'", text)

@@ -10,4 +10,4 @@ with logged(snakemake.log[0], "run report"):
     fits = ([(io.read_json(snakemake.input.fit_summary), snakemake.input.fit_report)]
             if "fit_summary" in snakemake.input.keys() else [])
     report.write(snakemake.output[0], snakemake.params.run, io.read_json(snakemake.input.summary),
-                 report.read_provenance(snakemake.input.distances), plots, fits)
+                 report.read_provenance(snakemake.input.distances), plots, fits, snakemake.params.config_files)

@@ -162,9 +162,11 @@ def _fits(fits) -> str:
     return "".join(out)
 
 
-def render(run: str, summary: dict, provenance: dict, plots: list[tuple[str, Path, str]], fits=()) -> str:
+def render(run: str, summary: dict, provenance: dict, plots: list[tuple[str, Path, str]], fits=(),
+           config_files=()) -> str:
     """The report page. ``plots``: (name, PNG path, caption text) in display order;
-    ``fits``: (fit summary, figure PNG) of the calibrate target, where it ran."""
+    ``fits``: (fit summary, figure PNG) of the calibrate target, where it ran;
+    ``config_files``: the user's configuration files, laid over the defaults."""
     stats = summary.get("statistics", {})
     inputs = "".join(f"<li><code>{_e(i.get('path'))}</code> <span class='muted'>({_e(i.get('format'))}, "
                      f"SHA-256 {_e(str(i.get('sha256'))[:16])}…)</span></li>" for i in summary.get("inputs", []))
@@ -181,6 +183,7 @@ def render(run: str, summary: dict, provenance: dict, plots: list[tuple[str, Pat
 <p class="muted">created {_e(provenance.get('created_utc', '–'))} · code {_e(provenance.get('git_commit') or 'not a git checkout')}</p>
 <h2>The run</h2>
 <table>
+<tr><th>configuration</th><td>{_e(' + '.join(['config/config.yaml (defaults)', *map(str, config_files)]))}</td></tr>
 <tr><th>rows in / out</th><td class="num">{_e(summary.get('rows_in'))} / {_e(summary.get('rows_out'))}</td></tr>
 <tr><th>methods</th><td>{_e(', '.join(METHOD_NAMES.get(m, m) for m in stats.get('methods', {})) or 'none')}</td></tr>
 <tr><th>best distance per galaxy</th><td>{best}</td></tr>
@@ -227,7 +230,7 @@ def caption_text(rst_path: str | Path) -> str:
     return " ".join(text.replace("``", "").split())
 
 
-def write(path: str | Path, run: str, summary: dict, provenance: dict, plots, fits=()) -> None:
+def write(path: str | Path, run: str, summary: dict, provenance: dict, plots, fits=(), config_files=()) -> None:
     """Write the page atomically."""
     with atomic_path(path) as tmp:
-        Path(tmp).write_text(render(run, summary, provenance, plots, fits), encoding="utf-8")
+        Path(tmp).write_text(render(run, summary, provenance, plots, fits, config_files), encoding="utf-8")

@@ -20,6 +20,7 @@ rule run_report:
         f"{RUN}/report.html",
     params:
         run=config["run"],
+        config_files=[str(p) for p in workflow.configfiles],
         captions=[f"{workflow.basedir}/workflow/report/{caption(name)}.rst" for name in PLOTS],
     log:
         f"{LOGS}/run_report.log",
