@@ -261,6 +261,33 @@ def pair_statistics(mu_a, mu_a_err, flags_a, mu_b, mu_b_err, flags_b, *,
 #: in summary.json (a word, not "": an empty string vanishes in CSV and reads as missing)
 NO_METHOD = "none"
 
+def tie(zero_point: dict | None, prefixes: Sequence[str]) -> tuple[dict, np.ndarray]:
+    """(offsets {prefix: delta}, covariance over ``prefixes``) of an applied zero-point fit;
+    zeros where it is not applied (None or ``applied`` false) or a method has no offset."""
+    k = len(prefixes)
+    cov = np.zeros((k, k))
+    if not zero_point or not zero_point.get("applied"):
+        return {p: 0.0 for p in prefixes}, cov
+    offsets = {p: float(zero_point["offsets"].get(p, {}).get("offset") or 0.0) for p in prefixes}
+    fitted = zero_point.get("fitted", [])
+    c = np.asarray(zero_point.get("covariance", []), dtype=float).reshape(len(fitted), len(fitted))
+    idx = [list(prefixes).index(p) for p in fitted]
+    if idx:
+        cov[np.ix_(idx, idx)] = c
+    return offsets, cov
+
+
+def tie_variance(weights: Mapping[str, np.ndarray], prefixes: Sequence[str], cov: np.ndarray) -> np.ndarray:
+    """a^T C a per row, a_m = w_m / sum w: the zero-point tie's variance of a combined modulus."""
+    if not np.any(cov):
+        return np.zeros(np.shape(next(iter(weights.values()))))
+    a = np.stack([np.asarray(weights.get(p, 0.0), dtype=float) for p in prefixes], axis=-1)
+    total = a.sum(axis=-1, keepdims=True)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        a = np.where(total > 0, a / np.where(total > 0, total, 1.0), 0.0)
+    return np.einsum("...m,mn,...n->...", a, cov, a)
+
+
 #: flags that leave a distance usable for mu_best: a nearby galaxy (LOCAL_FLOW) or a
 #: Hubble-flow outlier (OUTLIER: a large peculiar velocity is science, not a bad distance)
 BEST_IGNORE_FLAGS = ("LOCAL_FLOW", "OUTLIER")
@@ -280,10 +307,8 @@ def best_distance(methods: Mapping[str, tuple], *, ignore_flags=BEST_IGNORE_FLAG
     from a dictionary of the 2^k subsets, which is what keeps it cheap at survey scale).
     ``zero_point``: an applied zero-point tie (``groups.fit_zero_points`` with "applied"
     true): each method's offset is subtracted, and the offsets' covariance joins
-    mu_best_err_sys (``groups.tie_variance``).
+    mu_best_err_sys (``tie_variance``).
     """
-    from .groups import tie, tie_variance
-
     offsets, cov = tie(zero_point, list(methods))
     weights = {}
     keep = _flags.FLAG_DTYPE(ALL_METHOD_BITS & ~_bits(ignore_flags, "crosscheck.best_ignore_flags"))

@@ -47,6 +47,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from . import crosscheck
+from .crosscheck import tie, tie_variance
 from . import flags as _flags
 from .redshift import C_KMS
 
@@ -227,33 +228,6 @@ def fit_zero_points(sums: dict, prefixes: Sequence[str], reference: str | None =
             "covariance": cov.tolist(),
             "n_overlap_objects": int(sums["n_multi"]),
             "n_overlap_galaxies": int(sums["n_galaxies"])}
-
-
-def tie(zero_point: dict | None, prefixes: Sequence[str]) -> tuple[dict, np.ndarray]:
-    """(offsets {prefix: delta}, covariance over ``prefixes``) of an applied zero-point fit;
-    zeros where it is not applied (None or ``applied`` false) or a method has no offset."""
-    k = len(prefixes)
-    cov = np.zeros((k, k))
-    if not zero_point or not zero_point.get("applied"):
-        return {p: 0.0 for p in prefixes}, cov
-    offsets = {p: float(zero_point["offsets"].get(p, {}).get("offset") or 0.0) for p in prefixes}
-    fitted = zero_point.get("fitted", [])
-    c = np.asarray(zero_point.get("covariance", []), dtype=float).reshape(len(fitted), len(fitted))
-    idx = [list(prefixes).index(p) for p in fitted]
-    if idx:
-        cov[np.ix_(idx, idx)] = c
-    return offsets, cov
-
-
-def tie_variance(weights: Mapping[str, np.ndarray], prefixes: Sequence[str], cov: np.ndarray) -> np.ndarray:
-    """a^T C a per row, a_m = w_m / sum w: the zero-point tie's variance of a combined modulus."""
-    if not np.any(cov):
-        return np.zeros(np.shape(next(iter(weights.values()))))
-    a = np.stack([np.asarray(weights.get(p, 0.0), dtype=float) for p in prefixes], axis=-1)
-    total = a.sum(axis=-1, keepdims=True)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        a = np.where(total > 0, a / np.where(total > 0, total, 1.0), 0.0)
-    return np.einsum("...m,mn,...n->...", a, cov, a)
 
 
 def reduce_partition(table: pa.Table, prefixes: Sequence[str], grid, *, clip_sigma: float = 3.0,
