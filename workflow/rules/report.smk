@@ -20,7 +20,7 @@ rule run_report:
         f"{RUN}/report.html",
     params:
         run=config["run"],
-        config_files=[str(p) for p in workflow.configfiles],
+        config_files=[Path(p).name for p in workflow.configfiles],  # names: the page is the same in any folder
         captions=[f"{workflow.basedir}/workflow/report/{caption(name)}.rst" for name in PLOTS],
     log:
         f"{LOGS}/run_report.log",
