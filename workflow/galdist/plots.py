@@ -115,16 +115,17 @@ def _count_note(name: str, good: int, bad: int, extra: str = "") -> str:
 
 def _points(ax, x, y, yerr, good, bad, color, marker, label, size=12):
     """Filled usable points (with error bars when few) and hollow flagged points in the
-    method's marker and colour."""
+    method's marker and colour (markers of one line each: ``size`` is the area in pt^2, as
+    ``scatter``'s, and far quicker to draw than a scatter collection)."""
     if good.any():
         if good.sum() <= MAX_ERRORBARS and yerr is not None:
             e = np.where(np.isfinite(yerr[good]), yerr[good], 0.0)
             ax.errorbar(x[good], y[good], yerr=e, fmt="none", ecolor=color, alpha=0.3, lw=0.8)
-        ax.scatter(x[good], y[good], s=size, color=color, marker=marker, label=f"{label} usable ({good.sum()})",
-                   edgecolors="none", rasterized=True, zorder=3)
+        ax.plot(x[good], y[good], ls="none", marker=marker, ms=np.sqrt(size), color=color, mec="none",
+                label=f"{label} usable ({good.sum()})", rasterized=True, zorder=3)
     if bad.any():
-        ax.scatter(x[bad], y[bad], s=size, facecolors="none", edgecolors=color, marker=marker, alpha=0.6,
-                   linewidths=0.8, label=f"{label} flagged ({bad.sum()})", rasterized=True, zorder=2)
+        ax.plot(x[bad], y[bad], ls="none", marker=marker, ms=np.sqrt(size), mfc="none", mec=color, alpha=0.6,
+                mew=0.8, label=f"{label} flagged ({bad.sum()})", rasterized=True, zorder=2)
 
 
 def _plain_log_axis(axis) -> None:
@@ -339,6 +340,7 @@ def dmu_histograms(df, path, methods: Sequence[str] = _DEFAULT_METHODS, min_cz: 
             nbins = int(np.clip(2 * np.sqrt(base.sum()), 8, 60))
             bins = np.linspace(lo - 0.1 * span, hi + 0.1 * span, nbins + 1)
             ax.hist([dmu[good], dmu[bad]], bins=bins, stacked=True, color=[color, "0.75"],
+                    histtype="stepfilled",  # one patch per set, not one per bar: quicker to draw
                     label=[f"usable ({good.sum()})", f"flagged ({bad.sum()})"])
             sig = np.sqrt(np.nanmean(err[good] ** 2)) if good.any() and np.isfinite(err[good]).any() else np.nan
             med = float(np.median(dmu[good])) if good.any() else np.nan
@@ -385,7 +387,7 @@ def _dmu_against(df, path, present, axis) -> int:
             _running_median(ax, np.where(good, x, np.nan), dmu, color)
             ax.axhline(0.0, color="0.3", lw=0.8)
             extra(ax)
-            ax.legend(fontsize=6.5)
+            ax.legend(fontsize=6.5, loc="upper right")  # "best" scans every point: slow at 10^5
         ax.set_xlabel(xlabel, fontsize=8)
         ax.set_ylabel(rf"$\Delta\mu = \mu_{{\rm {m}}} - \mu_z$ (mag)")
         ax.set_title(f"{name}: {title}", fontsize=10)

@@ -107,6 +107,7 @@ rule plots:
         # the user's band of each method, named in the axis labels
         bands=config["bands"],
         sections={m: config[m] for m in METHODS},
+    threads: 2  # the plots are drawn in parallel processes
     log:
         f"{LOGS}/plots.log",
     benchmark:
