@@ -59,7 +59,7 @@ from pathlib import Path
 
 import pyarrow.parquet as pq
 
-from bench.common import DEFAULT_SHARD_ROWS, OUT_DIR, REPO, TARGETS, dir_size, label, machine_info, parse_sizes, say
+from bench.common import DEFAULT_SHARD_ROWS, OUT_DIR, REPO, TARGETS, dir_size, disk_use, label, machine_info, parse_sizes, say
 from bench.catalogs import ensure_catalog
 from bench.floor import io_floor
 from bench.profiling import PROFILE_RULES_DEFAULT, profile_rules
@@ -181,6 +181,7 @@ def main(argv=None) -> int:
         entry["product"] = {"rows": pq.read_metadata(product).num_rows, "columns": len(pq.read_schema(product)),
                             "bytes": product.stat().st_size}
         entry["run_dir_bytes"] = dir_size(run_dir)
+        entry["disk"] = disk_use(run_dir, catalog, n)
         say(f"{label(n)} rows: wall {best['wall_s']:.1f} s (fastest of {len(entry['all_wall_s'])}); I/O floor")
         entry["floor"] = io_floor(catalog, product, args.floor_repeats)
         entry["ratio_to_floor"] = round(entry["wall_s"] / entry["floor"]["floor_s"], 2)

@@ -37,13 +37,13 @@ def _values(e: dictionary.Entry, rng) -> pa.Array:
     if e.dtype == "string":
         words = ["alpha", "", None, "gamma, with comma", 'q"uote', "ünï"]
         return pa.array([words[i % len(words)] for i in range(N)], type=pa.string())
-    if e.dtype == "uint32":
-        return pa.array(np.array([0, 1, 37, 2**31 + 5] * N, dtype=np.uint32)[:N])
+    if e.dtype.startswith("uint"):  # a flag column in its narrowest type, its top bit set
+        return pa.array(np.array([0, 1, 37, np.iinfo(e.dtype).max // 2 + 5] * N, dtype=e.dtype)[:N])
     if e.dtype == "bool":
         return pa.array(np.arange(N) % 3 == 0)
-    if e.dtype == "int64":
-        return pa.array(np.arange(N, dtype=np.int64) + 2**60 + 1)
-    v = rng.normal(size=N) * 10.0 ** rng.integers(-6, 6)
+    if e.dtype.startswith("int"):  # int64: above 2^53
+        return pa.array(np.arange(N, dtype=e.dtype) + (2**60 + 1 if e.dtype == "int64" else 2**30 + 1))
+    v = (rng.normal(size=N) * 10.0 ** rng.integers(-6, 6)).astype(e.dtype)
     v[3] = np.nan
     return pa.array(v)
 
@@ -109,7 +109,11 @@ def test_names_never_clash_and_units_are_astropy_units():
     for e in entries:
         u.Unit(e.unit)  # raises on a unit astropy cannot read
         assert e.description and e.dtype, e.name
-        assert (e.dtype == "uint32") == bool(e.flags) == e.name.endswith("flags"), e.name
+        assert e.dtype.startswith("uint") == bool(e.flags) == e.name.endswith("flags"), e.name
+        if e.flags:  # the narrowest unsigned integer that holds the column's bits
+            top = max(d["value"] for d in e.bits())
+            narrower = {"uint16": "uint8", "uint32": "uint16"}.get(e.dtype)
+            assert top <= np.iinfo(e.dtype).max and (narrower is None or top > np.iinfo(narrower).max), e.name
     # a description for every common column, the ones not yet written included
     assert set(methods.COMMON_OUTPUTS) <= set(methods.COMMON_DESCRIPTIONS)
 
@@ -166,7 +170,8 @@ def test_parquet_field_metadata_and_pandas(synthetic_product):
 def _same(a, b, name):
     a = np.asarray(a, dtype=object) if a.dtype.kind in "OSU" else a
     if a.dtype.kind == "f":
-        np.testing.assert_array_equal(np.asarray(b, dtype=float), a, err_msg=name)  # NaN == NaN here
+        # read back in the stored type (a float32's shortest text is exact as float32); NaN == NaN here
+        np.testing.assert_array_equal(np.asarray(b, dtype=float).astype(a.dtype), a, err_msg=name)
     elif a.dtype == object:
         got = [v.decode() if isinstance(v, bytes) else ("" if v is None or v is np.ma.masked else str(v))
                for v in b]

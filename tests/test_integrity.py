@@ -82,7 +82,8 @@ def test_2_edited_calibration_with_old_time_stamp_reruns_the_method(wf):
     _run(wf)
     product = _product(wf)
     # a zero point 0.1 mag fainter: every distance modulus 0.1 mag smaller
-    np.testing.assert_allclose(product.column("tf_mu").to_numpy(), mu_before - 0.1, atol=1e-9)
+    # tf_mu is stored as float32 (galdist.dictionary.PRECISION_NOTE): 2^-24 relative, 2.3e-6 mag at mu = 39
+    np.testing.assert_allclose(product.column("tf_mu").to_numpy(), mu_before - 0.1, atol=1e-5, rtol=0)
     prov = json.loads(product.schema.metadata[b"galdist.provenance"])
     assert prov["calibrations"]["tully_fisher"]["text"] == cal.read_text()
 

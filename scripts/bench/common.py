@@ -32,11 +32,13 @@ STAGE_ORDER = ["ingest", "extinction_coefficients", "kcorr_grid", "mu_grid", "ex
                "redshift", *METHODS, "crosscheck_statistics", "assemble", "plots", "run_report"]
 
 TARGETS = {
-    "marginal_factor": 4.0,  # (wall(N2) - wall(N1)) <= 4 (floor(N2) - floor(N1))
+    "marginal_factor": 2.0,  # (wall(N2) - wall(N1)) <= 2 (floor(N2) - floor(N1))
     "fixed_cost_rows": 10_000,
-    "fixed_cost_s": 30.0,
+    "fixed_cost_s": 6.0,
     "max_rss_mb": 1024.0,
-    "exponent": 1.05,
+    "exponent": 1.0,
+    "intermediates_over_catalog": 1.5,  # every shards/<stage> folder at the run's end (their peak)
+    "product_over_catalog": 2.5,  # distances.parquet (its companions are optional and counted apart)
 }
 
 
@@ -70,6 +72,25 @@ def dir_size(path: Path) -> int:
     if path.is_file():
         return path.stat().st_size
     return sum(p.stat().st_size for p in path.rglob("*") if p.is_file()) if path.exists() else 0
+
+
+def disk_use(run_dir: Path, catalog: Path, rows: int) -> dict:
+    """Bytes per row of every file kind of a finished run: the catalog, each stage's shard
+    folder (the intermediates), the product and its companions; and the ratios the disk
+    targets speak of (intermediates and product over the input catalog)."""
+    per_row = {"catalog": dir_size(catalog) / rows}
+    shards = run_dir / "shards"
+    stages = sorted(p for p in shards.iterdir() if p.is_dir()) if shards.exists() else []
+    per_row |= {f"shards/{p.name}": dir_size(p) / rows for p in stages}
+    intermediate = sum(per_row[f"shards/{p.name}"] for p in stages)
+    files = {"distances.parquet", "eta_likelihoods.parquet", "groups.parquet", "plot_sample.parquet"}
+    per_row |= {name: dir_size(run_dir / name) / rows for name in sorted(files) if (run_dir / name).exists()}
+    rest = dir_size(run_dir) - dir_size(shards) - sum(dir_size(run_dir / f) for f in files)
+    per_row["other (grids, plots, logs, json)"] = rest / rows
+    return {"bytes_per_row": {k: round(v, 1) for k, v in per_row.items()},
+            "intermediates_bytes_per_row": round(intermediate, 1),
+            "intermediates_over_catalog": round(intermediate / per_row["catalog"], 2),
+            "product_over_catalog": round(per_row["distances.parquet"] / per_row["catalog"], 2)}
 
 
 def machine_info() -> dict:

@@ -57,6 +57,12 @@ def checks(results: list[dict], pairs: list[dict]) -> dict:
                                                               default=None) for r in results},
                           "target": f"<= {TARGETS['max_rss_mb']} MB, independent of N",
                           "pass": worst[2] <= TARGETS["max_rss_mb"]}
+    disk = [r for r in results if r.get("disk")]
+    for key in ("intermediates_over_catalog", "product_over_catalog"):
+        if disk:
+            worst = max(disk, key=lambda r: r["disk"][key])
+            out[key] = {"value": worst["disk"][key], "rows": worst["rows"], "target": f"<= {TARGETS[key]}",
+                        "pass": worst["disk"][key] <= TARGETS[key]}
     for r in sorted(results, key=lambda r: -r["rows"]):
         if "swap_check" in r:
             out["calibration_swap"] = {"rows": r["rows"], "jobs": r["swap_check"]["jobs"],
@@ -106,6 +112,17 @@ def print_report(report: dict, stream=None) -> None:
         for rule, st in r["stages"].items():
             p(f"  {rule:<24} {st['jobs']:>5} {st['seconds']:>8.2f} {st['max_job_s']:>9.2f} {st['cpu_s']:>8.2f} "
               f"{fmt(st['rows_per_s'], '{:,.0f}'):>12} {st['max_rss_mb']:>10.0f}")
+    disk = [r for r in results if r.get("disk")]
+    if disk:
+        p("")
+        p("disk, bytes per row (intermediates = every shards/<stage> folder at the run's end, their peak):")
+        kinds = list(dict.fromkeys(k for r in disk for k in r["disk"]["bytes_per_row"]))
+        p(f"  {'file':<34}" + "".join(f"{r['rows']:>12,}" for r in disk))
+        for k in kinds:
+            p(f"  {k:<34}" + "".join(f"{fmt(r['disk']['bytes_per_row'].get(k)):>12}" for r in disk))
+        for key, text in (("intermediates_over_catalog", "intermediates / catalog"),
+                          ("product_over_catalog", "distances.parquet / catalog")):
+            p(f"  {text:<34}" + "".join(f"{fmt(r['disk'][key], '{:.2f}'):>12}" for r in disk))
     p("")
     p("where the wall time goes:")
     for r in results:

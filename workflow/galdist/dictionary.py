@@ -22,12 +22,22 @@ from __future__ import annotations
 import json
 from dataclasses import dataclass
 
+from . import io
+
 #: prefix of the user's pass-through columns (config ``keep_columns``); no other column
 #: name starts with it, so a kept column never clashes with galdist's
 KEEP_PREFIX = "user_"
 
-#: storage types of the product's columns
+#: types of the product's columns as computed (``stored`` narrows them for writing)
 FLOAT, FLAGS, BOOL, TEXT = "float64", "uint32", "bool", "string"
+#: float columns stored in full (float64), as in every file galdist writes
+FULL_PRECISION = io.FULL_PRECISION
+#: why float32 is ample elsewhere (COLUMNS.md and the README say it)
+PRECISION_NOTE = ("Stored types are chosen by the precision each value needs: float32 (relative "
+                  "precision 6e-8: 2e-6 mag at mu = 35, 2e-3 km/s at 3e4 km/s, far below any "
+                  "measurement error) for every measured or derived value except positions and "
+                  "redshifts (float64); flag columns in the narrowest unsigned integer that holds "
+                  "their bits; counts as int32; your keep_columns as read.")
 
 
 @dataclass(frozen=True)
@@ -134,12 +144,31 @@ def for_run(bands, methods=None, keep: dict[str, dict] | None = None) -> list[En
         out.append(Entry(name, unit, text, dtype, origin="assemble"))
     for name, (unit, text, dtype) in GROUP_COLUMNS.items():
         out.append(Entry(name, unit, text, dtype, origin="groups"))
+    out = [stored(e) for e in out]
     for name, info in (keep or {}).items():
         unit = f"; unit the file declares: {info['unit']}" if info.get("unit") else ""
         dtype = {"double": FLOAT, "float": "float32"}.get(info["type"], info["type"])
         out.append(Entry(name, "", f"your catalog's column {info['source']!r}, passed through as read "
                                    f"(config keep_columns{unit})", dtype, origin="catalog (keep_columns)"))
     return out
+
+
+def stored(e: Entry) -> Entry:
+    """``e`` with the type the product stores (``PRECISION_NOTE``): float32 but for
+    ``FULL_PRECISION``, a flag column's narrowest unsigned integer, int32 counts."""
+    from dataclasses import replace
+
+    from .flags import ALL
+
+    if e.dtype == FLOAT and e.name not in FULL_PRECISION:
+        return replace(e, dtype="float32")
+    if e.dtype == FLAGS and e.flags:
+        top = max(int(m.value) for m in ALL[e.flags])
+        return replace(e, dtype=next(t for t, limit in (("uint8", 0xFF), ("uint16", 0xFFFF), (FLAGS, 0xFFFFFFFF))
+                                     if top <= limit))
+    if e.dtype == "int64":
+        return replace(e, dtype="int32")
+    return e
 
 
 def keep_name(source: str) -> str:
@@ -225,5 +254,5 @@ def columns_markdown(entries: list[Entry], run: str | None = None) -> str:
              "value is the sum of its set bits' values (`galdist flags VALUE --column NAME` decodes one). "
              "Distances (`*_d_mpc`, `d_z_mpc`) are luminosity distances; `*_dmu` and `*_logd_ratio` are "
              "method minus redshift distance: positive `dmu`, negative `logd_ratio`, means the galaxy is "
-             "farther than its redshift says.\n\n")
+             "farther than its redshift says. " + PRECISION_NOTE + "\n\n")
     return head + intro + markdown(entries) + "\n"

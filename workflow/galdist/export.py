@@ -8,7 +8,7 @@ temporary file renamed into place when complete (``galdist.io.atomic_path``).
 * FITS: one binary table; TUNITn the unit (FITS spelling where the standard has
   one, e.g. ``km s-1``; astropy's for the logarithmic ``dex(...)`` units, which FITS
   cannot spell), TCOMMn the description (and a flag column's bits); text columns
-  are as wide as their longest value; unsigned 32-bit flags use TZERO = 2^31.
+  are as wide as their longest value; unsigned 16- and 32-bit flags use TZERO = 2^15, 2^31.
   Written by ``astropy.io.fits.StreamingHDU``.
 * ECSV: astropy's own header (units, descriptions, a flag column's bits under
   ``meta``), then the rows, comma-separated.
@@ -114,8 +114,8 @@ def _fits_values(array: pa.Array, c: dict, dtype: np.dtype) -> np.ndarray:
     if pa.types.is_boolean(t):
         return np.where(np.asarray(array.fill_null(False).to_numpy(zero_copy_only=False)), ord("T"),
                         ord("F")).astype(dtype)
-    if t == pa.uint32():
-        return (array.to_numpy(zero_copy_only=False).astype(np.int64) - 2**31).astype(dtype)
+    if pa.types.is_unsigned_integer(t) and t.bit_width > 8:  # stored signed, TZERO = 2^(bits - 1)
+        return (array.to_numpy(zero_copy_only=False).astype(np.int64) - 2 ** (t.bit_width - 1)).astype(dtype)
     if pa.types.is_floating(t):
         return array.fill_null(np.nan).to_numpy(zero_copy_only=False).astype(dtype)
     return array.fill_null(0).to_numpy(zero_copy_only=False).astype(dtype)

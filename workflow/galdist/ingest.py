@@ -26,7 +26,7 @@ from .catalog import CatalogError, describe, detect_format, iter_batches, source
 from .columns import DERIVED, OPTIONAL, Z_HELIO_RANGE, Column, all_columns, method_columns, required_columns
 from .errors import IngestError
 from .io import field as arrow_field
-from .io import (INTERMEDIATE_COMPRESSION, AtomicParquetWriter, Fingerprint, RecordSpill, is_arrow_text,
+from .io import (INTERMEDIATE_COMPRESSION, AtomicParquetWriter, Fingerprint, RecordSpill, is_arrow_text, stored_float,
                  sha256_of, write_json)
 
 log = logging.getLogger(__name__)
@@ -474,7 +474,7 @@ def canonical_batch(raw: dict, p: IngestPlan, first_row: int,
 def _arrow_schema(p: IngestPlan) -> pa.Schema:
     fields = []
     for col in p.columns + DERIVED:
-        fields.append(arrow_field(col.name, pa.string() if col.is_text else pa.float64(),
+        fields.append(arrow_field(col.name, pa.string() if col.is_text else stored_float(col.name),
                                   None if col.is_text or not col.unit else col.unit))
     fields.append(pa.field("quality_flags", pa.uint32()))
     fields += [pa.field(name, t) for name, (_, t, _) in p.keep.items()]

@@ -158,6 +158,14 @@ def dtype_name(t: pa.DataType) -> str:
     return "float64" if t == pa.float64() else "float32" if t == pa.float32() else str(t)
 
 
+def _narrows(computed: pa.DataType, target: pa.DataType) -> bool:
+    """Whether ``computed`` is stored as ``target`` of the same kind (float64 as float32, uint32
+    flags as uint8, int64 counts as int32); the writer's safe cast refuses an integer that does
+    not fit."""
+    kinds = (pa.types.is_floating, pa.types.is_unsigned_integer, pa.types.is_signed_integer)
+    return any(k(computed) and k(target) for k in kinds)
+
+
 def product_schema(table: pa.Table, entries: dict, provenance_info: dict, text_lengths: dict) -> pa.Schema:
     """The product's schema: each field's type checked against its dictionary entry and its
     metadata (unit, description, flag bits) from it; in the schema metadata the provenance
@@ -168,9 +176,10 @@ def product_schema(table: pa.Table, entries: dict, provenance_info: dict, text_l
     fields = []
     for f in table.schema:
         e = entries[f.name]
-        if dtype_name(f.type) != e.dtype:
+        target = f.type if dtype_name(f.type) == e.dtype else pa.type_for_alias(e.dtype)
+        if not (target == f.type or _narrows(f.type, target)):
             raise TypeError(f"product column {f.name} is {f.type}; the column dictionary says {e.dtype}")
-        fields.append(pa.field(f.name, f.type, metadata=e.field_metadata()))
+        fields.append(pa.field(f.name, target, metadata=e.field_metadata()))
     schema = pa.schema(fields)
     lengths = {f.name: text_lengths.get(f.name, 0) for f in schema if entries[f.name].dtype == TEXT}
     meta = {"galdist.provenance": json.dumps(provenance_info, sort_keys=True, default=str)}
