@@ -276,3 +276,31 @@ def test_plots_draw_any_finite_value(tmp_path):
     assert plots.dmu_histograms(df, tmp_path / "h.png", ["tf"], 0.0) == n - 2
     assert plots.vpec_sky(df, tmp_path / "v.png", ["tf"]) == n - 1
     assert (tmp_path / "h.png").stat().st_size > 0 and (tmp_path / "v.png").stat().st_size > 0
+
+
+@pytest.mark.slow
+def test_removed_stage_files_keep_the_run_resumable(tmp_path):
+    """keep_intermediates: false: the per-shard stage files are gone once the product is
+    written, a second run finds nothing to do, and an edited calibration re-creates what its
+    method needs and gives the right numbers (the zero point's shift, exactly)."""
+    wf = copy_workflow(tmp_path)
+    write(small_catalog(200, seed=4), wf / "cat.parquet")
+    cal = wf / "my_tf.yaml"
+    cal.write_text((wf / "workflow/galdist/data/calibrations/tf_i_tully_courtois_2012.yaml").read_text())
+    conf = {"catalog": "cat.parquet", "run": "lean", "shard_rows": 100, "methods": ["tully_fisher"],
+            "keep_intermediates": False, "tully_fisher": {"calibration": "my_tf.yaml", "mc_draws": 0}}
+    (wf / "run.yaml").write_text(yaml.safe_dump(conf))
+    run = wf / "results/lean"
+    _run(wf)
+    assert not [p for stage in ("extinction", "kcorr", "redshift", "tully_fisher")
+                for p in (run / "shards" / stage).rglob("*.parquet")]
+    assert len(list((run / "shards/ingest").glob("part-*.parquet"))) == 2
+    mu_before = pq.read_table(run / "distances.parquet").column("tf_mu").to_numpy()
+    assert mu_before.size == 200
+    dry = run_snakemake(wf, "--configfile", "run.yaml", "-n")
+    assert dry.returncode == 0 and "Nothing to be done" in dry.stdout + dry.stderr, dry.stdout[-2000:]
+    cal.write_text(cal.read_text().replace("coefficients: [-21.39, -8.81]", "coefficients: [-21.29, -8.81]"))
+    _run(wf)
+    # a zero point 0.1 mag fainter: every modulus 0.1 mag smaller (float32 storage: 1e-5 mag)
+    np.testing.assert_allclose(pq.read_table(run / "distances.parquet").column("tf_mu").to_numpy(),
+                               mu_before - 0.1, atol=1e-5, rtol=0)

@@ -44,6 +44,8 @@ RUN = f"{config['output_dir']}/{config['run']}"
 LOGS = f"{RUN}/logs"
 BENCH = f"{RUN}/benchmarks"
 SHARDS = f"{RUN}/shards"
+# a per-shard stage file: kept, or removed once its readers ran (config keep_intermediates)
+stage_file = (lambda path: path) if config["keep_intermediates"] else temp
 GRIDS = f"{RUN}/grids"
 EXTINCTION_MAPS = gconfig.extinction_map_files(config)
 # Content, not modification times: the digest of every external input is a parameter of

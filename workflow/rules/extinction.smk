@@ -25,7 +25,7 @@ rule extinction:
         coefficients=rules.extinction_coefficients.output[0],
         maps=EXTINCTION_MAPS,
     output:
-        f"{SHARDS}/extinction/part-{{shard}}.parquet",
+        stage_file(f"{SHARDS}/extinction/part-{{shard}}.parquet"),
     params:
         extinction=config["extinction"],
         bands=BANDS,

@@ -24,7 +24,7 @@ rule kcorr:
         grid=rules.kcorr_grid.output[0],
         extinction=rules.extinction.output[0],
     output:
-        f"{SHARDS}/kcorr/part-{{shard}}.parquet",
+        stage_file(f"{SHARDS}/kcorr/part-{{shard}}.parquet"),
     params:
         kcorr=config["kcorr"],
     log:

@@ -19,7 +19,7 @@ if METHODS:
         input:
             unpack(method_inputs),
         output:
-            f"{SHARDS}/{{method}}/{{calibration}}/part-{{shard}}.parquet",
+            stage_file(f"{SHARDS}/{{method}}/{{calibration}}/part-{{shard}}.parquet"),
         wildcard_constraints:
             method="|".join(METHODS),
             calibration="|".join(CALIBRATIONS[m].name for m in METHODS),

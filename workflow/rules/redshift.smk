@@ -19,7 +19,7 @@ rule redshift:
         shard=shard_path,
         grid=rules.mu_grid.output[0],
     output:
-        f"{SHARDS}/redshift/part-{{shard}}.parquet",
+        stage_file(f"{SHARDS}/redshift/part-{{shard}}.parquet"),
     params:
         redshift=config["redshift"],
     log:
