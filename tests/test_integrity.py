@@ -281,14 +281,15 @@ def test_plots_draw_any_finite_value(tmp_path):
 @pytest.mark.slow
 def test_removed_stage_files_keep_the_run_resumable(tmp_path):
     """keep_intermediates: false: the per-shard stage files are gone once the product is
-    written, a second run finds nothing to do, and an edited calibration re-creates what its
+    written (and copy_inputs: false leaves the measured inputs out of it), a second run finds nothing to do, and an edited calibration re-creates what its
     method needs and gives the right numbers (the zero point's shift, exactly)."""
     wf = copy_workflow(tmp_path)
     write(small_catalog(200, seed=4), wf / "cat.parquet")
     cal = wf / "my_tf.yaml"
     cal.write_text((wf / "workflow/galdist/data/calibrations/tf_i_tully_courtois_2012.yaml").read_text())
     conf = {"catalog": "cat.parquet", "run": "lean", "shard_rows": 100, "methods": ["tully_fisher"],
-            "keep_intermediates": False, "tully_fisher": {"calibration": "my_tf.yaml", "mc_draws": 0}}
+            "keep_intermediates": False, "copy_inputs": False,
+            "tully_fisher": {"calibration": "my_tf.yaml", "mc_draws": 0}}
     (wf / "run.yaml").write_text(yaml.safe_dump(conf))
     run = wf / "results/lean"
     _run(wf)
@@ -297,6 +298,10 @@ def test_removed_stage_files_keep_the_run_resumable(tmp_path):
     assert len(list((run / "shards/ingest").glob("part-*.parquet"))) == 2
     mu_before = pq.read_table(run / "distances.parquet").column("tf_mu").to_numpy()
     assert mu_before.size == 200
+    # copy_inputs: false: the catalog's identity columns only, the measured ones left in the catalog
+    names = set(pq.read_schema(run / "distances.parquet").names)
+    assert {"galaxy_id", "ra", "dec", "z_helio", "tf_mu", "A_I", "quality_flags"} <= names
+    assert not names & {"mag_I", "mag_I_err", "w50", "axis_ratio"}
     dry = run_snakemake(wf, "--configfile", "run.yaml", "-n")
     assert dry.returncode == 0 and "Nothing to be done" in dry.stdout + dry.stderr, dry.stdout[-2000:]
     cal.write_text(cal.read_text().replace("coefficients: [-21.39, -8.81]", "coefficients: [-21.29, -8.81]"))

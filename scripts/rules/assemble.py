@@ -27,7 +27,8 @@ with logged(snakemake.log[0], "assemble") as log:
                               plot_max_points=cfg["plot_max_points"], total_rows=ingest_summary["rows_out"],
                               entries=entries, zero_point=grouped["zero_point"],
                               likelihood_path=snakemake.output.likelihoods, eta_grid=likelihood.eta_grid(
-                                  lk["eta_min"], lk["eta_max"], lk["eta_step"]))
+                                  lk["eta_min"], lk["eta_max"], lk["eta_step"]),
+                              copy_inputs=snakemake.params.copy_inputs)
     if counts["rows"] != ingest_summary["rows_in"]:
         raise RuntimeError(f"row count changed: {ingest_summary['rows_in']} in, {counts['rows']} out")
     summary = {"rows_in": ingest_summary["rows_in"], "rows_out": counts["rows"],

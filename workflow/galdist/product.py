@@ -92,6 +92,8 @@ CAUTIONS = (
     "An implied H0 from a calibration whose zero point assumes an H0 (h0_implied_independent false) "
     "returns that H0 by construction: it is not a measurement.",
 )
+#: the catalog columns the product always carries (config copy_inputs: false drops the rest)
+IDENTITY_COLUMNS = frozenset({"galaxy_id", "ra", "dec", "z_helio", "z_helio_err", "galaxy_class", "group_id"})
 PLOT_COLUMNS = ["galaxy_id", "gal_l", "gal_b", "z_cmb", "mu_z", "mu_z_err"] + [
     f"{s.prefix}_{c}" for s in REGISTRY.values() if s.relation_plot for c in (s.relation_plot.x, s.relation_plot.y)
 ] + [f"{p}_{c}" for p in METHOD_PREFIX.values() for c in ("mu", "mu_err", "flags", "dmu", "vpec")]
@@ -223,7 +225,7 @@ def likelihood_schema(schema: pa.Schema, eta_grid) -> pa.Schema:
 def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, methods: list[str],
              provenance_info: dict, *, min_cz: float, clip_sigma: float, plot_max_points: int,
              total_rows: int, entries: dict, zero_point: dict | None = None,
-             likelihood_path=None, eta_grid=None) -> dict:
+             likelihood_path=None, eta_grid=None, copy_inputs: bool = True) -> dict:
     """Stream the shards into ``out_path``; returns flag counts, best-method counts and the
     product's dictionary entries in column order.
 
@@ -235,6 +237,8 @@ def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, 
     (``groups.fit_zero_points``), subtracted in mu_best where "applied". ``likelihood_path``:
     the companion file of every row's eta likelihoods on ``eta_grid`` per method and for
     mu_best (``galdist.likelihood``), in product order; their summaries go into the product.
+    ``copy_inputs`` false: of the catalog's own columns only ``IDENTITY_COLUMNS`` (config
+    ``copy_inputs``; the rows keep the catalog's order, so galaxy_id joins the rest back).
     """
     from .likelihood import likelihood_blocks
     from .redshift import C_KMS
@@ -272,7 +276,8 @@ def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, 
                                                                   likelihood_schema(lt.schema, eta_grid))
                             like_writer.write(lt.cast(like_writer.writer.schema))
                 if writer is None:
-                    used = ordered_entries(cols, entries)
+                    used = [e for e in ordered_entries(cols, entries)
+                            if copy_inputs or e.origin != "catalog" or e.name in IDENTITY_COLUMNS]
                     stale = [f"{e.name} ({units[e.name]!r} in the stage file, {e.unit!r} in the dictionary)"
                              for e in used if e.name in units and units[e.name] != e.unit]
                     if stale:

@@ -82,6 +82,7 @@ rule assemble:
         calibrations=CALIBRATION_FILES,
         content=CALIBRATION_DIGESTS,
         likelihoods=config["likelihoods"],
+        copy_inputs=config["copy_inputs"],
     log:
         f"{LOGS}/assemble.log",
     benchmark:
