@@ -562,6 +562,13 @@ class PlaneFit:
     def coefficient_errors(self) -> np.ndarray:
         return np.sqrt(np.clip(np.diag(self.covariance), 0.0, None))
 
+    @property
+    def normal_is_thinnest(self) -> bool:
+        """sigma_1 is the smallest width, as a plane's normal must be. A sample cut hard in
+        s (at the Gaussian's centre, in tests) can make another principal plane of the
+        Gaussian the likelihood's maximum; the calibrate target reports it."""
+        return bool(self.sigmas[0] <= min(self.sigmas[1], self.sigmas[2]))
+
     def log_radius(self, s, i) -> np.ndarray:
         """r of the plane at (s, i)."""
         a, b, c = self.coefficients
