@@ -337,3 +337,20 @@ def test_calibrate_target_fits_the_demo_plane(tmp_path):
     shipped = load_calibration("fp_j_magoulas_2012")  # the demo's plane (from memory)
     err = np.sqrt(np.diag(cal.covariance))
     assert np.all(np.abs(cal.coefficients[:2] - shipped.coefficients[:2]) < 4 * err[:2])
+    # the zero point: the shipped plane at the fit's pivots, its h^-1 kpc sizes at the demo's H0
+    from galdist.conventions import run_h0
+
+    terms, shipped_terms = fp.plane_terms(cal), fp.plane_terms(shipped)
+    c_demo = (fp.plane_log_radius(shipped, shipped_terms, cal.pivot, terms.pivot_log_ie)
+              - np.log10(run_h0(config()) / shipped.zero_point_h0))
+    assert abs(cal.coefficients[2] - c_demo) < 4 * err[2]
+    import os
+
+    here = os.getcwd()
+    try:
+        os.chdir(work)
+        result = preflight.check({"fp": {"calibration": str(out / "fp_fitted_demo.yaml"), "estimator": "gaussian"}},
+                                 buildable=frozenset({"results/demo-input/corvid_reach_survey.parquet"}))
+    finally:
+        os.chdir(here)
+    assert result.errors == [], result.errors
