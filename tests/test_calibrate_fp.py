@@ -86,12 +86,13 @@ def seeds_fitted():
 
 def test_plane_fit_recovers_the_simulated_plane(seeds_fitted):
     """a, b, c, the centre and the widths come back within 3 of their Hessian errors in
-    every sample (pulls of a, b, c over four seeds measured at |pull| < 2.1, their
-    spread 1.0 +- 0.2); the scatter is sigma_1 sqrt(1 + a^2 + b^2) (Magoulas et al.
-    2012, from memory)."""
+    every sample (the pulls of a, b, c over these four seeds measured: largest 2.02,
+    spread 1.06; over 20 other seeds: means -0.16, 0.11, 0.11, spreads 1.05, 0.85,
+    0.92, 95% within 2), and sigma_1 is the thinnest width; the scatter is sigma_1
+    sqrt(1 + a^2 + b^2) (Magoulas et al. 2012, from memory)."""
     pulls = []
     for sample, best, _ in seeds_fitted:
-        assert best.converged and np.all(np.isfinite(best.coefficient_errors))
+        assert best.converged and np.all(np.isfinite(best.coefficient_errors)) and best.normal_is_thinnest
         truth = np.array([A, B, truth_c(2.25, 3.05)])
         pulls.append((best.coefficients - truth) / best.coefficient_errors)
         assert np.all(np.abs(best.centre - [S_BAR, I_BAR]) < 3 * best.centre_err)
@@ -107,8 +108,8 @@ def test_naive_fit_is_biased_where_the_selection_aware_one_is_not(seeds_fitted):
     """Averaged over the four samples, the fit without the truncation tilts the plane
     (the magnitude limit removes small, faint galaxies, the sigma cut those of low s): its
     mean a lies more than 3 errors of the mean below the truth and its mean b more than 3
-    above (measured: -0.17 and +0.05, 4.6 and 4.0 errors), while the selection-aware means
-    lie within 2.5 errors."""
+    above (measured: -0.17 and +0.05, 4.6 and 4.0 errors; over 20 other seeds -0.214 +-
+    0.014 and +0.055 +- 0.004), while the selection-aware means lie within 2.5 errors."""
     for k, sign in ((0, -1), (1, 1)):
         aware = np.array([f.coefficients[k] for _, f, _ in seeds_fitted])
         naive = np.array([f.coefficients[k] for _, _, f in seeds_fitted])
@@ -119,13 +120,14 @@ def test_naive_fit_is_biased_where_the_selection_aware_one_is_not(seeds_fitted):
 
 
 def test_bootstrap_over_groups_is_seeded_and_agrees_with_the_hessian(seeds_fitted):
-    """The bootstrap over groups repeats with its seed, and its spread of a is of the
-    Hessian error's size (within a factor 2 with 12 draws; common practice)."""
+    """The bootstrap over groups repeats with its seed (a shorter run is the same first
+    draws), and its spread of a is of the Hessian error's size (within a factor 2 with 10
+    draws; common practice)."""
     sample, best, _ = seeds_fitted[0]
     model = best.model
-    one = rf.bootstrap_plane(sample, model, 12, seed=3, best=best)
-    two = rf.bootstrap_plane(sample, model, 12, seed=3, best=best)
-    np.testing.assert_array_equal(one, two)
+    one = rf.bootstrap_plane(sample, model, 10, seed=3, best=best)
+    two = rf.bootstrap_plane(sample, model, 2, seed=3, best=best)
+    np.testing.assert_array_equal(one[:2], two)
     assert 0.5 < one[:, 0].std(ddof=1) / best.coefficient_errors[0] < 2.0
 
 

@@ -321,12 +321,8 @@ def residuals(sample, fit) -> np.ndarray:
     return rf.plane_residuals(sample, fit) if isinstance(sample, rf.PlaneSample) else rf.residuals(sample, fit)
 
 
-def summary(sample, result: dict, reason: np.ndarray, name: str) -> dict:
-    """The fit report's numbers (summary JSON)."""
-    best, boot = result["fit"], result["bootstrap"]
-    res = residuals(sample, best)
-    if isinstance(sample, rf.PlaneSample):
-        return _plane_summary(sample, result, reason, name, res)
+def _group_rows(sample, best, res, residual_key: str) -> list[dict]:
+    """Per group of the fit: members, fitted modulus, reference, mean residual."""
     groups = []
     for g, gname in enumerate(sample.group_names):
         m = sample.group == g
@@ -334,7 +330,17 @@ def summary(sample, result: dict, reason: np.ndarray, name: str) -> dict:
                        "mu_err": float(best.group_mu_err[g]), "fixed": bool(not best.group_free[g]),
                        "ref_mu": None if not np.isfinite(sample.ref_mu[g]) else float(sample.ref_mu[g]),
                        "ref_err": None if not np.isfinite(sample.ref_err[g]) else float(sample.ref_err[g]),
-                       "mean_residual": float(res[m].mean()) if m.any() else None})
+                       residual_key: float(res[m].mean()) if m.any() else None})
+    return groups
+
+
+def summary(sample, result: dict, reason: np.ndarray, name: str) -> dict:
+    """The fit report's numbers (summary JSON)."""
+    best, boot = result["fit"], result["bootstrap"]
+    res = residuals(sample, best)
+    if isinstance(sample, rf.PlaneSample):
+        return _plane_summary(sample, result, reason, name, res)
+    groups = _group_rows(sample, best, res, "mean_residual")
     out = {"calibration": name, "form": best.model.form, "degree": best.model.degree,
            "pivot": best.model.pivot, "curvature_break": best.model.curvature_break,
            "magnitude_pivot": best.model.magnitude_pivot if best.model.form == "inverse" else None,
@@ -688,14 +694,7 @@ def build_plane_sample(q: Mapping, group_ids, mu_ref, mu_ref_err, settings: Mapp
 
 def _plane_summary(sample: rf.PlaneSample, result: dict, reason, name: str, res) -> dict:
     best, boot = result["fit"], result["bootstrap"]
-    groups = []
-    for g, gname in enumerate(sample.group_names):
-        m = sample.group == g
-        groups.append({"group": str(gname), "n": int(m.sum()), "mu": float(best.group_mu[g]),
-                       "mu_err": float(best.group_mu_err[g]), "fixed": bool(not best.group_free[g]),
-                       "ref_mu": None if not np.isfinite(sample.ref_mu[g]) else float(sample.ref_mu[g]),
-                       "ref_err": None if not np.isfinite(sample.ref_err[g]) else float(sample.ref_err[g]),
-                       "mean_residual_dex": float(res[m].mean()) if m.any() else None})
+    groups = _group_rows(sample, best, res, "mean_residual_dex")
     out = {"calibration": name, "form": "plane", "pivot": best.model.pivot_s, "pivot_log_ie": best.model.pivot_i,
            "rows": int(reason.size), "galaxies_fitted": int(sample.s.size), "groups": int(sample.n_groups),
            "groups_with_reference": int(np.isfinite(sample.ref_mu).sum()),

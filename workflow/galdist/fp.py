@@ -452,10 +452,9 @@ def log_bivariate_upper(h, k, rho):
     hh, kk = np.where(swap, kk, hh), np.where(swap, hh, kk)
     root = np.sqrt(1.0 - rr * rr)
 
-    def g(x):  # log integrand
-        return -0.5 * x * x - 0.5 * math.log(2.0 * math.pi) + log_ndtr((rr[..., None] * x - kk[..., None]) / root[..., None]
-                                                                        if np.ndim(x) > np.ndim(hh) else
-                                                                        (rr * x - kk) / root)
+    def g(x):  # the log integrand; x (m,) or (m, nodes)
+        pad = (slice(None),) + (None,) * (np.ndim(x) - 1)
+        return -0.5 * x * x - 0.5 * math.log(2.0 * math.pi) + log_ndtr((rr[pad] * x - kk[pad]) / root[pad])
 
     step = 1e-4
     slope = np.maximum(-(g(hh + step) - g(hh)) / step, 0.5)
