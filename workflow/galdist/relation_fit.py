@@ -37,10 +37,26 @@ forward and bivariate fits; Schechter 1980, AJ 85, 801, from memory). The bivari
 normalises at the galaxy's x with the vertical width sqrt((1 + M'^2) V_perp) (galdist's
 choice). The naive fit is the same likelihood without the truncation.
 
+The Fundamental Plane (``fit_plane``; Magoulas et al. 2012, MNRAS 427, 245, from
+memory for the likelihood; the 3-D Gaussian description goes back to Saglia et al.
+2001 and Colless et al. 2001, MNRAS 321, 277, from memory): galaxy n of group g is
+x_n = (r0_n + 0.2 mu_g, s_n, i_n), r the physical log R_e at the group's distance; the
+galaxies are a 3-D Gaussian of mean (r_bar, s_bar, i_bar), r_bar on the plane r = a (s -
+s_p) + b (i - i_p) + c, and covariance Sigma = sum_k sigma_k^2 v_k v_k^T along the
+plane's normal v1 and two in-plane axes (``fp.plane_covariance``); each galaxy's density
+is N(x_n; x_bar, Sigma + E_n), E_n its measurement covariance, divided by the
+probability f_n that a galaxy of that density passes the sample's cuts (s >= s_min; a
+magnitude limit, at the group's distance a bound on 2 r + i) at the group's distance
+(``fp.log_selection``, the gaussian estimator's own selection term). Free: a, b, c,
+s_bar, i_bar, ln sigma_1..3 and the free moduli. The start is at given slopes
+(``PlaneModel.start_slopes``): a regression of r on (s, i) can start in another
+principal plane of the Gaussian and stay there.
+
 Errors: the covariance of every parameter is the inverse of the numerical Hessian of
 -ln L at the optimum; ``bootstrap`` refits resamples of the groups (seeded).
 
-Pure functions of numpy arrays; nothing here reads files or knows a method.
+Pure functions of numpy arrays (the plane's Gaussian and selection from ``galdist.fp``);
+nothing here reads files.
 """
 
 from __future__ import annotations
