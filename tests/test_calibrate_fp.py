@@ -169,11 +169,15 @@ def fp_observables(seed, terms, n_groups=8, per_group=60, noise=True):
     return inputs, group, mu_true, (r, s, i)
 
 
-@pytest.fixture(scope="module")
-def fitted_file(tmp_path_factory):
+SELECTIONS = [{"predictor_min": 2.1}, {"predictor_min": 2.1, "mag_limit": 10.5}]
+
+
+@pytest.fixture(scope="module", params=SELECTIONS, ids=["sigma_cut", "sigma_cut_and_mag_limit"])
+def fitted_file(tmp_path_factory, request):
     """The calibrate stage's steps on forward-generated observables cut at log sigma_0 >=
-    2.1: corrected quantities, sample, fit (no bootstrap), the calibration file."""
-    cfg = config(selection={"predictor_min": 2.1})
+    2.1, and also at a total magnitude of 10.5 (about half the sample): corrected
+    quantities, sample, fit (no bootstrap), the calibration file."""
+    cfg = config(selection=request.param)
     ph = calibrate.placeholder(cfg)
     settings = calibrate.method_settings(cfg, ph)
     inputs, group, mu_true, _ = fp_observables(7, fp.plane_terms(ph))
@@ -187,7 +191,7 @@ def fitted_file(tmp_path_factory):
                                       [{"path": "x", "sha256": "0" * 64}])
     path = tmp_path_factory.mktemp("fpfit") / "fp_round_trip.yaml"
     path.write_text(calibrate.calibration_yaml(data))
-    return {"cfg": cfg, "settings": settings, "inputs": inputs, "group": group, "mu_true": mu_true, "q": q,
+    return {"cfg": cfg, "selection": request.param, "settings": settings, "inputs": inputs, "group": group, "mu_true": mu_true, "q": q,
             "sample": sample, "reason": reason, "result": result, "path": path, "ids": ids}
 
 
@@ -226,6 +230,9 @@ def test_fitted_file_is_a_complete_fp_calibration(fitted_file):
     assert cal.valid_range == (pytest.approx(f["sample"].s.min()), pytest.approx(f["sample"].s.max()))
     assert terms.log_ie_range == (pytest.approx(f["sample"].i.min()), pytest.approx(f["sample"].i.max()))
     assert f["sample"].s.min() >= 2.1 and (f["reason"] == "log sigma_0 below selection.predictor_min").any()
+    if "mag_limit" in f["selection"]:
+        assert f["q"]["observed"][f["reason"] == ""].max() <= 10.5
+        assert (f["reason"] == "fainter than selection.mag_limit").sum() > 100
     truth = np.array([A, B, truth_c(cal.pivot, terms.pivot_log_ie)])
     assert np.all(np.abs(cal.coefficients - truth) < 3 * np.sqrt(np.diag(cal.covariance)))
     assert data["fitted_from"]["selection_in_likelihood"] is True
@@ -235,7 +242,7 @@ def test_round_trip_through_fp_distance(fitted_file):
     """fp_distance with the fitted file gives back the distances: (plane estimator) every
     fitted galaxy's fp_mu is its group's fitted modulus minus 5 times its residual from
     the plane (fp_mu = 5 log10(D_L / 10 pc) with D_A = R_pred / theta; derived), and
-    (gaussian estimator, told the sample's sigma cut) the posterior modes of eta at the
+    (gaussian estimator, told the sample's cuts) the posterior modes of eta at the
     injected distances average to zero within 3 errors of their mean."""
     f = fitted_file
     cal = load_calibration(f["path"])
@@ -250,7 +257,7 @@ def test_round_trip_through_fp_distance(fitted_file):
             true = f["mu_true"][int(f["sample"].group_names[g][1:])]
             assert abs(best.group_mu[g] - true) < 3 * best.group_mu_err[g]
     gauss = dataclasses.replace(f["settings"], estimator="gaussian", selection_log_sigma_min=2.1,
-                                allow_extrapolation=True)
+                                selection_mag_limit=f["selection"].get("mag_limit"), allow_extrapolation=True)
     inputs = {**f["inputs"], "z_cmb": f["inputs"]["z_helio"], "mu_z": f["mu_true"][f["group"]]}
     out = fp.fp_distance(inputs, cal, gauss)
     mode = out["fp_eta_post_mode"][used]
