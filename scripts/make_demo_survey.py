@@ -13,8 +13,9 @@ ingest flag.
     python scripts/make_demo_survey.py OUT.parquet --calibration-sample [--seed ...]
 
 ``--calibration-sample`` writes instead the invented calibration sample of the
-calibrate target (``galdist.demo_calibration``): discs in groups, some with reference
-distance moduli, cut at an apparent-magnitude limit.
+calibrate target (``galdist.demo_calibration``): discs and early types (FP inputs) in
+groups, some with reference distance moduli, the discs cut at an apparent-magnitude
+limit, the early types in total magnitude and log sigma_0.
 """
 
 from __future__ import annotations

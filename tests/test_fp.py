@@ -129,6 +129,27 @@ def test_bivariate_orthant_probabilities():
         assert bivariate_upper(h, k, rho) == pytest.approx(direct, abs=2e-6)
 
 
+def test_log_orthant_probability_in_the_far_tails():
+    """ln P(X > h, Y > k) keeps its digits where the Owen's-T difference has none (the
+    plane fit's selection term needs it): against adaptive quadrature of the conditional
+    integral int_h^inf phi(x) Phi((rho x - k) / sqrt(1 - rho^2)) dx (common practice),
+    relative 1e-9, and equal to bivariate_upper's log where that is well above 1e-9."""
+    from scipy.integrate import quad
+    from scipy.stats import norm
+
+    from galdist.fp import log_bivariate_upper
+
+    for h, k, rho in ((6.0, 6.0, -0.3), (2.0, 2.0, -0.9), (7.0, -1.0, -0.5), (9.0, 0.5, 0.3), (-1.0, 7.0, 0.2)):
+        a, b = (h, k) if h >= k else (k, h)  # integrate over the more extreme variable
+        direct = quad(lambda x: norm.pdf(x) * norm.cdf((rho * x - b) / math.sqrt(1 - rho * rho)), a, np.inf,
+                      epsabs=0, epsrel=1e-12, limit=200)[0]
+        assert direct < 1e-11  # the far tail, below the 1e-9 where the integral takes over
+        assert log_bivariate_upper(h, k, rho) == pytest.approx(math.log(direct), rel=1e-9)
+    grid = np.array([[0.4, -1.1, 0.6], [1.2, 1.9, 0.3], [2.5, 3.0, 0.5]])
+    np.testing.assert_allclose(log_bivariate_upper(grid[:, 0], grid[:, 1], grid[:, 2]),
+                               np.log(bivariate_upper(grid[:, 0], grid[:, 1], grid[:, 2])), rtol=1e-12)
+
+
 def test_plane_covariance_axes():
     # Magoulas et al. 2012: v1 = (1, -a, -b)/norm is the plane's normal, Sigma's eigenvector of
     # variance sigma_1^2; the three variances are sigma_1..3^2 (from memory)

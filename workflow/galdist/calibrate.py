@@ -5,13 +5,23 @@ The sample goes through the same ingest, extinction and K stages as a survey; th
 module takes those stage columns and asks the method's own module for the corrected
 quantities (Tully-Fisher: log W^i and the magnitude corrected for Galactic and
 internal extinction and K, by ``tully_fisher.tully_fisher_distance``; SBF: the
-dereddened colour and fluctuation magnitude, by ``sbf.sbf_distance``), evaluated with a
+dereddened colour and fluctuation magnitude, by ``sbf.sbf_distance``; FP: s = log
+sigma_0 (aperture-corrected), i = log <I_e> (corrected for extinction, K and the
+(1 + z)^4 dimming) and the size, by ``fp.plane_coordinates``), evaluated with a
 neutral placeholder calibration of the run's band and system. Their errors and the
 correlation of the two (the axis-ratio error moves both log W^i and the internal
 extinction; E(B-V) moves both SBF quantities) follow from the same functions by
-central differences. ``galdist.relation_fit`` fits them; ``calibration_yaml`` writes
-the result in the calibration schema, which ``tully_fisher.calibration`` /
-``sbf.calibration`` then accept by path.
+central differences; the FP's measurement covariance of (r, s, i) is fp's own.
+``galdist.relation_fit`` fits them; ``calibration_yaml`` writes the result in the
+calibration schema, which the method's stage then accepts by path.
+
+FP sizes. A galaxy's physical size at its group's distance modulus mu_g (a reference
+modulus, or fitted) is r = log10(theta_e D_A) in kpc with the angular-diameter distance
+D_A = D_L / (1 + z_helio)^2, D_L = 10^(0.2 mu_g - 5) Mpc: the reciprocity
+``fp.fp_distance`` inverts with the same observed redshift, so a fitted plane gives
+the group's modulus back. ``fp.plane_coordinates`` evaluated at mu = 0 gives r0, and
+r = r0 + 0.2 mu_g. The sizes are then in kpc at the reference moduli's distance scale,
+independent of H0 (``conventions.zero_point_h0``: null).
 """
 
 from __future__ import annotations
@@ -29,7 +39,7 @@ from .calibration import Calibration
 from .conventions import run_extinction_convention
 
 #: the methods and forms the calibration target fits
-METHODS = ("tully_fisher", "sbf")
+METHODS = ("tully_fisher", "sbf", "fp")
 #: Method bits that keep a galaxy out of the fit (its inputs are unusable)
 EXCLUDING = F.Method.MISSING_INPUT | F.Method.LOW_INCLINATION
 
@@ -50,6 +60,8 @@ def placeholder(config: Mapping) -> Calibration:
                   covariance=np.zeros((1, 1)), scatter=0.0, valid_range=(-50.0, 50.0),
                   reference={"authors": "", "year": 0, "journal": ""}, provenance="placeholder",
                   band=of_band(band) or section["band"])
+    if method == "fp":
+        return _fp_placeholder(config, common)
     if method == "tully_fisher":
         from .passbands import canonical
         from .tully_fisher import INTERNAL_EXTINCTION_GAMMA
@@ -69,7 +81,16 @@ def method_settings(config: Mapping, cal: Calibration):
     from .methods import REGISTRY
 
     spec = REGISTRY[config["calibrate"]["method"]]
-    return dataclasses.replace(spec.check(config, cal), mc_draws=0, allow_extrapolation=True)
+    settings = spec.check(config, cal)
+    if spec.name == "fp":  # the plane chain only: no distance, no survey selection
+        settings = dataclasses.replace(settings, estimator="plane", selection_log_sigma_min=None,
+                                       selection_mag_limit=None, malmquist=False)
+    return dataclasses.replace(settings, mc_draws=0, allow_extrapolation=True)
+
+
+def form_of(settings: Mapping) -> str:
+    """The ``calibrate.form``, null meaning the method's own: plane for FP, else forward."""
+    return settings["form"] or ("plane" if settings["method"] == "fp" else "forward")
 
 
 # ----------------------------------------------------------- corrected quantities
@@ -79,6 +100,8 @@ def corrected(method: str, inputs: Mapping[str, np.ndarray], cal: Calibration, s
     applies to, their errors, the x-y error covariance and the method's flags."""
     if method == "tully_fisher":
         return _tf_corrected(inputs, cal, settings)
+    if method == "fp":
+        return _fp_corrected(inputs, cal, settings)
     return _sbf_corrected(inputs, cal, settings)
 
 
@@ -174,6 +197,25 @@ def _small_free_groups(gid, used, mu_ref, minimum: int) -> np.ndarray:
     return ((members < minimum) & ~has_ref)[codes]
 
 
+def _groups_of_used(reason, gid, mu_ref, mu_ref_err, settings: Mapping):
+    """Leave out small free groups (their reason set in place); (used, group_references
+    of the used rows)."""
+    # a free group's modulus rests on its members alone: a few members near the limit let
+    # the truncated likelihood push it away without bound (their density piles up at the
+    # limit as mu grows), so small groups without a reference modulus are left out
+    used = reason == ""
+    small = _small_free_groups(gid, used, np.asarray(mu_ref, float), settings["min_group_members"])
+    minimum = settings["min_group_members"]
+    reason[used & small] = f"group without reference modulus has fewer than {minimum} usable members"
+    used = reason == ""
+    return used, group_references(np.where(used, gid, "").astype(str)[used], np.asarray(mu_ref, float)[used],
+                                  np.asarray(mu_ref_err, float)[used])
+
+
+def _no_group(gid) -> np.ndarray:
+    return np.array([g is None or str(g).strip() == "" for g in gid], dtype=bool)
+
+
 def build_sample(q: Mapping, group_ids, mu_ref, mu_ref_err, settings: Mapping):
     """The fit's ``relation_fit.Sample`` from ``corrected``'s columns and the group
     columns, and a per-row reason a galaxy is left out ('' = used).
@@ -185,7 +227,7 @@ def build_sample(q: Mapping, group_ids, mu_ref, mu_ref_err, settings: Mapping):
     """
     n = q["x"].size
     gid = np.asarray(group_ids, dtype=object)
-    no_group = np.array([g is None or str(g).strip() == "" for g in gid], dtype=bool)
+    no_group = _no_group(gid)
     reason = np.full(n, "", dtype=object)
     bad_flags = F.has(q["flags"], EXCLUDING)
     unusable = ~(np.isfinite(q["x"]) & np.isfinite(q["y"]) & np.isfinite(q["x_err"]) & np.isfinite(q["y_err"]))
@@ -204,16 +246,7 @@ def build_sample(q: Mapping, group_ids, mu_ref, mu_ref_err, settings: Mapping):
         hi = q.get("hi_flux", np.full(n, np.nan))
         reason[(reason == "") & ~(hi > 0)] = "no HI flux (selection.hi_flux_limit is set)"
         reason[(reason == "") & ~(hi >= hi_limit)] = "below selection.hi_flux_limit"
-    # a free group's modulus rests on its members alone: a few members near the limit let
-    # the truncated likelihood push it away without bound (their density piles up at the
-    # limit as mu grows), so small groups without a reference modulus are left out
-    used = reason == ""
-    small = _small_free_groups(gid, used, np.asarray(mu_ref, float), settings["min_group_members"])
-    minimum = settings["min_group_members"]
-    reason[used & small] = f"group without reference modulus has fewer than {minimum} usable members"
-    used = reason == ""
-    names, codes, ref, err = group_references(np.where(used, gid, "").astype(str)[used],
-                                              np.asarray(mu_ref, float)[used], np.asarray(mu_ref_err, float)[used])
+    used, (names, codes, ref, err) = _groups_of_used(reason, gid, mu_ref, mu_ref_err, settings)
     if sel["mag_limit"] is not None:
         y_limit = y_limit_all[used]
     if sel["predictor_min"] is not None:
@@ -229,20 +262,29 @@ def build_sample(q: Mapping, group_ids, mu_ref, mu_ref_err, settings: Mapping):
     return sample, reason
 
 
-def model_for(settings: Mapping, method: str, sample: rf.Sample) -> rf.Model:
+def model_for(settings: Mapping, method: str, sample, start_slopes=None):
     """The ``relation_fit.Model`` of the ``calibrate`` section; a null pivot is 2.5 for
     log W^i (as the shipped Tully-Fisher files) and the sample's median colour rounded to
-    0.05 for SBF; a null magnitude pivot the median absolute magnitude rounded to 0.1."""
+    0.05 for SBF; a null magnitude pivot the median absolute magnitude rounded to 0.1.
+    FP: a ``relation_fit.PlaneModel`` pivoted at the sample's median s (or ``pivot``) and
+    median i, rounded to 0.01, its search started at ``start_slopes`` (a, b) if given."""
+    if method == "fp":
+        sel = settings["selection"]
+        pivot = settings["pivot"]
+        pivot = round(float(np.median(sample.s)), 2) if pivot is None else float(pivot)
+        extra = {} if start_slopes is None else {"start_slopes": tuple(float(v) for v in start_slopes)}
+        return rf.PlaneModel(pivot, round(float(np.median(sample.i)), 2),
+                             selection=sel["mag_limit"] is not None or sel["predictor_min"] is not None, **extra)
     pivot = settings["pivot"]
     if pivot is None:
         pivot = 2.5 if method == "tully_fisher" else round(float(np.median(sample.x)) * 20) / 20
     mp = settings["magnitude_pivot"]
-    if mp is None and settings["form"] == "inverse":
+    if mp is None and form_of(settings) == "inverse":
         first = rf.fit(sample, rf.Model("forward", pivot=pivot, selection=False), covariance=False)
         mp = round(float(np.median(sample.y - first.group_mu[sample.group])) * 10) / 10
     sel = settings["selection"]
     hi = sel.get("hi_flux_limit") is not None
-    return rf.Model(settings["form"], degree=settings["degree"], pivot=float(pivot),
+    return rf.Model(form_of(settings), degree=settings["degree"], pivot=float(pivot),
                     magnitude_pivot=float(mp or 0.0), curvature_break=settings["curvature_break"],
                     selection=sel["mag_limit"] is not None or sel["predictor_min"] is not None or hi,
                     hi_flux=hi)
@@ -250,24 +292,37 @@ def model_for(settings: Mapping, method: str, sample: rf.Sample) -> rf.Model:
 
 # --------------------------------------------------------------------- the fit
 
-def fit_sample(sample: rf.Sample, model: rf.Model, n_bootstrap: int, seed: int) -> dict:
+def fit_sample(sample, model, n_bootstrap: int, seed: int) -> dict:
     """Selection-aware and naive fits, the bootstrap over groups; plain numbers."""
+    if isinstance(sample, rf.PlaneSample):
+        best = rf.fit_plane(sample, model)
+        plain = rf.fit_plane(sample, rf.naive(model)) if model.selection else best
+        boot = (rf.bootstrap_plane(sample, model, n_bootstrap, seed, best=best) if n_bootstrap
+                else np.empty((0, 0)))
+        return {"fit": best, "naive": plain, "bootstrap": boot}
     best = rf.fit(sample, model)
     plain = rf.fit(sample, rf.naive(model)) if model.selection else best
     boot = rf.bootstrap(sample, model, n_bootstrap, seed, best=best) if n_bootstrap else np.empty((0, 0))
     return {"fit": best, "naive": plain, "bootstrap": boot}
 
 
-def _fit_numbers(f: rf.Fit) -> dict:
-    return {"coefficients": f.coefficients.tolist(), "errors": f.coefficient_errors.tolist(),
-            "covariance": f.covariance.tolist(), "scatter": f.scatter, "scatter_err": f.scatter_err,
-            "neg_log_likelihood": f.neg_log_like, "selection_in_likelihood": f.model.selection}
+def _fit_numbers(f) -> dict:
+    out = {"coefficients": f.coefficients.tolist(), "errors": f.coefficient_errors.tolist(),
+           "covariance": f.covariance.tolist(), "scatter": f.scatter, "scatter_err": f.scatter_err,
+           "neg_log_likelihood": f.neg_log_like, "selection_in_likelihood": f.model.selection}
+    if isinstance(f, rf.PlaneFit):
+        out |= {"centre_log_sigma_log_ie": f.centre.tolist(), "centre_err": f.centre_err.tolist(),
+                "sigmas": f.sigmas.tolist(), "sigmas_err": f.sigmas_err.tolist()}
+    return out
 
 
-def summary(sample: rf.Sample, result: dict, reason: np.ndarray, name: str) -> dict:
-    """The fit report's numbers (summary JSON)."""
-    best, boot = result["fit"], result["bootstrap"]
-    res = rf.residuals(sample, best)
+def residuals(sample, fit) -> np.ndarray:
+    """Per fitted galaxy: magnitude residual (mag), or for FP r - r_plane (dex)."""
+    return rf.plane_residuals(sample, fit) if isinstance(sample, rf.PlaneSample) else rf.residuals(sample, fit)
+
+
+def _group_rows(sample, best, res, residual_key: str) -> list[dict]:
+    """Per group of the fit: members, fitted modulus, reference, mean residual."""
     groups = []
     for g, gname in enumerate(sample.group_names):
         m = sample.group == g
@@ -275,7 +330,17 @@ def summary(sample: rf.Sample, result: dict, reason: np.ndarray, name: str) -> d
                        "mu_err": float(best.group_mu_err[g]), "fixed": bool(not best.group_free[g]),
                        "ref_mu": None if not np.isfinite(sample.ref_mu[g]) else float(sample.ref_mu[g]),
                        "ref_err": None if not np.isfinite(sample.ref_err[g]) else float(sample.ref_err[g]),
-                       "mean_residual": float(res[m].mean()) if m.any() else None})
+                       residual_key: float(res[m].mean()) if m.any() else None})
+    return groups
+
+
+def summary(sample, result: dict, reason: np.ndarray, name: str) -> dict:
+    """The fit report's numbers (summary JSON)."""
+    best, boot = result["fit"], result["bootstrap"]
+    res = residuals(sample, best)
+    if isinstance(sample, rf.PlaneSample):
+        return _plane_summary(sample, result, reason, name, res)
+    groups = _group_rows(sample, best, res, "mean_residual")
     out = {"calibration": name, "form": best.model.form, "degree": best.model.degree,
            "pivot": best.model.pivot, "curvature_break": best.model.curvature_break,
            "magnitude_pivot": best.model.magnitude_pivot if best.model.form == "inverse" else None,
@@ -296,8 +361,10 @@ def summary(sample: rf.Sample, result: dict, reason: np.ndarray, name: str) -> d
 
 # ------------------------------------------------------------ the calibration file
 
-def calibration_data(config: Mapping, sample: rf.Sample, best: rf.Fit, name: str, catalogs: list[dict]) -> dict:
+def calibration_data(config: Mapping, sample, best, name: str, catalogs: list[dict]) -> dict:
     """The fitted relation as calibration-file data (``workflow/schemas/calibration.schema.yaml``)."""
+    if isinstance(best, rf.PlaneFit):
+        return _plane_calibration_data(config, sample, best, name, catalogs)
     cfg = config["calibrate"]
     method = cfg["method"]
     ph = placeholder(config)
@@ -356,9 +423,11 @@ def calibration_yaml(data: dict) -> str:
 
 # --------------------------------------------------------------------------- report
 
-def report_figure(sample: rf.Sample, result: dict, path, xlabel: str) -> None:
+def report_figure(sample, result: dict, path, xlabel: str) -> None:
     """The fit report: relation with data (both fits), residuals against predictor and
     against group modulus (the signature of a selection bias), per-group offsets."""
+    if isinstance(sample, rf.PlaneSample):
+        return _plane_report_figure(sample, result, path)
     import matplotlib
 
     matplotlib.use("Agg")
@@ -492,23 +561,35 @@ def run_stage(config: Mapping, files: Mapping[str, str], out: Mapping[str, str])
     section = config[method]
     ph = placeholder(config)
     settings = method_settings(config, ph)
-    wanted = spec.stage_columns(section)
+    # stages the calibrate target does not run (the redshift stage, which FP's eta uses)
+    wanted = {stage: c for stage, c in spec.stage_columns(section).items() if stage in files}
     others = {stage: files[stage] for stage in wanted if stage != "ingest"}
     cols, _ = io.read_shard(files["ingest"], wanted.get("ingest", []) + ["galaxy_id"], others,
                             {stage: wanted[stage] for stage in others})
+    n = len(cols["galaxy_id"])
+    labels = spec.band_labels(section)
+    for inp in spec.inputs.values():
+        cols.setdefault(inp.column.format(**labels), np.full(n, np.nan))
     inputs = spec.inputs_from(cols, section)
     inputs = {k: v for k, v in inputs.items() if spec.inputs[k].kind != "optional" or np.isfinite(v).any()}
     q = corrected(method, inputs, ph, settings)
     plan = sample_plan(config)
     gid, ref, err = read_group_columns(plan, config)
-    if gid.size != q["x"].size:
-        raise ValueError(f"calibration catalog: {gid.size} rows of group columns, {q['x'].size} ingested rows")
-    sample, reason = build_sample(q, gid, ref, err, cfg)
-    if sample.x.size < 3:
-        raise ValueError(f"calibration sample: only {sample.x.size} usable galaxies; the fit needs more")
-    model = model_for(cfg, method, sample)
+    if gid.size != n:
+        raise ValueError(f"calibration catalog: {gid.size} rows of group columns, {n} ingested rows")
+    plane = method == "fp"
+    sample, reason = (build_plane_sample if plane else build_sample)(q, gid, ref, err, cfg)
+    fitted = sample.s.size if plane else sample.x.size
+    if fitted < (10 if plane else 3):
+        raise ValueError(f"calibration sample: only {fitted} usable galaxies; the fit needs more")
+    start = None
+    if plane:
+        from .calibration import load_calibration
+
+        start = load_calibration(section["calibration"]).coefficients[:2]
+    model = model_for(cfg, method, sample, start)
     result = fit_sample(sample, model, cfg["bootstrap"], cfg["seed"])
-    name = cfg["name"] or f"{spec.prefix}_fitted_{config['run']}".lower().replace("-", "_").replace(".", "_")
+    name = fitted_name(config)
     catalogs = [{"path": str(p), "sha256": io.sha256_of(p)} for p in plan.paths]
     data = calibration_data(config, sample, result["fit"], name, catalogs)
     text = calibration_yaml(data)
@@ -519,15 +600,204 @@ def run_stage(config: Mapping, files: Mapping[str, str], out: Mapping[str, str])
     # every row of the calibration catalog, with what the fit made of it
     used = reason == ""
     res = np.full(used.size, np.nan)
-    res[used] = rf.residuals(sample, result["fit"])
-    table = {"galaxy_id": cols["galaxy_id"], "group_id": gid, "x": q["x"], "y": q["y"], "x_err": q["x_err"],
-             "y_err": q["y_err"], "xy_cov": q["xy_cov"], "used": used,
-             "left_out_because": np.asarray(reason, dtype=object), "residual": res}
-    io.write_parquet(io.table_from_columns(table, {"y": "mag", "y_err": "mag", "residual": "mag"}), out["galaxies"])
+    res[used] = residuals(sample, result["fit"])
+    table = {"galaxy_id": cols["galaxy_id"], "group_id": gid}
+    if plane:
+        e = np.sqrt(np.clip(np.diagonal(q["cov"], axis1=1, axis2=2), 0.0, None))
+        table |= {"log_re_at_mu0": q["r0"], "log_sigma_0": q["s"], "log_ie": q["i"], "log_re_err": e[:, 0],
+                  "log_sigma_0_err": e[:, 1], "log_ie_err": e[:, 2], "observed_mag": q["observed"]}
+        units = {"log_re_at_mu0": "dex(kpc)", "log_sigma_0": "dex(km / s)", "log_ie": "dex(Lsun / pc2)",
+                 "log_re_err": "dex", "log_sigma_0_err": "dex", "log_ie_err": "dex", "observed_mag": "mag",
+                 "residual": "dex"}
+    else:
+        table |= {"x": q["x"], "y": q["y"], "x_err": q["x_err"], "y_err": q["y_err"], "xy_cov": q["xy_cov"]}
+        units = {"y": "mag", "y_err": "mag", "residual": "mag"}
+    table |= {"used": used, "left_out_because": np.asarray(reason, dtype=object), "residual": res}
+    io.write_parquet(io.table_from_columns(table, units), out["galaxies"])
     xlabel = r"$\log_{10} W^i$ (W in km/s)" if method == "tully_fisher" else f"({ph.predictor})$_0$ (mag)"
     with io.atomic_path(out["report"]) as tmp:
         report_figure(sample, result, tmp, xlabel)
     return report
+
+
+# ------------------------------------------------------------- the Fundamental Plane
+
+def _fp_placeholder(config: Mapping, common: dict) -> Calibration:
+    """The FP placeholder: M_sun (defines i) and the aperture terms, with the band and
+    system they hold in, from the run's FP calibration (config ``fp.calibration``)."""
+    from .calibration import load_calibration
+    from .fp import plane_terms
+
+    run_cal = load_calibration(config["fp"]["calibration"])
+    if run_cal.method != "fp":
+        raise ValueError(f"config key 'fp.calibration': {run_cal.name} is a {run_cal.method} calibration; "
+                         "the FP fit takes M_sun and the aperture terms from an FP one")
+    terms = plane_terms(run_cal)
+    plane = {"abs_mag_sun": terms.abs_mag_sun, "aperture_exponent": terms.aperture_exponent,
+             "aperture_fraction": terms.aperture_fraction}
+    common = {**common, "band": run_cal.band, "system": run_cal.system, "covariance": np.zeros((3, 3))}
+    return Calibration(form="plane", predictor="log_sigma", coefficients=np.zeros(3),
+                       text=yaml.safe_dump({"plane": plane}), **common)
+
+
+def _fp_corrected(inputs, cal, settings):
+    """r0 (log R_e in kpc at mu = 0, D_A = D_L / (1 + z_helio)^2), s, i, their measurement
+    covariance (n, 3, 3), the observed total magnitude the sample's limit applies to
+    (fp_mag, or <mu_e> - 2.5 log10(2 pi R_e^2)) and the flags, by ``fp.plane_coordinates``."""
+    from .fp import mean_surface_brightness, plane_coordinates
+
+    z = np.asarray(inputs["z_helio"], dtype=float)
+    given = {k: v for k, v in inputs.items() if k not in ("z_cmb", "mu_z")}
+    q = plane_coordinates({**given, "z_cmb": z, "mu_z": 0.0}, cal, settings)
+    n = q["s"].size
+
+    def rows(key):
+        return np.broadcast_to(np.asarray(inputs.get(key, np.nan), dtype=float), (n,))
+
+    theta = rows("fp_re_arcsec")
+    with np.errstate(invalid="ignore", divide="ignore"):
+        observed = np.where(np.isfinite(rows("fp_mu_e")), rows("fp_mu_e") - mean_surface_brightness(0.0, theta),
+                            rows("fp_mag"))
+    return {"r0": q["r_z"], "s": q["s"], "i": q["i"], "cov": q["cov"], "observed": observed, "flags": q["flags"]}
+
+
+def build_plane_sample(q: Mapping, group_ids, mu_ref, mu_ref_err, settings: Mapping):
+    """The plane fit's ``relation_fit.PlaneSample`` from ``_fp_corrected``'s columns and a
+    per-row reason a galaxy is left out ('' = used).
+
+    ``selection.mag_limit`` applies to the observed total magnitude in the FP band; at
+    the group's modulus mu it is the cut 2 r + i >= u_limit0 + 0.4 mu with u_limit0 =
+    (m - m_lim) / 2.5 + 2 r0 + i (m = const - 2.5 (2 r + i) + mu for fixed extinction,
+    K and z; definitions of i and r). ``selection.predictor_min`` cuts s = log sigma_0.
+    """
+    n = q["s"].size
+    gid = np.asarray(group_ids, dtype=object)
+    reason = np.full(n, "", dtype=object)
+    finite = (np.isfinite(q["r0"]) & np.isfinite(q["s"]) & np.isfinite(q["i"])
+              & np.isfinite(q["cov"]).all(axis=(1, 2)))
+    reason[~finite | F.has(q["flags"], EXCLUDING)] = "input missing or flagged invalid (see the method's flags)"
+    reason[(reason == "") & _no_group(gid)] = "no group_id"
+    sel = settings["selection"]
+    if sel["mag_limit"] is not None:
+        reason[(reason == "") & ~(q["observed"] <= sel["mag_limit"])] = "fainter than selection.mag_limit"
+    if sel["predictor_min"] is not None:
+        reason[(reason == "") & ~(q["s"] >= sel["predictor_min"])] = "log sigma_0 below selection.predictor_min"
+    used, (names, codes, ref, err) = _groups_of_used(reason, gid, mu_ref, mu_ref_err, settings)
+    u_limit0 = None
+    if sel["mag_limit"] is not None:
+        u_limit0 = ((q["observed"] - sel["mag_limit"]) / 2.5 + 2.0 * q["r0"] + q["i"])[used]
+    s_min = None if sel["predictor_min"] is None else float(sel["predictor_min"])
+    sample = rf.PlaneSample(q["r0"][used], q["s"][used], q["i"][used], q["cov"][used], codes, ref, err,
+                            s_min, u_limit0, tuple(names))
+    return sample, reason
+
+
+def _plane_summary(sample: rf.PlaneSample, result: dict, reason, name: str, res) -> dict:
+    best, boot = result["fit"], result["bootstrap"]
+    groups = _group_rows(sample, best, res, "mean_residual_dex")
+    out = {"calibration": name, "form": "plane", "pivot": best.model.pivot_s, "pivot_log_ie": best.model.pivot_i,
+           "rows": int(reason.size), "galaxies_fitted": int(sample.s.size), "groups": int(sample.n_groups),
+           "groups_with_reference": int(np.isfinite(sample.ref_mu).sum()),
+           "rows_left_out": {str(r): int((reason == r).sum()) for r in sorted(set(reason) - {""})},
+           "predictor_range": [float(sample.s.min()), float(sample.s.max())],
+           "log_ie_range": [float(sample.i.min()), float(sample.i.max())],
+           "selection_aware": _fit_numbers(best), "naive": _fit_numbers(result["naive"]),
+           "group_moduli": groups, "residual_rms": float(np.sqrt(np.mean(res ** 2))),
+           "normal_is_thinnest_axis": best.normal_is_thinnest}
+    if boot.size:
+        cov = np.cov(boot[:, :-1], rowvar=False)
+        out["bootstrap"] = {"draws": int(boot.shape[0]), "covariance": cov.tolist(),
+                            "errors": np.sqrt(np.diag(cov)).tolist(),
+                            "scatter_err": float(np.std(boot[:, -1], ddof=1))}
+    return out
+
+
+def _plane_calibration_data(config: Mapping, sample: rf.PlaneSample, best: rf.PlaneFit, name: str,
+                            catalogs: list[dict]) -> dict:
+    """The fitted plane in the shipped FP files' format (``fp.PlaneTerms``)."""
+    from .fp import plane_terms
+
+    ph = placeholder(config)
+    terms = plane_terms(ph)
+    model = best.model
+    cov = 0.5 * (best.covariance + best.covariance.T)
+    sel = config["calibrate"]["selection"]
+    data = {"name": name, "method": "fp", "form": "plane", "band": ph.band, "system": ph.system,
+            "predictor": "log_sigma", "pivot": float(model.pivot_s),
+            "coefficients": [float(c) for c in best.coefficients],
+            "coefficient_errors": [float(e) for e in np.sqrt(np.clip(np.diag(cov), 0.0, None))],
+            "covariance": [[float(v) for v in row] for row in cov],
+            "scatter": float(best.scatter), "zero_point_error": 0.0,
+            "valid_range": [float(sample.s.min()), float(sample.s.max())],
+            "conventions": {"extinction": run_extinction_convention(config), "zero_point_h0": None},
+            "fit": "gaussian_3d",
+            "reference": {"authors": "galdist", "year": datetime.date.today().year,
+                          "journal": "fitted from the user's calibration sample (not published)",
+                          "where": ", ".join(c["path"] for c in catalogs)},
+            "provenance": "fitted by galdist",
+            "fitted_from": {"catalogs": catalogs, "galaxies": int(sample.s.size), "groups": int(sample.n_groups),
+                            "groups_with_reference": int(np.isfinite(sample.ref_mu).sum()),
+                            "selection_in_likelihood": bool(model.selection),
+                            "config": {k: config[k] for k in ("calibrate", "fp", "bands", "extinction", "kcorr")}},
+            "plane": {"abs_mag_sun": terms.abs_mag_sun, "pivot_log_ie": float(model.pivot_i),
+                      "log_ie_range": [float(sample.i.min()), float(sample.i.max())],
+                      "aperture_exponent": terms.aperture_exponent, "aperture_fraction": terms.aperture_fraction,
+                      "gaussian": {"mean_log_sigma": float(best.centre[0]), "mean_log_ie": float(best.centre[1]),
+                                   "sigmas": [float(v) for v in best.sigmas]}}}
+    cuts = [f"log sigma_0 >= {sel['predictor_min']}" if sel["predictor_min"] is not None else "",
+            f"total magnitude <= {sel['mag_limit']}" if sel["mag_limit"] is not None else ""]
+    cuts = " and ".join(c for c in cuts if c)
+    data["notes"] = (
+        "Fitted by galdist's calibrate target: the 3-D Gaussian of (r, s, i) by maximum likelihood with each "
+        "galaxy's measurement covariance (Magoulas et al. 2012, MNRAS 427, 245)"
+        + (f", the sample's selection ({cuts}) modelled as a truncation" if model.selection else "")
+        + ". r = log10 R_e in kpc at the group distances (D_A = D_L / (1 + z)^2 from the reference or fitted "
+        "moduli), so the sizes do not assume an H0. coefficient_errors and covariance are the ML (Hessian) "
+        "ones and include the reference moduli's errors; the bootstrap over groups is in the fit report. "
+        "scatter = sigma_1 sqrt(1 + a^2 + b^2) (dex in r). valid_range and log_ie_range span the fitted "
+        "galaxies; abs_mag_sun and the aperture terms are those of the run's FP calibration.")
+    return data
+
+
+def _plane_report_figure(sample: rf.PlaneSample, result: dict, path) -> None:
+    """The FP fit report: the plane edge-on (both fits), residuals against s and against
+    the group modulus (the signature of a selection bias), per-group offsets."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    best, plain = result["fit"], result["naive"]
+    r = sample.r0 + 0.2 * best.group_mu[sample.group]
+    pred = best.log_radius(sample.s, sample.i)
+    res = r - pred
+    fig, ax = plt.subplots(2, 2, figsize=(11, 8.5))
+    ax[0, 0].plot(pred, r, ".", ms=3, color="0.4")
+    lim = [min(pred.min(), r.min()), max(pred.max(), r.max())]
+    ax[0, 0].plot(lim, lim, "C0-", label="selection-aware" if best.model.selection else "fit")
+    if plain is not best:
+        ax[0, 0].plot(plain.log_radius(sample.s, sample.i), r, "x", ms=2, color="C3", alpha=0.4,
+                      label="naive (no selection)")
+    ax[0, 0].set(xlabel=r"$a (s - s_p) + b (i - i_p) + c$", ylabel=r"$\log_{10} R_e$ (kpc) at the group distance",
+                 title="plane, edge-on")
+    ax[0, 0].legend()
+    ax[0, 1].plot(sample.s, res, ".", ms=3, color="0.3")
+    ax[0, 1].axhline(0, color="C0")
+    ax[0, 1].set(xlabel=r"$\log_{10} \sigma_0$ (km/s)", ylabel="residual in r (dex)", title="residuals against s")
+    ax[1, 0].plot(best.group_mu[sample.group], res, ".", ms=3, color="0.3")
+    ax[1, 0].axhline(0, color="C0")
+    ax[1, 0].set(xlabel="group distance modulus (mag)", ylabel="residual in r (dex)",
+                 title="residuals against distance")
+    offsets = np.array([res[sample.group == g].mean() for g in range(sample.n_groups)])
+    counts = np.bincount(sample.group, minlength=sample.n_groups)
+    ax[1, 1].errorbar(np.arange(sample.n_groups), offsets, yerr=best.scatter / np.sqrt(np.maximum(counts, 1)),
+                      fmt="o", ms=4)
+    ax[1, 1].axhline(0, color="C0")
+    ax[1, 1].set_xticks(np.arange(sample.n_groups), [str(g) for g in sample.group_names], rotation=90, fontsize=6)
+    ax[1, 1].set(ylabel="mean residual (dex)", title="per-group offsets")
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
 
 
 # ------------------------------------------------------------- workflow and checks
@@ -553,6 +823,43 @@ def used_config(config: Mapping) -> dict:
     return {k: config[k] for k in ("calibrate", method, "bands", "columns", "units", "extinction", "kcorr", "run")}
 
 
+def _plane_option_problems(cfg: Mapping, form: str) -> list[str]:
+    """The calibrate options a Fundamental-Plane fit does not take."""
+    out = []
+    if form != "plane":
+        out.append(f"config key 'calibrate.form': {form} is not a Fundamental-Plane fit; set plane or null "
+                   "(the 3-D Gaussian of Magoulas et al. 2012)")
+    if cfg["degree"] != 1:
+        out.append("config key 'calibrate.degree': the Fundamental Plane is linear; remove the key (or set 1)")
+    for key in ("curvature_break", "magnitude_pivot"):
+        if cfg[key] is not None:
+            out.append(f"config key 'calibrate.{key}': not used by the Fundamental Plane; remove it")
+    if cfg["selection"]["hi_flux_limit"] is not None:
+        out.append("config key 'calibrate.selection.hi_flux_limit': Tully-Fisher only; the Fundamental Plane's "
+                   "sample is cut by selection.mag_limit (total magnitude) and selection.predictor_min "
+                   "(log sigma_0)")
+    return out
+
+
+def _plane_column_problems(config: Mapping) -> list[str]:
+    """The FP needs <mu_e> or the total magnitude in every calibration file."""
+    from .catalog import describe, detect_format, source_files
+
+    names = config["columns"]
+    mu_e, mag = names.get("fp_mu_e", "fp_mu_e"), names.get("fp_mag", "fp_mag")
+    paths, fmt = sample_paths(config)
+    problems = []
+    for path in paths:
+        f = detect_format(path, fmt)
+        for one in source_files(path, f):
+            have = describe(one, f)
+            if mu_e not in have and mag not in have:
+                problems.append(f"calibration catalog {one}: the Fundamental Plane needs column '{mu_e}' (mean "
+                                f"surface brightness within R_e) or '{mag}' (total magnitude); add one, or name "
+                                "yours in config key 'columns' (fp_mu_e / fp_mag)")
+    return problems
+
+
 def check(config: Mapping, buildable=frozenset()) -> None:
     """Everything the calibrate target would refuse, before any job (ConfigError lines
     naming the key): form and method, the method's bands and settings, the extinction
@@ -562,8 +869,13 @@ def check(config: Mapping, buildable=frozenset()) -> None:
     from .errors import ConfigError, IngestError
 
     cfg = config["calibrate"]
-    method, form = cfg["method"], cfg["form"]
+    method, form = cfg["method"], form_of(config["calibrate"])
     problems = []
+    if method == "fp":
+        problems += _plane_option_problems(cfg, form)
+    elif form == "plane":
+        problems.append(f"config key 'calibrate.form': plane is the Fundamental Plane's form; {method} takes "
+                        "forward, inverse (Tully-Fisher) or bivariate")
     if form == "inverse" and method != "tully_fisher":
         problems.append("config key 'calibrate.form': the inverse form is Tully-Fisher only")
     if form == "inverse" and (cfg["degree"] != 1 or cfg["curvature_break"] is not None):
@@ -574,7 +886,8 @@ def check(config: Mapping, buildable=frozenset()) -> None:
                         "quadratic term above a break)")
     if method == "sbf" and cfg["curvature_break"] is not None:
         problems.append("config key 'calibrate.curvature_break': Tully-Fisher only; SBF takes calibrate.degree")
-    if cfg["selection"]["hi_flux_limit"] is not None and (method != "tully_fisher" or form != "forward"):
+    if cfg["selection"]["hi_flux_limit"] is not None and method != "fp" and (method != "tully_fisher"
+                                                                            or form != "forward"):
         problems.append("config key 'calibrate.selection.hi_flux_limit': modelled for the Tully-Fisher "
                         "forward form only (calibrate.method tully_fisher, calibrate.form forward)")
     if run_extinction_convention(config) is None:
@@ -594,7 +907,7 @@ def check(config: Mapping, buildable=frozenset()) -> None:
     if not problems:
         try:
             method_settings(config, placeholder(config))
-        except ValueError as exc:
+        except (ValueError, ConfigError) as exc:
             problems.append(f"calibrate ({method}): {exc}")
     paths, _ = sample_paths(config)
     missing = [p for p in paths if not Path(p).exists() and p not in buildable]
@@ -605,5 +918,7 @@ def check(config: Mapping, buildable=frozenset()) -> None:
         except IngestError as exc:
             problems.append(f"calibration catalog: {exc}")
         problems += group_column_problems(config)
+        if method == "fp":
+            problems += _plane_column_problems(config)
     if problems:
         raise ConfigError("calibration sample:\n  - " + "\n  - ".join(problems))

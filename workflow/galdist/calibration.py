@@ -50,7 +50,7 @@ class Calibration:
     #: assumes (None: independent of H0)
     extinction_convention: str = "sf11"
     zero_point_h0: float | None = None
-    #: how the coefficients were fitted: forward, inverse, bivariate or unknown
+    #: how the coefficients were fitted: forward, inverse, bivariate, gaussian_3d or unknown
     fit: str = "unknown"
     #: the keys only this calibration's method has (calibration schema, $defs/method_keys)
     extra: dict = field(default_factory=dict)

@@ -1,11 +1,16 @@
-"""The invented demo calibration sample: Tully-Fisher discs in groups of the Corvid
-Reach, a few with reference distance moduli, cut at an apparent-magnitude limit.
+"""The invented demo calibration sample: Tully-Fisher discs and Fundamental-Plane early
+types in groups of the Corvid Reach, a few with reference distance moduli, the discs
+cut at an apparent-magnitude limit, the early types at a limit on their total
+magnitude in the FP band and a cut in log sigma_0.
 
 Invented data for the demo of the calibrate target only. Members of a group share one
 cosmological distance (and a group peculiar velocity plus an internal spread); the
 observables are generated forward by the demo survey's generator (``galdist.demo``),
 through the run's extinction law, K-correction templates and Tully-Fisher calibration,
 so fitting the sample recovers that calibration's slope, zero point and scatter.
+The early types follow the FP calibration's plane the same way (``demo._observe``);
+they carry no HI, so the Tully-Fisher fit leaves them out (and the FP fit the discs),
+and they come from their own random stream, so the discs do not depend on them.
 Reference moduli (standing in for Cepheid or TRGB distances) are the true modulus plus
 an error drawn with the stated size. Galaxies are named ``CRC-<number>``.
 """
@@ -35,12 +40,17 @@ class CalibrationDemo:
     field_cz_range: tuple = (400.0, 1500.0)
     reference_err: float = 0.08  # mag
     mag_limit: float = 13.0  # apparent magnitude limit in the Tully-Fisher band
+    early_per_group: int = 30  # early types per group (FP inputs), before their cuts
+    fp_mag_limit: float = 10.2  # limit on the total magnitude in the FP band (fp_mu_e, fp_re_arcsec)
+    fp_log_sigma_min: float = 2.15  # cut on log10 sigma_0 (aperture-corrected, km/s)
 
 
 def make_calibration_sample(seed: int, settings: demo.DemoSettings | None = None,
                             shape: CalibrationDemo | None = None) -> pa.Table:
     """A deterministic invented calibration sample (canonical columns plus group_id,
-    mu_ref, mu_ref_err), limited at ``shape.mag_limit`` in the Tully-Fisher band."""
+    mu_ref, mu_ref_err): discs limited at ``shape.mag_limit`` in the Tully-Fisher band,
+    then early types (where the config has the FP band) limited at ``shape.fp_mag_limit``
+    in total magnitude and ``shape.fp_log_sigma_min`` in log sigma_0."""
     settings = settings or demo.settings_from_config()
     shape = shape or CalibrationDemo()
     rng = np.random.default_rng(seed)
@@ -81,7 +91,44 @@ def make_calibration_sample(seed: int, settings: demo.DemoSettings | None = None
     for b in conf["bands"]:
         order += [f"mag_{b}", f"mag_{b}_err"]
     order += ["w50", "w50_err", "axis_ratio", "axis_ratio_err", "hi_flux", "mu_ref", "mu_ref_err"]
-    return pa.table({k: np.asarray(cols[k])[keep] for k in order})
+    discs = {k: np.asarray(cols[k])[keep] for k in order}
+    early = _early_types(seed, shape, conf, ra0, dec0, cz_group, v_pec[: g * m].reshape(g, m).mean(axis=1),
+                         mu_ref[: g * m : m], ref_err[: g * m : m], n + 1)
+    if early is None:
+        return pa.table(discs)
+    order += list(demo.FP_COLUMNS)
+    size = discs["galaxy_id"].size
+    discs |= {k: np.full(size, np.nan) for k in demo.FP_COLUMNS}
+    return pa.table({k: np.concatenate([discs[k], early[k]]) for k in order})
+
+
+def _early_types(seed, shape, conf, ra0, dec0, cz_group, v_group, mu_ref, ref_err, first_id):
+    """The groups' early types with FP inputs (no HI), from their own random stream, cut
+    at the FP total-magnitude limit and the log sigma_0 cut; None without the FP band."""
+    from . import fp
+    from .calibration import load_calibration
+
+    if not shape.early_per_group or conf["fp"]["band"] not in conf["bands"]:
+        return None
+    rng = np.random.default_rng([seed, 1])
+    g, m = len(ra0), shape.early_per_group
+    n = g * m
+    ra = np.repeat(ra0, m) + rng.normal(0.0, 0.7, n)
+    dec = np.clip(np.repeat(dec0, m) + rng.normal(0.0, 0.7, n), -89.0, 89.0)
+    v_pec = np.repeat(v_group, m) + rng.normal(0.0, shape.group_spread_kms, n)
+    cols = demo._observe(rng, ra, dec, np.repeat(cz_group, m) / demo.C_KMS, v_pec, np.zeros(n, dtype=bool), conf)
+    for k in ("w50", "w50_err", "axis_ratio", "axis_ratio_err", "hi_flux"):
+        cols[k] = np.full(n, np.nan)
+    cols["group_id"] = np.repeat([f"{PREFIX}-G{k:02d}" for k in range(g)], m).astype(object)
+    cols["mu_ref"], cols["mu_ref_err"] = np.repeat(mu_ref, m), np.repeat(ref_err, m)
+    cols["galaxy_id"] = np.array([f"{PREFIX}-{i:06d}" for i in range(first_id, first_id + n)], dtype=object)
+    terms = fp.plane_terms(load_calibration(conf["fp"]["calibration"]))
+    theta = cols["fp_re_arcsec"]
+    total = cols["fp_mu_e"] - fp.mean_surface_brightness(0.0, theta)
+    s = np.log10(fp.aperture_corrected_sigma(cols["fp_sigma"], cols["fp_aperture_arcsec"], theta,
+                                             terms.aperture_exponent, terms.aperture_fraction))
+    keep = (total <= shape.fp_mag_limit) & (s >= shape.fp_log_sigma_min)
+    return {k: np.asarray(v)[keep] for k, v in cols.items()}
 
 
 def _mu(conf, z_cos):

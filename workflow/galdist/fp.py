@@ -425,6 +425,45 @@ def bivariate_upper(h, k, rho):
     return np.clip(p, 0.0, np.minimum(ndtr(h), ndtr(k)))
 
 
+#: below this the difference of Owen's T terms has lost its digits: integrate instead
+_ORTHANT_FLOOR = 1e-9
+_LAGUERRE = np.polynomial.laguerre.laggauss(40)
+
+
+def log_bivariate_upper(h, k, rho):
+    """ln P(X > h, Y > k), standard normals of correlation rho, |rho| < 1, accurate in
+    the tails: ``bivariate_upper`` where it is above 1e-9; below, where its difference
+    of Owen's T terms has lost its digits, the integral over the more extreme variable,
+    ln int_h^inf phi(x) Phi((rho x - k) / sqrt(1 - rho^2)) dx (definitions), by 40-point
+    Gauss-Laguerre quadrature in x - h scaled by the integrand's log-slope at h."""
+    from scipy.special import log_ndtr, logsumexp
+
+    h, k, rho = np.broadcast_arrays(np.asarray(h, dtype=float), np.asarray(k, dtype=float),
+                                    np.asarray(rho, dtype=float))
+    shape = h.shape
+    h, k, rho = h.ravel(), k.ravel(), rho.ravel()
+    with np.errstate(divide="ignore"):
+        out = np.log(bivariate_upper(h, k, rho))
+    low = ~(out > math.log(_ORTHANT_FLOOR)) & np.isfinite(h) & np.isfinite(k) & np.isfinite(rho)
+    if not low.any():
+        return out.reshape(shape)
+    hh, kk, rr = h[low], k[low], rho[low]
+    swap = kk > hh
+    hh, kk = np.where(swap, kk, hh), np.where(swap, hh, kk)
+    root = np.sqrt(1.0 - rr * rr)
+
+    def g(x):  # the log integrand; x (m,) or (m, nodes)
+        pad = (slice(None),) + (None,) * (np.ndim(x) - 1)
+        return -0.5 * x * x - 0.5 * math.log(2.0 * math.pi) + log_ndtr((rr[pad] * x - kk[pad]) / root[pad])
+
+    step = 1e-4
+    slope = np.maximum(-(g(hh + step) - g(hh)) / step, 0.5)
+    u, w = _LAGUERRE
+    x = hh[..., None] + u / slope[..., None]
+    out[low] = logsumexp(np.log(w) + u + g(x), axis=-1) - np.log(slope)
+    return out.reshape(shape)
+
+
 # ------------------------------------------------------------------------ the chain
 
 def _h_term(terms: PlaneTerms, st: FPSettings) -> float:
@@ -463,7 +502,7 @@ def _chain(cal, terms, st, *, sigma, theta, w, from_mag, aperture, a_gal, k_corr
             "log_theta": log_theta, "log_da": log_da, "mu": mu, "r_z": r_z, "eta": log_da_z - log_da}
 
 
-def _measurement_covariance(a, c, st, alpha):
+def measurement_covariance(a, c, st, alpha):
     """E (n, 3, 3): covariance of (r_z, s, i) from the measurement errors (first order).
 
     Also returns the linear covariance (n, 3, 3) of (sigma, theta, w) used by the
@@ -490,6 +529,21 @@ def _measurement_covariance(a, c, st, alpha):
     # A and K enter <mu_e>_0 with a minus sign, i with +0.4; independent of the rest
     e[:, 2, 2] += 0.16 * (a["a_gal_err"] ** 2 + a["k_corr_err"] ** 2)
     return e, lin
+
+
+def plane_coordinates(inputs: dict, calibration: Calibration, settings: FPSettings | None = None) -> dict:
+    """(r_z, s, i) of every row with their measurement covariance, for fitting a plane.
+
+    The same checks and correction chain as ``fp_distance``; r_z is log10 R_e (kpc) at
+    the distance ``inputs['mu_z']`` gives (with ``z_cmb``). Returns {"r_z", "s", "i"
+    (n,), "cov" (n, 3, 3) (``measurement_covariance``), "flags" (fp_flags before any
+    range or distance), "missing" (bool, unusable inputs)}.
+    """
+    st = settings or FPSettings()
+    terms, _, a, out_flags, missing_row = _prepare(inputs, calibration, st)
+    c = _chain(calibration, terms, st, **_chain_kwargs(a))
+    e, _ = measurement_covariance(a, c, st, terms.aperture_exponent)
+    return {"r_z": c["r_z"], "s": c["s"], "i": c["i"], "cov": e, "flags": out_flags, "missing": missing_row}
 
 
 def _psd_root(cov):
@@ -531,25 +585,36 @@ def _gauss_model(cal, terms, st, x_z, e, ell, coeffs=None):
                   u2_bar=2.0 * mean[:, 0] + mean[:, 2], s_cut=st.selection_log_sigma_min, ell=ell)
 
 
-def _log_selection(mod: _Model, eta):
-    """log f(eta), (n, m): probability that a galaxy at eta passes the selection."""
+def log_selection(v, s_bar, u2_bar, s_cut, ell, eta=0.0):
+    """log P(selected), shape of ``eta`` (n, m) or (n,) for a scalar ``eta``: the
+    probability that a galaxy drawn from N(mean, v) (v (n, 3, 3) on (r, s, i), mean with
+    s = ``s_bar`` and 2 r + i = ``u2_bar`` + 2 eta) passes the cut s >= ``s_cut`` and the
+    magnitude limit 2 r + i >= ``ell`` (None: no such cut). The two together are a
+    bivariate-normal orthant probability (``bivariate_upper``). Used by the gaussian
+    estimator and by the plane fit (galdist.relation_fit.fit_plane)."""
     from scipy.special import log_ndtr
 
-    if mod.s_cut is None and mod.ell is None:
-        return np.zeros(eta.shape)
-    v = mod.v
+    eta = np.asarray(eta, dtype=float)
+    col = (lambda x: x[:, None]) if eta.ndim == 2 else (lambda x: x)
+    if s_cut is None and ell is None:
+        return np.zeros(eta.shape if eta.ndim == 2 else np.shape(s_bar))
     sd1 = np.sqrt(v[:, 1, 1])
     var2 = 4.0 * v[:, 0, 0] + 4.0 * v[:, 0, 2] + v[:, 2, 2]
     sd2 = np.sqrt(var2)
-    if mod.ell is not None:
-        kk = (mod.ell[:, None] - (mod.u2_bar[:, None] + 2.0 * eta)) / sd2[:, None]
-    if mod.s_cut is None:
+    if ell is not None:
+        kk = (col(ell) - (col(u2_bar) + 2.0 * eta)) / col(sd2)
+    if s_cut is None:
         return log_ndtr(-kk)
-    hh = ((mod.s_cut - mod.s_bar) / sd1)[:, None]
-    if mod.ell is None:
-        return np.broadcast_to(log_ndtr(-hh), eta.shape)
-    rho = ((2.0 * v[:, 0, 1] + v[:, 2, 1]) / (sd1 * sd2))[:, None]
-    return np.log(np.maximum(bivariate_upper(hh, kk, rho), 1e-300))
+    hh = col((s_cut - s_bar) / sd1)
+    if ell is None:
+        return np.broadcast_to(log_ndtr(-hh), np.broadcast(eta, hh).shape)
+    rho = col((2.0 * v[:, 0, 1] + v[:, 2, 1]) / (sd1 * sd2))
+    return log_bivariate_upper(hh, kk, rho)
+
+
+def _log_selection(mod: _Model, eta):
+    """log f(eta), (n, m): probability that a galaxy at eta passes the selection."""
+    return log_selection(mod.v, mod.s_bar, mod.u2_bar, mod.s_cut, mod.ell, eta)
 
 
 def _log_posterior(mod: _Model, eta):
@@ -774,7 +839,7 @@ def fp_distance(inputs: dict, calibration: Calibration, settings: FPSettings | N
     else:
         blank = missing_row | ~known | out_of_range
 
-    e, lin = _measurement_covariance(a, c, st, alpha)
+    e, lin = measurement_covariance(a, c, st, alpha)
     coef_var = np.maximum(_coefficient_variance(calibration, terms, s, i), 0.0)
     nan = np.full(n, np.nan)
     post_std = nan.copy()
@@ -931,7 +996,7 @@ def eta_posterior(inputs: dict, calibration: Calibration, settings: FPSettings |
         raise ValueError("eta_grid must be a 1-d, finite, strictly increasing array of >= 3 values")
     terms, n, a, out_flags, missing_row = _prepare(inputs, calibration, st)
     c = _chain(calibration, terms, st, **_chain_kwargs(a))
-    e, _ = _measurement_covariance(a, c, st, terms.aperture_exponent)
+    e, _ = measurement_covariance(a, c, st, terms.aperture_exponent)
     s, i = c["s"], c["i"]
     use = ~missing_row & np.isfinite(s) & np.isfinite(i) & np.isfinite(c["r_z"])
     in_range = calibration.in_range(s)

@@ -37,10 +37,26 @@ forward and bivariate fits; Schechter 1980, AJ 85, 801, from memory). The bivari
 normalises at the galaxy's x with the vertical width sqrt((1 + M'^2) V_perp) (galdist's
 choice). The naive fit is the same likelihood without the truncation.
 
+The Fundamental Plane (``fit_plane``; Magoulas et al. 2012, MNRAS 427, 245, from
+memory for the likelihood; the 3-D Gaussian description goes back to Saglia et al.
+2001 and Colless et al. 2001, MNRAS 321, 277, from memory): galaxy n of group g is
+x_n = (r0_n + 0.2 mu_g, s_n, i_n), r the physical log R_e at the group's distance; the
+galaxies are a 3-D Gaussian of mean (r_bar, s_bar, i_bar), r_bar on the plane r = a (s -
+s_p) + b (i - i_p) + c, and covariance Sigma = sum_k sigma_k^2 v_k v_k^T along the
+plane's normal v1 and two in-plane axes (``fp.plane_covariance``); each galaxy's density
+is N(x_n; x_bar, Sigma + E_n), E_n its measurement covariance, divided by the
+probability f_n that a galaxy of that density passes the sample's cuts (s >= s_min; a
+magnitude limit, at the group's distance a bound on 2 r + i) at the group's distance
+(``fp.log_selection``, the gaussian estimator's own selection term). Free: a, b, c,
+s_bar, i_bar, ln sigma_1..3 and the free moduli. The start is at given slopes
+(``PlaneModel.start_slopes``): a regression of r on (s, i) can start in another
+principal plane of the Gaussian and stay there.
+
 Errors: the covariance of every parameter is the inverse of the numerical Hessian of
 -ln L at the optimum; ``bootstrap`` refits resamples of the groups (seeded).
 
-Pure functions of numpy arrays; nothing here reads files or knows a method.
+Pure functions of numpy arrays (the plane's Gaussian and selection from ``galdist.fp``);
+nothing here reads files.
 """
 
 from __future__ import annotations
@@ -209,15 +225,22 @@ class _Layout:
         return p[self.n_coeff + 1: self.n_coeff + 1 + self.n_hi]
 
 
-def _layout(sample: Sample, model: Model) -> _Layout:
-    has_ref = np.isfinite(sample.ref_mu)
+def _free_groups(ref_mu, ref_err):
+    """(free, fixed_mu): the groups whose modulus is a parameter (all but those with a
+    reference of error 0) and the fixed moduli; refuses a sample without any reference."""
+    has_ref = np.isfinite(ref_mu)
     if not has_ref.any():
         raise ValueError("no group has a reference distance modulus (mu_ref): the zero point cannot be "
                          "fitted; give at least one group an independent modulus")
-    free = ~(has_ref & (np.nan_to_num(sample.ref_err, nan=0.0) == 0.0))
+    free = ~(has_ref & (np.nan_to_num(ref_err, nan=0.0) == 0.0))
+    return free, np.where(has_ref, ref_mu, 0.0)
+
+
+def _layout(sample: Sample, model: Model) -> _Layout:
+    free, fixed = _free_groups(sample.ref_mu, sample.ref_err)
     if model.with_hi and (sample.s is None or sample.s_limit is None):
         raise ValueError("an HI-flux limit needs the HI magnitudes and their limit (Sample.s, s_limit)")
-    return _Layout(model.n_coeff, free, np.where(has_ref, sample.ref_mu, 0.0), 4 if model.with_hi else 0)
+    return _Layout(model.n_coeff, free, fixed, 4 if model.with_hi else 0)
 
 
 def log_bivariate_normal_cdf(h, k, rho) -> np.ndarray:
@@ -366,15 +389,8 @@ def _hessian(f, p, h):
     return out
 
 
-def fit(sample: Sample, model: Model, covariance: bool = True, start: np.ndarray | None = None) -> Fit:
-    """The maximum-likelihood relation, intrinsic scatter and group moduli; with
-    ``covariance``, their covariance from the Hessian of -ln L (else NaN errors)."""
-    layout = _layout(sample, model)
-
-    def f(p):
-        return neg_log_likelihood(p, sample, model, layout)
-
-    p0 = _start(sample, model, layout) if start is None else start
+def _minimise(f, p0, covariance: bool):
+    """(optimum, its covariance (inverse Hessian) or None, BFGS's success) of -ln L ``f``."""
     res = optimize.minimize(f, p0, method="BFGS", options={"gtol": 1e-7, "maxiter": 5000})
     p = res.x
     h = 1e-4 * np.maximum(1.0, np.abs(p))
@@ -399,6 +415,19 @@ def fit(sample: Sample, model: Model, covariance: bool = True, start: np.ndarray
             cov_p = np.linalg.inv(hess)
         except np.linalg.LinAlgError:
             cov_p = np.full_like(hess, np.nan)
+    return p, cov_p, bool(res.success)
+
+
+def fit(sample: Sample, model: Model, covariance: bool = True, start: np.ndarray | None = None) -> Fit:
+    """The maximum-likelihood relation, intrinsic scatter and group moduli; with
+    ``covariance``, their covariance from the Hessian of -ln L (else NaN errors)."""
+    layout = _layout(sample, model)
+
+    def f(p):
+        return neg_log_likelihood(p, sample, model, layout)
+
+    p0 = _start(sample, model, layout) if start is None else start
+    p, cov_p, success = _minimise(f, p0, covariance)
     c, ln_s, mu = layout.unpack(p)
     nc = model.n_coeff
     cov_c = cov_p[:nc, :nc] if cov_p is not None else np.full((nc, nc), np.nan)
@@ -425,7 +454,7 @@ def fit(sample: Sample, model: Model, covariance: bool = True, start: np.ndarray
               "scatter": float(np.exp(ln_sh)), "scatter_err": float(np.exp(ln_sh) * e[2]),
               "correlation": float(np.tanh(z)), "correlation_err": float((1 - np.tanh(z) ** 2) * e[3])}
     return Fit(model, c.copy(), cov_c, s_native * to_mag, s_err_native * to_mag, s_native, mu, mu_err,
-               layout.free, float(f(p)), bool(res.success or cov_p is not None), p, cov_p, hi)
+               layout.free, float(f(p)), bool(success or cov_p is not None), p, cov_p, hi)
 
 
 def naive(model: Model) -> Model:
@@ -439,13 +468,9 @@ def bootstrap(sample: Sample, model: Model, n: int, seed: int, best: Fit | None 
     ``seed``). A resample without a group of reference modulus cannot fix the zero point
     and is drawn again."""
     rng = np.random.default_rng(seed)
-    has_ref = np.isfinite(sample.ref_mu)
     out = np.empty((n, model.n_coeff + 1))
     for k in range(n):
-        while True:
-            chosen = rng.integers(0, sample.n_groups, sample.n_groups)
-            if has_ref[chosen].any():
-                break
+        chosen = _draw_groups(rng, sample.ref_mu)
         sub = sample.take_groups(chosen)
         start = None
         if best is not None:
@@ -457,6 +482,221 @@ def bootstrap(sample: Sample, model: Model, n: int, seed: int, best: Fit | None 
     return out
 
 
+def _draw_groups(rng, ref_mu) -> np.ndarray:
+    """Group codes drawn with replacement, again until one has a reference modulus."""
+    has_ref = np.isfinite(ref_mu)
+    while True:
+        chosen = rng.integers(0, ref_mu.size, ref_mu.size)
+        if has_ref[chosen].any():
+            return chosen
+
+
 def residuals(sample: Sample, result: Fit) -> np.ndarray:
     """Magnitude residuals y - mu_g - M(x) of every galaxy about the fitted relation."""
     return sample.y - result.group_mu[sample.group] - result.magnitude(sample.x)
+
+
+# ------------------------------------------------------------ the Fundamental Plane
+
+@dataclass(frozen=True)
+class PlaneSample:
+    """Early types in groups for a plane fit, row per galaxy.
+
+    ``r0`` is log10 R_e (kpc) the galaxy would have at distance modulus 0, so at its
+    group's modulus mu_g it is r0 + 0.2 mu_g (the angular-diameter distance is
+    D_L / (1 + z)^2 with the galaxy's own z: ``galdist.calibrate`` says how); ``s``,
+    ``i`` the corrected log sigma_0 and log <I_e>; ``cov`` (n, 3, 3) the measurement
+    covariance of (r, s, i); groups as in ``Sample``. Selection: ``s_min``, the cut
+    s >= s_min (None: none), and ``u_limit0``, a magnitude limit written per galaxy as
+    2 r + i >= u_limit0 + 0.4 mu_g (None: none).
+    """
+
+    r0: np.ndarray
+    s: np.ndarray
+    i: np.ndarray
+    cov: np.ndarray
+    group: np.ndarray
+    ref_mu: np.ndarray
+    ref_err: np.ndarray
+    s_min: float | None = None
+    u_limit0: np.ndarray | None = None
+    group_names: tuple = ()
+
+    @property
+    def n_groups(self) -> int:
+        return int(self.ref_mu.size)
+
+    def take_groups(self, chosen: np.ndarray) -> "PlaneSample":
+        """As ``Sample.take_groups``."""
+        rows = [np.flatnonzero(self.group == g) for g in chosen]
+        codes = np.concatenate([np.full(r.size, new) for new, r in enumerate(rows)])
+        rows = np.concatenate(rows)
+        return PlaneSample(self.r0[rows], self.s[rows], self.i[rows], self.cov[rows], codes,
+                           self.ref_mu[chosen], self.ref_err[chosen], self.s_min,
+                           None if self.u_limit0 is None else self.u_limit0[rows])
+
+
+@dataclass(frozen=True)
+class PlaneModel:
+    """The plane r = a (s - pivot_s) + b (i - pivot_i) + c with the 3-D Gaussian of
+    Magoulas et al. 2012; ``selection`` False is the naive fit."""
+
+    pivot_s: float = 0.0
+    pivot_i: float = 0.0
+    selection: bool = True
+    form: str = "plane"
+    #: where the search starts: typical published slopes (Magoulas et al. 2012 J band:
+    #: a = 1.52, b = -0.89, from memory); galdist.calibrate passes the run's calibration's
+    start_slopes: tuple = (1.5, -0.9)
+
+
+@dataclass
+class PlaneFit:
+    """A fitted plane: ``coefficients`` [a, b, c] with their ``covariance``, the
+    Gaussian's ``centre`` (s_bar, i_bar) and widths ``sigmas`` (sigma_1 normal to the
+    plane, sigma_2, sigma_3 along v2, v3; dex) with errors, ``scatter`` = sigma_1
+    sqrt(1 + a^2 + b^2) (dex in r), the group moduli as ``Fit``'s."""
+
+    model: PlaneModel
+    coefficients: np.ndarray
+    covariance: np.ndarray
+    centre: np.ndarray
+    centre_err: np.ndarray
+    sigmas: np.ndarray
+    sigmas_err: np.ndarray
+    scatter: float
+    scatter_err: float
+    group_mu: np.ndarray
+    group_mu_err: np.ndarray
+    group_free: np.ndarray
+    neg_log_like: float
+    converged: bool
+    params: np.ndarray = field(repr=False)
+    param_cov: np.ndarray | None = field(default=None, repr=False)
+
+    @property
+    def coefficient_errors(self) -> np.ndarray:
+        return np.sqrt(np.clip(np.diag(self.covariance), 0.0, None))
+
+    @property
+    def normal_is_thinnest(self) -> bool:
+        """sigma_1 is the smallest width, as a plane's normal must be. A sample cut hard in
+        s (at the Gaussian's centre, in tests) can make another principal plane of the
+        Gaussian the likelihood's maximum; the calibrate target reports it."""
+        return bool(self.sigmas[0] <= min(self.sigmas[1], self.sigmas[2]))
+
+    def log_radius(self, s, i) -> np.ndarray:
+        """r of the plane at (s, i)."""
+        a, b, c = self.coefficients
+        return a * (np.asarray(s, float) - self.model.pivot_s) + b * (np.asarray(i, float) - self.model.pivot_i) + c
+
+
+#: plane parameters before the free moduli: a, b, c, s_bar, i_bar, ln sigma_1..3
+_PLANE_SHAPE = 8
+
+
+def _plane_layout(sample: PlaneSample) -> _Layout:
+    # _Layout's "coefficients" are the first seven plane parameters, its ln s is ln sigma_3
+    free, fixed = _free_groups(sample.ref_mu, sample.ref_err)
+    return _Layout(_PLANE_SHAPE - 1, free, fixed)
+
+
+def plane_neg_log_likelihood(p: np.ndarray, sample: PlaneSample, model: PlaneModel, layout: _Layout) -> float:
+    """-ln L of the 3-D Gaussian plane (Magoulas et al. 2012, eq. for the likelihood of
+    galaxy n: N(x_n; x_bar, Sigma + E_n) / f_n, from memory): x_n = (r0_n + 0.2 mu_g, s_n,
+    i_n), x_bar = (r_bar, s_bar, i_bar) with r_bar on the plane, Sigma from (a, b,
+    sigma_1..3) (``fp.plane_covariance``), E_n the measurement covariance, f_n the
+    probability that a galaxy of that density passes the sample's cuts at its group's
+    distance (``fp.log_selection``; 1 for the naive fit)."""
+    from .fp import log_selection, plane_covariance
+
+    a, b, c, s_bar, i_bar = p[:5]
+    sig = np.exp(p[5:_PLANE_SHAPE])
+    mu = layout.fixed_mu.copy()
+    mu[layout.free] = p[_PLANE_SHAPE:]
+    mu_i = mu[sample.group]
+    r_bar = a * (s_bar - model.pivot_s) + b * (i_bar - model.pivot_i) + c
+    d = np.stack([sample.r0 + 0.2 * mu_i - r_bar, sample.s - s_bar, sample.i - i_bar], axis=-1)
+    v = plane_covariance(a, b, sig) + sample.cov
+    quad = np.einsum("ni,ni->n", d, np.linalg.solve(v, d[..., None])[..., 0])
+    nll = 0.5 * np.sum(quad + np.linalg.slogdet(v)[1])
+    if model.selection and (sample.s_min is not None or sample.u_limit0 is not None):
+        n = mu_i.size
+        ell = None if sample.u_limit0 is None else sample.u_limit0 + 0.4 * mu_i
+        nll += np.sum(log_selection(v, np.full(n, s_bar), np.full(n, 2.0 * r_bar + i_bar), sample.s_min, ell))
+    return _finish(nll, sample, layout, mu)
+
+
+def _plane_start(sample: PlaneSample, model: PlaneModel, layout: _Layout) -> np.ndarray:
+    """Start at the model's ``start_slopes`` (a, b): the group moduli from the members'
+    mean r0 - a (s - s_p) - b (i - i_p) (c + 0.2 mu_g; the zero point set by the
+    reference moduli), the Gaussian from the sample's moments about that plane. A
+    regression of r on (s, i) is biased by the scatter and the selection enough to start
+    (and stay) in another principal plane of the Gaussian."""
+    from .fp import plane_axes
+
+    a, b = model.start_slopes
+    g = sample.n_groups
+    counts = np.bincount(sample.group, minlength=g)
+    present = counts > 0
+    has_ref = np.isfinite(sample.ref_mu) & present
+    zero = sample.r0 - a * (sample.s - model.pivot_s) - b * (sample.i - model.pivot_i)
+    inter = np.bincount(sample.group, weights=zero, minlength=g) / np.maximum(counts, 1)
+    c = float(np.mean(inter[has_ref] - 0.2 * sample.ref_mu[has_ref])) if has_ref.any() else 0.0
+    mu = np.where(present, (inter - c) / 0.2, 0.0)
+    mu = np.where(np.isfinite(sample.ref_mu), sample.ref_mu, mu)
+    x = np.stack([sample.r0 + 0.2 * mu[sample.group], sample.s, sample.i], axis=-1)
+    centre = x.mean(axis=0)
+    widths = [max(float(np.std((x - centre) @ v)), 1e-3) for v in plane_axes(a, b)]
+    c_at_centre = centre[0] - a * (centre[1] - model.pivot_s) - b * (centre[2] - model.pivot_i)
+    return np.concatenate([[a, b, c_at_centre, centre[1], centre[2]], np.log(widths), mu[layout.free]])
+
+
+def fit_plane(sample: PlaneSample, model: PlaneModel, covariance: bool = True,
+              start: np.ndarray | None = None) -> PlaneFit:
+    """The maximum-likelihood plane, its Gaussian and the group moduli; with
+    ``covariance``, their covariance from the Hessian of -ln L (else NaN errors)."""
+    layout = _plane_layout(sample)
+
+    def f(p):
+        return plane_neg_log_likelihood(p, sample, model, layout)
+
+    p0 = _plane_start(sample, model, layout) if start is None else start
+    p, cov_p, success = _minimise(f, p0, covariance)
+    cov = cov_p if cov_p is not None else np.full((p.size, p.size), np.nan)
+    a, b = p[0], p[1]
+    sig = np.exp(p[5:_PLANE_SHAPE])
+    norm = np.sqrt(1.0 + a * a + b * b)
+    grad = np.array([sig[0] * a / norm, sig[0] * b / norm, sig[0] * norm])  # d scatter / d(a, b, ln sigma_1)
+    idx = [0, 1, 5]
+    scatter_err = float(np.sqrt(max(grad @ cov[np.ix_(idx, idx)] @ grad, 0.0)))
+    diag = np.sqrt(np.clip(np.diag(cov), 0.0, None))
+    mu = layout.fixed_mu.copy()
+    mu[layout.free] = p[_PLANE_SHAPE:]
+    mu_err = np.zeros(sample.n_groups)
+    mu_err[layout.free] = diag[_PLANE_SHAPE:]
+    return PlaneFit(model, p[:3].copy(), cov[:3, :3].copy(), p[3:5].copy(), diag[3:5], sig, sig * diag[5:8],
+                    float(sig[0] * norm), scatter_err, mu, mu_err, layout.free, float(f(p)),
+                    bool(success or cov_p is not None), p, cov_p)
+
+
+def bootstrap_plane(sample: PlaneSample, model: PlaneModel, n: int, seed: int,
+                    best: PlaneFit | None = None) -> np.ndarray:
+    """As ``bootstrap`` for the plane: columns a, b, c, scatter."""
+    rng = np.random.default_rng(seed)
+    out = np.empty((n, 4))
+    for k in range(n):
+        chosen = _draw_groups(rng, sample.ref_mu)
+        sub = sample.take_groups(chosen)
+        start = None
+        if best is not None:
+            layout = _plane_layout(sub)
+            start = np.concatenate([best.params[:_PLANE_SHAPE], best.group_mu[chosen][layout.free]])
+        one = fit_plane(sub, model, covariance=False, start=start)
+        out[k] = np.append(one.coefficients, one.scatter)
+    return out
+
+
+def plane_residuals(sample: PlaneSample, result: PlaneFit) -> np.ndarray:
+    """r - r_plane(s, i) of every galaxy at its group's fitted modulus (dex)."""
+    return sample.r0 + 0.2 * result.group_mu[sample.group] - result.log_radius(sample.s, sample.i)
