@@ -267,3 +267,59 @@ def test_grid_reaches_a_method_job_only_where_it_computes_likelihoods():
     off["likelihoods"]["write"] = False
     assert all("likelihoods" not in s.used_config(off) for s in methods.REGISTRY.values())
     assert tf.job_stage_columns(config)["redshift"] == ["mu_z"]
+
+
+@pytest.mark.slow
+def test_end_to_end_kinds_and_the_off_switch(tmp_path):
+    """A run with the FP gaussian estimator: every FP row with a distance has its posterior as
+    likelihood, mu_best's is a product where FP enters it, and the summaries agree with the
+    distances. The same run with likelihoods.write false: no companion file (the earlier one
+    removed) and no summary columns."""
+    import json
+    import os
+    import subprocess
+    import sys
+
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from conftest import small_catalog
+
+    cols = small_catalog(200, seed=8)
+    pq.write_table(pa.table(cols), tmp_path / "cat.parquet")
+    env = {k: v for k, v in os.environ.items() if k != "SNAKEMAKE_PROFILE"}
+
+    def run(extra):
+        conf = {"catalog": "cat.parquet", "run": "lk", "shard_rows": 100, "fp": {"estimator": "gaussian"}} | extra
+        (tmp_path / "run.yaml").write_text(json.dumps(conf))
+        result = subprocess.run([sys.executable, "-m", "galdist.cli", "run", "run.yaml", "--cores", "2"],
+                                cwd=tmp_path, env=env, capture_output=True, text=True, timeout=900)
+        assert result.returncode == 0, (result.stdout + result.stderr)[-4000:]
+        return tmp_path / "galdist-results" / "lk"
+
+    out = run({})
+    product = pq.read_table(out / "distances.parquet").to_pandas()
+    lk = pq.read_table(out / "eta_likelihoods.parquet").to_pandas()
+    assert list(lk["galaxy_id"]) == list(product["galaxy_id"])
+    has_fp = np.isfinite(product["fp_mu"].to_numpy())
+    assert has_fp.sum() > 20
+    assert (lk["fp_eta_like_kind"].to_numpy() == np.where(has_fp, likelihood.POSTERIOR, likelihood.NONE)).all()
+    assert set(lk["tf_eta_like_kind"]) <= {likelihood.NONE, likelihood.GAUSSIAN, likelihood.DRAWS}
+    in_best = product["best_method"].str.contains("fp").to_numpy()
+    assert (lk["best_eta_like_kind"].to_numpy()[in_best] == likelihood.PRODUCT).all()
+    shown = np.isfinite(product["fp_eta_mean"].to_numpy())
+    assert shown.sum() > 0.5 * has_fp.sum()
+    # the posterior's mean is fp_mu's eta, (mu_z - fp_mu) / 5 (tests above: to 1e-3 dex), where
+    # the grid's ends (+-0.5 dex) do not cut it (the invented catalog's eta spreads to +-0.3)
+    eta = ((product["mu_z"] - product["fp_mu"]) / 5).to_numpy()
+    near = shown & (np.abs(eta) < 0.15)
+    assert near.sum() > 10
+    np.testing.assert_allclose(product["fp_eta_mean"].to_numpy()[near], eta[near], atol=1e-3)
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["eta_likelihoods"]["kinds"]["fp"][likelihood.KINDS[likelihood.POSTERIOR]] == has_fp.sum()
+
+    out = run({"likelihoods": {"write": False}})
+    assert not (out / "eta_likelihoods.parquet").exists()
+    names = pq.read_schema(out / "distances.parquet").names
+    assert not [n for n in names if "_eta_mode" in n or "_eta_p16" in n]
+    assert json.loads((out / "summary.json").read_text())["eta_likelihoods"] is None

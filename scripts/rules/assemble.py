@@ -11,6 +11,8 @@ with logged(snakemake.log[0], "assemble") as log:
     shards = [{"shard": s} | {st: inp[st][i] for st in stages} | {"groups": Path(inp.group_members) / Path(s).name}
               for i, s in enumerate(inp.shards)]
     like_out = dict(snakemake.output.items()).get("likelihoods")  # None: likelihoods.write is false
+    if like_out is None:  # an earlier run's companion file would no longer match the product
+        Path(snakemake.output.distances).with_name("eta_likelihoods.parquet").unlink(missing_ok=True)
     # each method job's eta-likelihood part of each shard, stitched by the assembly
     parts = [{m: inp[f"{m}_likelihood"][i] for m in snakemake.params.methods} for i in range(len(shards))] \
         if like_out else None

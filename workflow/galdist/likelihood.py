@@ -145,7 +145,7 @@ def from_draws(eta_draws, grid: np.ndarray, chunk: int = 64) -> np.ndarray:
     f = np.where(inside, pos - j, 0.0)
     r = np.broadcast_to(np.arange(rows)[:, None], d.shape)
     counts = (np.bincount((r * m + j)[inside], (1.0 - f)[inside], rows * m)
-              + np.bincount((r * m + j + 1)[inside], f[inside], rows * m)).reshape(rows, m)
+              + np.bincount((r * m + j + 1)[inside], f[inside], rows * m)).astype(float).reshape(rows, m)
     with np.errstate(invalid="ignore", divide="ignore"):
         counts /= np.maximum(n, 1)[:, None]
         sd = np.nanstd(d, axis=1, ddof=1)
@@ -329,9 +329,10 @@ class PartReader:
     def __init__(self, path, batch_rows: int = BLOCK_ROWS):
         import pyarrow.parquet as pq
 
-        self._batches = pq.ParquetFile(path).iter_batches(batch_size=batch_rows)
+        pf = pq.ParquetFile(path)
+        self._batches = pf.iter_batches(batch_size=batch_rows)
         self._rows = np.zeros(0, dtype=np.int64)
-        self._curves = np.zeros((0, 0))
+        self._curves = np.zeros((0, pf.schema_arrow.field("eta_like").type.list_size))
         self._kinds = np.zeros(0, dtype=np.uint8)
         self._done = False
 
@@ -345,7 +346,7 @@ class PartReader:
             col = batch.column("eta_like")
             curves = col.flatten().to_numpy(zero_copy_only=False).astype(float).reshape(len(batch), col.type.list_size)
             self._rows = np.concatenate([self._rows, batch.column("row").to_numpy().astype(np.int64)])
-            self._curves = curves if self._curves.size == 0 else np.concatenate([self._curves, curves])
+            self._curves = np.concatenate([self._curves, curves])
             self._kinds = np.concatenate([self._kinds, batch.column("kind").to_numpy()])
 
     def take(self, first: int, end: int):
