@@ -316,7 +316,7 @@ def test_end_to_end_kinds_and_the_off_switch(tmp_path):
     assert near.sum() > 10
     np.testing.assert_allclose(product["fp_eta_mean"].to_numpy()[near], eta[near], atol=1e-3)
     summary = json.loads((out / "summary.json").read_text())
-    assert summary["eta_likelihoods"]["kinds"]["fp"][likelihood.KINDS[likelihood.POSTERIOR]] == has_fp.sum()
+    assert summary["eta_likelihoods"]["kinds"]["fp"]["posterior"] == has_fp.sum()
 
     out = run({"likelihoods": {"write": False}})
     assert not (out / "eta_likelihoods.parquet").exists()

@@ -63,6 +63,8 @@ KINDS = {NONE: "no distance", GAUSSIAN: "analytic Gaussian of mu, mu_err (log-no
          POSTERIOR: "the method's posterior in eta (Fundamental Plane, gaussian estimator)",
          DRAWS: "the method's Monte Carlo draws (their error is not Gaussian in eta)",
          PRODUCT: "normalised product of the likelihoods of the methods in mu_best"}
+#: their short names (summary.json's counts)
+KIND_NAMES = {NONE: "none", GAUSSIAN: "gaussian", POSTERIOR: "posterior", DRAWS: "draws", PRODUCT: "product"}
 #: draws a row needs for its draws to be tested or used
 MIN_DRAWS = 20
 #: the non-Gaussian tests' threshold, in standard errors of a Gaussian sample
@@ -319,6 +321,13 @@ def part_grid(path) -> np.ndarray:
 
     g = json.loads(pq.read_schema(path).metadata[PART_SCHEMA_KEY])
     return np.linspace(g["min"], g["max"], g["n"])
+
+
+def part_rows(path) -> int:
+    """The rows a part file holds."""
+    import pyarrow.parquet as pq
+
+    return pq.read_metadata(path).num_rows
 
 
 class PartReader:
