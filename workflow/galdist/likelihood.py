@@ -338,8 +338,11 @@ class PartReader:
     def __init__(self, path, batch_rows: int = BLOCK_ROWS):
         import pyarrow.parquet as pq
 
+        from .io import iter_rows
+
         pf = pq.ParquetFile(path)
-        self._batches = pf.iter_batches(batch_size=batch_rows)
+        # a row group at a time (ParquetFile.iter_batches keeps what it has read until it ends)
+        self._batches = iter_rows(path, None, batch_rows)
         self._rows = np.zeros(0, dtype=np.int64)
         self._curves = np.zeros((0, pf.schema_arrow.field("eta_like").type.list_size))
         self._kinds = np.zeros(0, dtype=np.uint8)
@@ -352,7 +355,7 @@ class PartReader:
             except StopIteration:
                 self._done = True
                 break
-            col = batch.column("eta_like")
+            col = batch.column("eta_like").combine_chunks()
             curves = col.flatten().to_numpy(zero_copy_only=False).astype(float).reshape(len(batch), col.type.list_size)
             self._rows = np.concatenate([self._rows, batch.column("row").to_numpy().astype(np.int64)])
             self._curves = np.concatenate([self._curves, curves])
