@@ -323,3 +323,21 @@ def test_end_to_end_kinds_and_the_off_switch(tmp_path):
     names = pq.read_schema(out / "distances.parquet").names
     assert not [n for n in names if "_eta_mode" in n or "_eta_p16" in n]
     assert json.loads((out / "summary.json").read_text())["eta_likelihoods"] is None
+
+
+def test_product_off_the_grid_is_zero_or_cut_never_missing():
+    """A product whose mass lies beyond the grid is all zeros where its values underflow, or
+    normalised on the grid and marked cut (no summaries) where they do not; never NaN: NaN
+    means no distance."""
+    grid = likelihood.eta_grid()
+    mu, err, mu_z = [20.0, 30.0, 34.0], [0.1, 0.1, 0.4], [34.0, 34.0, 34.0]   # eta = 2.8, 0.8, 0
+    a = likelihood.gaussian_eta(mu, err, mu_z, grid)
+    use = np.array([True, True, True])
+    prod, cut = likelihood.combine([a, a], [use, np.array([True, True, False])], grid)
+    assert (prod[0] == 0).all() and not cut[0]
+    assert cut[1] and not cut[2] and np.isfinite(prod).all()
+    np.testing.assert_allclose(prod[2], a[2] / np.trapezoid(a[2], grid))
+    s = likelihood.summarize(prod, grid, ~cut)
+    assert np.isnan(s["eta_mean"][:2]).all() and np.isfinite(s["eta_mean"][2])
+    nan_prod, _ = likelihood.combine([np.full((1, len(grid)), np.nan)], [np.array([True])], grid)
+    assert np.isnan(nan_prod).all()

@@ -189,19 +189,23 @@ def combine(likes: list, uses: list, grid: np.ndarray) -> tuple[np.ndarray, np.n
     """The normalised product of the curves ``likes`` (each (rows, grid)) over the ones each
     row uses (``uses``: bool (rows,) per curve): (density on the grid, integral 1 over it;
     cut) where ``cut`` marks rows whose product reaches a grid end (above ``EDGE`` of its
-    peak). NaN rows where no curve is used or a used one is NaN or zero everywhere."""
+    peak). NaN rows where no curve is used or a used one is NaN; zero where the product
+    vanishes on the grid (its mass lies beyond it)."""
     rows = len(uses[0]) if uses else 0
     logsum = np.zeros((rows, len(grid)))
     count = np.zeros(rows, dtype=int)
+    missing = np.zeros(rows, dtype=bool)
     with np.errstate(divide="ignore", invalid="ignore"):
         for like, use in zip(likes, uses):
             logsum += np.where(use[:, None], np.log(like), 0.0)
             count += use
+            missing |= use & ~np.isfinite(like).all(axis=1)
         peak = np.max(logsum, axis=1, keepdims=True)
         p = np.exp(logsum - peak)
         area = np.trapezoid(p, grid, axis=1)
         ok = (count > 0) & np.isfinite(area) & (area > 0) & np.isfinite(peak[:, 0])
         out = np.where(ok[:, None], p / np.where(ok, area, 1.0)[:, None], np.nan)
+    out[(count > 0) & ~missing & ~ok] = 0.0
     cut = ok & ((p[:, 0] > EDGE) | (p[:, -1] > EDGE))
     return out, cut
 
