@@ -10,6 +10,12 @@ with logged(snakemake.log[0], "assemble") as log:
     stages = ["extinction", "kcorr", "redshift", *snakemake.params.methods]
     shards = [{"shard": s} | {st: inp[st][i] for st in stages} | {"groups": Path(inp.group_members) / Path(s).name}
               for i, s in enumerate(inp.shards)]
+    like_out = dict(snakemake.output.items()).get("likelihoods")  # None: likelihoods.write is false
+    if like_out is None:  # an earlier run's companion file would no longer match the product
+        Path(snakemake.output.distances).with_name("eta_likelihoods.parquet").unlink(missing_ok=True)
+    # each method job's eta-likelihood part of each shard, stitched by the assembly
+    parts = [{m: inp[f"{m}_likelihood"][i] for m in snakemake.params.methods} for i in range(len(shards))] \
+        if like_out else None
     grouped, lk = io.read_json(inp.groups), snakemake.params.likelihoods
     stats, ingest_summary = io.read_json(inp.statistics), io.read_json(inp.ingest_summary)
     cals = {m: calibration.load_calibration(p) for m, p in snakemake.params.calibrations.items()}
@@ -26,18 +32,19 @@ with logged(snakemake.log[0], "assemble") as log:
                               min_cz=min_cz, clip_sigma=cfg["clip_sigma"],
                               plot_max_points=cfg["plot_max_points"], total_rows=ingest_summary["rows_out"],
                               entries=entries, zero_point=grouped["zero_point"],
-                              likelihood_path=snakemake.output.likelihoods, eta_grid=likelihood.eta_grid(
-                                  lk["eta_min"], lk["eta_max"], lk["eta_step"]),
-                              copy_inputs=snakemake.params.copy_inputs)
+                              likelihood_path=like_out, likelihood_parts=parts,
+                              eta_grid=likelihood.eta_grid(lk["eta_min"], lk["eta_max"], lk["eta_step"])
+                              if like_out else None, copy_inputs=snakemake.params.copy_inputs)
     if counts["rows"] != ingest_summary["rows_in"]:
         raise RuntimeError(f"row count changed: {ingest_summary['rows_in']} in, {counts['rows']} out")
     summary = {"rows_in": ingest_summary["rows_in"], "rows_out": counts["rows"],
                "methods": list(snakemake.params.methods),
                "flag_counts": counts["flag_counts"], "best_method": counts["best_method"],
                "statistics": stats, "groups": grouped["groups"], "zero_point": grouped["zero_point"],
-               "eta_likelihoods": {"file": Path(snakemake.output.likelihoods).name, "eta_min": lk["eta_min"],
+               "eta_likelihoods": {"file": Path(like_out).name, "eta_min": lk["eta_min"],
                                    "eta_max": lk["eta_max"], "eta_step": lk["eta_step"],
-                                   "bytes": Path(snakemake.output.likelihoods).stat().st_size},
+                                   "bytes": Path(like_out).stat().st_size,
+                                   "kinds": counts["likelihood_kinds"]} if like_out else None,
                "cosmology": info["config"]["redshift"]["cosmology"],
                "calibrations": {m: c["reference"] for m, c in info["calibrations"].items()},
                "inputs": info["inputs"], "git_commit": info["git_commit"], "cautions": info["cautions"]}

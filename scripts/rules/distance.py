@@ -7,5 +7,5 @@ method = snakemake.wildcards.method
 with logged(snakemake.log[0], f"{methods.REGISTRY[method].title}, shard {snakemake.wildcards.shard}") as log:
     files = {k: v for k, v in snakemake.input.items() if k != "calibration"}
     rows = methods.shard_distances(method, files, snakemake.params.method_config, snakemake.input.calibration,
-                                   snakemake.output[0])
+                                   snakemake.output.distances, dict(snakemake.output.items()).get("likelihoods"))
     log.info("%d rows", rows)

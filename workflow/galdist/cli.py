@@ -435,6 +435,11 @@ def cmd_summary(args) -> int:
     if isinstance(lk, dict):
         _say(f"  eta likelihoods     {lk.get('file')}: {_num(lk.get('eta_min'), 'g')} to {_num(lk.get('eta_max'), 'g')} "
              f"dex in {_num(lk.get('eta_step'), 'g')} dex, per method and for mu_best")
+        for name, kinds in (lk.get("kinds") or {}).items():
+            if isinstance(kinds, dict):
+                _say(f"    {name:<17} " + ", ".join(f"{k}: {v}" for k, v in kinds.items()))
+    elif "eta_likelihoods" in s:
+        _say("  eta likelihoods     not written (likelihoods.write false)")
     methods = _get(s, "statistics", "methods")
     if not isinstance(methods, dict) or not methods:
         _say(f"  methods             {DASH} (no statistics in summary.json)")

@@ -293,6 +293,15 @@ def tie_variance(weights: Mapping[str, np.ndarray], prefixes: Sequence[str], cov
 BEST_IGNORE_FLAGS = ("LOCAL_FLOW", "OUTLIER")
 
 
+def best_usable(mu, err, fl, ignore_flags=BEST_IGNORE_FLAGS) -> np.ndarray:
+    """Rows where a method's distance enters mu_best: mu and mu_err finite, mu_err > 0, and
+    no flag besides ``ignore_flags`` (``best_distance``)."""
+    keep = _flags.FLAG_DTYPE(ALL_METHOD_BITS & ~_bits(ignore_flags, "crosscheck.best_ignore_flags"))
+    mu, err = np.asarray(mu, dtype=float), np.asarray(err, dtype=float)
+    return (np.isfinite(mu) & np.isfinite(err) & (err > 0)
+            & ((np.asarray(fl, dtype=_flags.FLAG_DTYPE) & keep) == 0))
+
+
 def best_distance(methods: Mapping[str, tuple], *, ignore_flags=BEST_IGNORE_FLAGS,
                   zero_point: dict | None = None) -> dict:
     """Inverse-variance mean of the usable methods per galaxy.
@@ -311,7 +320,6 @@ def best_distance(methods: Mapping[str, tuple], *, ignore_flags=BEST_IGNORE_FLAG
     """
     offsets, cov = tie(zero_point, list(methods))
     weights = {}
-    keep = _flags.FLAG_DTYPE(ALL_METHOD_BITS & ~_bits(ignore_flags, "crosscheck.best_ignore_flags"))
     names = list(methods)
     if not names:
         raise ValueError("crosscheck: no method columns to combine")
@@ -320,8 +328,7 @@ def best_distance(methods: Mapping[str, tuple], *, ignore_flags=BEST_IGNORE_FLAG
         mu = np.asarray(mu, dtype=float)
         err = np.asarray(err, dtype=float)
         sys = np.nan_to_num(np.asarray(sys[0] if sys else 0.0, dtype=float), nan=0.0)
-        use = (np.isfinite(mu) & np.isfinite(err) & (err > 0)
-               & ((np.asarray(fl, dtype=_flags.FLAG_DTYPE) & keep) == 0))
+        use = best_usable(mu, err, fl, ignore_flags)
         w = np.where(use, 1.0 / np.where(use, err, 1.0) ** 2, 0.0)
         if sw is None:
             sw, swx, sws2 = np.zeros(mu.shape), np.zeros(mu.shape), np.zeros(mu.shape)

@@ -638,25 +638,31 @@ def _normalise(logp, eta):
         return dens / area, peak + np.log(area)
 
 
-def _posterior_summary(mod: _Model):
-    """(mean, std, mode, contained) of each row's posterior, on a per-row grid.
-
-    The grid spans +-7 widths 1/sqrt(M_rr) around the peak without selection and is
-    re-centred (twice at most) on the mode when the selection moves the posterior.
-    """
+def _row_grid_posterior(mod: _Model):
+    """Each row's posterior on its own grid: (eta, density, index of the peak, contained,
+    log normaliser). The grid spans +-7 widths 1/sqrt(M_rr) around the peak without
+    selection and is re-centred (twice at most) on the mode when the selection moves the
+    posterior."""
     width = 1.0 / np.sqrt(mod.m[:, 0, 0])
     md = np.einsum("nij,nj->ni", mod.m, mod.d)
     centre = md[:, 0] / mod.m[:, 0, 0]
     t = np.linspace(-_POSTERIOR_HALF_WIDTH, _POSTERIOR_HALF_WIDTH, _POSTERIOR_POINTS)
     for _ in range(3):
         eta = centre[:, None] + width[:, None] * t
-        dens, _ = _normalise(_log_posterior(mod, eta), eta)
+        dens, log_norm = _normalise(_log_posterior(mod, eta), eta)
         top = np.argmax(np.nan_to_num(dens, nan=-1.0), axis=-1)
         contained = (dens[:, 0] < _POSTERIOR_EDGE * dens[np.arange(len(top)), top]) & \
                     (dens[:, -1] < _POSTERIOR_EDGE * dens[np.arange(len(top)), top])
         if np.all(contained | ~np.isfinite(centre)):
             break
         centre = np.where(contained, centre, eta[np.arange(len(top)), top])
+    return eta, dens, top, contained, log_norm[:, 0]
+
+
+def _posterior_summary(mod: _Model):
+    """(mean, std, mode, contained) of each row's posterior, on a per-row grid
+    (``_row_grid_posterior``)."""
+    eta, dens, top, contained, _ = _row_grid_posterior(mod)
     trap = np.trapezoid if hasattr(np, "trapezoid") else np.trapz
     mean = trap(dens * eta, eta, axis=-1)
     var = trap(dens * (eta - mean[:, None]) ** 2, eta, axis=-1)
@@ -978,7 +984,7 @@ def _mc_gaussian(cal, terms, st, a, c, e, eta, good):
 
 
 def eta_posterior(inputs: dict, calibration: Calibration, settings: FPSettings | None = None,
-                  eta_grid=None) -> dict:
+                  eta_grid=None, eta_offset=None, whole_line: bool = False) -> dict:
     """Each galaxy's posterior in eta (gaussian estimator, flat prior) on a common grid.
 
     ``eta_grid``: increasing 1-d array (default -1 to 1 dex in steps of 0.005). Returns
@@ -987,6 +993,10 @@ def eta_posterior(inputs: dict, calibration: Calibration, settings: FPSettings |
     the peak (the grid does not contain the posterior), "flags": fp_flags as
     ``fp_distance`` sets them before the posterior}. Rows without a measurement, out of
     range or outside the selection are NaN. ``settings.estimator`` must be 'gaussian'.
+    ``eta_offset`` (per row, dex): the posterior of eta + offset, i.e. evaluated at grid -
+    offset. ``whole_line``: normalised over the whole line (each row's own grid, as
+    ``fp_distance``'s summary) rather than over ``eta_grid``, so a posterior the grid cuts
+    keeps only its mass on the grid.
     """
     st = settings or FPSettings(estimator="gaussian")
     if st.estimator != "gaussian":
@@ -1019,11 +1029,32 @@ def eta_posterior(inputs: dict, calibration: Calibration, settings: FPSettings |
     for lo in range(0, rows.size, _CHUNK):
         r = rows[lo:lo + _CHUNK]
         mod = _gauss_model(calibration, terms, st, x_z[r], e[r], None if ell is None else ell[r])
-        raw = _log_posterior(mod, np.broadcast_to(grid, (r.size, grid.size)))
-        _, log_norm = _normalise(raw, grid)
+        at = np.broadcast_to(grid, (r.size, grid.size))
+        if eta_offset is not None:
+            at = at - np.broadcast_to(np.asarray(eta_offset, dtype=float), (n,))[r, None]
+        raw = _log_posterior(mod, at)
+        log_norm = _row_grid_posterior(mod)[4][:, None] if whole_line else _normalise(raw, grid)[1]
         logp[r] = raw - log_norm
     with np.errstate(invalid="ignore"):
         peak = np.max(logp, axis=-1)
         edge = np.log(_POSTERIOR_EDGE)
         truncated = use & ((logp[:, 0] - peak > edge) | (logp[:, -1] - peak > edge))
     return {"eta": grid, "log_posterior": logp, "truncated": truncated, "flags": out_flags}
+
+
+def eta_likelihood(inputs: dict, calibration: Calibration, settings: FPSettings, grid) -> np.ndarray | None:
+    """The eta likelihood on ``grid`` of each row (density in 1/dex, normalised over the whole
+    line; NaN where there is no posterior), in the product's eta = log10(d_z / d) of
+    luminosity distances (``galdist.likelihood``), for the gaussian estimator: its
+    selection-corrected posterior (``eta_posterior``), moved by 2 log10((1 + z_cmb) /
+    (1 + z_helio)), the difference between that eta, (mu_z - fp_mu) / 5, and fp_eta of
+    angular-diameter distances. None for the plane estimator (its error is Gaussian
+    to first order; its Monte Carlo draws decide)."""
+    if settings.estimator != "gaussian":
+        return None
+    with np.errstate(invalid="ignore", divide="ignore"):
+        offset = 2.0 * np.log10((1.0 + np.asarray(inputs["z_cmb"], dtype=float))
+                                / (1.0 + np.asarray(inputs["z_helio"], dtype=float)))
+    post = eta_posterior(inputs, calibration, settings, eta_grid=grid, eta_offset=np.nan_to_num(offset),
+                         whole_line=True)
+    return np.exp(post["log_posterior"])

@@ -127,6 +127,11 @@ class MethodSpec:
     uses: tuple[str, ...] = ()  # config sections besides its own and ``bands`` its settings derive from
     setup_check: str | Callable | None = None  # (calibration, settings) -> raise ValueError; str: in the module
     relation_plot: RelationPlot | None = None
+    # a function of the module (inputs, calibration, settings, eta grid) -> each row's eta likelihood
+    # (rows, grid) or None, for an error model that is not Gaussian (galdist.likelihood), and when
+    # its section asks for it; without one, the Monte Carlo draws decide
+    posterior: str | None = None
+    posterior_applies: Callable[[Mapping], bool] = lambda section: True
 
     # --- declarations ------------------------------------------------------------------
     @property
@@ -188,11 +193,33 @@ class MethodSpec:
 
     def used_config(self, config: Mapping, calibration=None) -> dict:
         """The part of the configuration the method's jobs read: its section, the bands,
-        the sections in ``uses`` (a change elsewhere does not re-run them) and, given the
+        the sections in ``uses`` (a change elsewhere does not re-run them), ``likelihoods``
+        where its jobs compute eta likelihoods (``computes_likelihood``) and, given the
         calibration, what its conventions mean for this run (``conventions_for``)."""
         out = {key: config[key] for key in (self.name, "bands", *self.uses)}
+        if self.computes_likelihood(config):
+            out["likelihoods"] = config.get("likelihoods", {})
         if calibration is not None:
             out["conventions"] = self.conventions_for(config, calibration)
+        return out
+
+    def writes_likelihood(self, config: Mapping) -> bool:
+        """Whether the method's jobs write an eta-likelihood part file (``likelihoods.write``)."""
+        return bool(config.get("likelihoods", {}).get("write", True))
+
+    def computes_likelihood(self, config: Mapping) -> bool:
+        """Whether the method's jobs compute eta likelihoods (its posterior, or its Monte
+        Carlo draws where they are not Gaussian): only then do the grid and mu_z reach them."""
+        section = config[self.name]
+        return self.writes_likelihood(config) and (
+            (self.posterior is not None and self.posterior_applies(section))
+            or (section.get("mc_draws", 0) > 1 and section.get("mc_max_rows", 0) > 0))
+
+    def job_stage_columns(self, config: Mapping) -> dict[str, list[str]]:
+        """``stage_columns`` plus the redshift stage's mu_z where the job computes likelihoods."""
+        out = self.stage_columns(config[self.name])
+        if self.computes_likelihood(config) and "mu_z" not in out.get("redshift", []):
+            out["redshift"] = [*out.get("redshift", []), "mu_z"]
         return out
 
     def extinction_bands(self, section: Mapping) -> dict[str, str]:
@@ -253,27 +280,62 @@ class MethodSpec:
             out[name] = columns[column] if column not in scaled else np.asarray(columns[column], dtype=float) * scaled[column]
         return out
 
-    def distances(self, inputs: Mapping, calibration, settings, config: Mapping) -> dict:
+    def distances(self, inputs: Mapping, calibration, settings, config: Mapping, draws: list | None = None) -> dict:
         """The method's columns for one shard: every row analytically, the Monte Carlo
         on at most ``mc_max_rows`` measured rows, PASSBAND_OVERRIDE where config
-        accepted a passband mismatch."""
+        accepted a passband mismatch. With a list ``draws``: (rows, their Monte Carlo
+        draws of mu) is appended (``uncertainty.monte_carlo_on_subsample``)."""
         from . import passbands, uncertainty
 
         fn = self.distance_function()
         no_mc = dataclasses.replace(settings, mc_draws=0)
         out = uncertainty.monte_carlo_on_subsample(
             lambda rows, mc: fn(rows, calibration, settings if mc else no_mc),
-            inputs, f"{self.prefix}_mu", f"{self.prefix}_mu_err_mc", config[self.name]["mc_max_rows"])
+            inputs, f"{self.prefix}_mu", f"{self.prefix}_mu_err_mc", config[self.name]["mc_max_rows"], draws)
         passbands.flag_override(out[self.flags_column], self.name, calibration, config[self.name], config["bands"])
         return out
 
+    def likelihood_parts(self, section: Mapping, inputs: Mapping, calibration, settings, out: Mapping, mu_z,
+                         draws: list, grid: np.ndarray):
+        """The rows of one shard whose eta likelihood is not the analytic Gaussian, a block
+        at a time: (rows, curves, kind) for ``likelihood.write_part``. The method's
+        posterior where it has one for these settings (every row with a distance), else
+        the Monte Carlo draws' rows that fail ``likelihood.non_gaussian``."""
+        from . import likelihood as lk
+
+        mu = np.asarray(out[f"{self.prefix}_mu"], dtype=float)
+        n = len(mu)
+        if self.posterior and self.posterior_applies(section):
+            fn = self._attr(self.posterior)
+            for a in range(0, n, lk.BLOCK_ROWS):
+                b = min(n, a + lk.BLOCK_ROWS)
+                sub = {k: (v[a:b] if isinstance(v, np.ndarray) and v.ndim and v.shape[0] == n else v)
+                       for k, v in inputs.items()}
+                curves = fn(sub, calibration, settings, grid)
+                if curves is None:
+                    raise ValueError(f"{self.name}: its posterior does not apply to these settings")
+                keep = np.isfinite(mu[a:b]) & np.isfinite(curves).all(axis=1)
+                yield a + np.flatnonzero(keep), curves[keep], lk.POSTERIOR
+            return
+        for rows, mu_draws in draws:
+            eta = (np.asarray(mu_z, dtype=float)[rows, None] - mu_draws) / 5.0
+            sigma = np.asarray(out[f"{self.prefix}_mu_err"], dtype=float)[rows] / 5.0
+            odd = lk.non_gaussian(eta, sigma) & np.isfinite(mu[rows]) & np.isfinite(np.asarray(mu_z)[rows])
+            for a in range(0, int(odd.sum()), lk.BLOCK_ROWS):
+                pick = np.flatnonzero(odd)[a:a + lk.BLOCK_ROWS]
+                curves = lk.from_draws(eta[pick], grid)
+                keep = np.isfinite(curves).all(axis=1)
+                yield rows[pick][keep], curves[keep], lk.DRAWS
+
 
 def shard_distances(method: str, files: Mapping[str, str], config: Mapping, calibration_path: str,
-                    out_path: str) -> int:
+                    out_path: str, likelihood_path: str | None = None) -> int:
     """One method's columns for one shard, written beside the shard (``io.write_stage_columns``,
     stamped with the shard's fingerprint and the calibration's SHA-256). ``files``: stage ->
-    its file for this shard; ``config``: at least the method's ``used_config``. Returns the
-    number of rows."""
+    its file for this shard; ``config``: at least the method's ``used_config``. With
+    ``likelihood_path``, the shard's eta-likelihood part file (``galdist.likelihood``:
+    the rows whose likelihood is not the analytic Gaussian, maybe none), same stamps.
+    Returns the number of rows."""
     from . import calibration as gcal
     from . import io
 
@@ -285,13 +347,24 @@ def shard_distances(method: str, files: Mapping[str, str], config: Mapping, cali
     cal = at_run_h0(loaded, conv["h0"])
     section = config[method]
     settings = spec.settings_for(config, cal)
-    wanted = spec.stage_columns(section)
+    computes = likelihood_path is not None and spec.computes_likelihood(config)
+    wanted = spec.job_stage_columns(config) if computes else spec.stage_columns(section)
     others = {stage: files[stage] for stage in wanted if stage != "ingest"}
     cols, fingerprint = io.read_shard(files["ingest"], wanted.get("ingest", []), others,
                                       {stage: wanted[stage] for stage in others})
-    out = spec.distances(spec.inputs_from(cols, section, conv["extinction_factors"]), cal, settings, config)
-    io.write_stage_columns(out, out_path, fingerprint, spec.output_units(),
-                           {"galdist.calibration.sha256": cal.sha256, "galdist.calibration.name": cal.name})
+    inputs = spec.inputs_from(cols, section, conv["extinction_factors"])
+    draws: list = []
+    out = spec.distances(inputs, cal, settings, config, draws if computes else None)
+    stamps = {"galdist.calibration.sha256": cal.sha256, "galdist.calibration.name": cal.name}
+    io.write_stage_columns(out, out_path, fingerprint, spec.output_units(), stamps)
+    if likelihood_path is not None:
+        from . import likelihood as lk
+
+        lkc = config.get("likelihoods", {})
+        grid = lk.eta_grid(lkc.get("eta_min", -0.5), lkc.get("eta_max", 0.5), lkc.get("eta_step", 0.005))
+        blocks = spec.likelihood_parts(section, inputs, cal, settings, out, cols["mu_z"], draws, grid) if computes else ()
+        lk.write_part(likelihood_path, blocks, grid,
+                      {io.FINGERPRINT_KEY: fingerprint.encode()} | {k.encode(): v.encode() for k, v in stamps.items()})
     return len(out[spec.flags_column])
 
 
@@ -515,6 +588,7 @@ FUNDAMENTAL_PLANE = MethodSpec(
         "eta_post_mode": "mode of the posterior of eta (estimator gaussian)",
     },
     derive=_fp_derive, uses=("redshift",),
+    posterior="eta_likelihood", posterior_applies=lambda section: section.get("estimator") == "gaussian",
     relation_plot=RelationPlot("log_re_pred", "log_re_z",
                                r"$\log_{10} R_e$ predicted by the plane from $\sigma_0$ and $\langle I_e\rangle$ "
                                "(kpc at the calibration's $H_0$)", "Fundamental Plane, edge-on",

@@ -26,6 +26,7 @@ from . import crosscheck
 from .groups import GROUP_COLUMNS
 from .likelihood import SUMMARIES
 from . import flags as F
+from .errors import StaleInputError
 from .io import AtomicParquetWriter, iter_shard, table_from_columns, write_parquet
 from .methods import REGISTRY
 
@@ -210,22 +211,29 @@ def longest_texts(paths) -> dict[str, int]:
 
 
 def likelihood_schema(schema: pa.Schema, eta_grid) -> pa.Schema:
-    """eta_likelihoods.parquet's schema: each list's description and unit, the grid in the metadata."""
-    from .likelihood import schema_metadata
+    """eta_likelihoods.parquet's schema: each list's description and unit, each kind column's
+    codes, the grid in the metadata."""
+    from .likelihood import KINDS, schema_metadata
 
-    fields = [pa.field(f.name, f.type, metadata=None if f.name == "galaxy_id" else {
-        b"unit": b"1 / dex", b"description": (f"likelihood of eta = log10(d_z / d) from "
-                                              f"{'mu_best' if f.name.startswith('best_') else f.name[:-9] + '_mu'}"
-                                              " on the grid of the schema metadata (galdist.eta_grid): a density "
-                                              "in 1/dex, NaN where there is no distance").encode()})
-              for f in schema]
+    def meta(name):
+        if name == "galaxy_id":
+            return None
+        source = "mu_best" if name.startswith("best_") else name.split("_eta_like")[0] + "_mu"
+        if name.endswith("_kind"):
+            codes = "; ".join(f"{k}: {v}" for k, v in KINDS.items())
+            return {b"unit": b"", b"description": f"where the likelihood from {source} came from ({codes})".encode()}
+        return {b"unit": b"1 / dex", b"description": (f"likelihood of eta = log10(d_z / d) from {source} on the "
+                                                      "grid of the schema metadata (galdist.eta_grid): a density "
+                                                      "in 1/dex, NaN where there is no distance").encode()}
+
+    fields = [pa.field(f.name, f.type, metadata=meta(f.name)) for f in schema]
     return pa.schema(fields, metadata=schema_metadata(np.asarray(eta_grid)))
 
 
 def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, methods: list[str],
              provenance_info: dict, *, min_cz: float, clip_sigma: float, plot_max_points: int,
              total_rows: int, entries: dict, zero_point: dict | None = None,
-             likelihood_path=None, eta_grid=None, copy_inputs: bool = True) -> dict:
+             likelihood_path=None, eta_grid=None, likelihood_parts=None, copy_inputs: bool = True) -> dict:
     """Stream the shards into ``out_path``; returns flag counts, best-method counts and the
     product's dictionary entries in column order.
 
@@ -237,10 +245,15 @@ def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, 
     (``groups.fit_zero_points``), subtracted in mu_best where "applied". ``likelihood_path``:
     the companion file of every row's eta likelihoods on ``eta_grid`` per method and for
     mu_best (``galdist.likelihood``), in product order; their summaries go into the product.
-    ``copy_inputs`` false: of the catalog's own columns only ``IDENTITY_COLUMNS`` (config
-    ``copy_inputs``; the rows keep the catalog's order, so galaxy_id joins the rest back).
+    ``likelihood_parts``: per shard, method -> its job's eta-likelihood part file (the rows
+    whose likelihood is not the analytic Gaussian), read forward with the shard; without
+    them every likelihood is the analytic Gaussian. No ``eta_grid``: no likelihoods and no
+    summary columns. ``copy_inputs`` false: of the catalog's own columns only
+    ``IDENTITY_COLUMNS`` (config ``copy_inputs``; the rows keep the catalog's order, so
+    galaxy_id joins the rest back).
     """
-    from .likelihood import likelihood_blocks
+    from . import likelihood as lk
+    from .io import FINGERPRINT_KEY, check_stamps, read_fingerprint
     from .redshift import C_KMS
 
     prefixes = [METHOD_PREFIX[m] for m in methods]
@@ -250,12 +263,26 @@ def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, 
     writer = like_writer = None
     samples = []
     used: list = []
+    kinds = {}
     text_lengths = longest_texts([f["shard"] for f in shards])
     keep_fraction = min(1.0, plot_max_points / max(total_rows, 1))
+    offsets = crosscheck.tie(zero_point, prefixes)[0]
     try:
         for index, files in enumerate(shards):
             stages = {k: v for k, v in files.items() if k != "shard"}
             rng = np.random.default_rng(index)
+            readers, start = {}, 0
+            if eta_grid is not None and likelihood_parts:
+                part_files = {METHOD_PREFIX[m]: path for m, path in likelihood_parts[index].items()}
+                check_stamps(part_files.values(), FINGERPRINT_KEY.decode(), read_fingerprint(files["shard"]),
+                             f"computed from another version of shard {files['shard']}")
+                for p, path in part_files.items():
+                    # an empty part (a job that computes no likelihood) depends on no grid
+                    got = lk.part_grid(path) if lk.part_rows(path) else eta_grid
+                    if got.shape != eta_grid.shape or not np.allclose(got, eta_grid, rtol=0, atol=1e-9):
+                        raise StaleInputError(f"{path} holds eta likelihoods on another grid than config "
+                                              "likelihoods; delete it and run the same command again")
+                readers = {p: lk.PartReader(path) for p, path in part_files.items()}
             for cols, units in iter_shard(files["shard"], stages):
                 cols |= crosscheck.galaxy_columns(cols, grid, statistics, methods=prefixes, min_cz=min_cz,
                                                   clip_sigma=clip_sigma, zero_point=zero_point)
@@ -265,12 +292,20 @@ def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, 
                     dists = {p: (cols[f"{p}_mu"], cols[f"{p}_mu_err"]) for p in prefixes if f"{p}_mu" in cols}
                     dists["best"] = (cols["mu_best"], cols["mu_best_err"])
                     n_rows = len(cols["mu_z"])
-                    for a, b, lists, summaries in likelihood_blocks(dists, cols["mu_z"], eta_grid):
+                    usable = {p: crosscheck.best_usable(cols[f"{p}_mu"], cols[f"{p}_mu_err"], cols[f"{p}_flags"])
+                              for p in prefixes if f"{p}_mu" in cols}
+                    parts = {p: (lambda a, b, r=r, s=start: r.take(s + a, s + b)) for p, r in readers.items()}
+                    for a, b, lists, summaries, kind in lk.likelihood_blocks(
+                            dists, cols["mu_z"], eta_grid, parts=parts, usable=usable, offsets=offsets):
                         for k, v in summaries.items():
                             cols.setdefault(k, np.full(n_rows, np.nan))[a:b] = v
+                        for name, v in kind.items():
+                            counts_of = kinds.setdefault(name, Counter())
+                            counts_of.update(dict(zip(*np.unique(v, return_counts=True))))
                         if likelihood_path is not None:
                             lt = pa.table({"galaxy_id": cols["galaxy_id"][a:b]}
-                                          | {f"{name}_eta_like": arr for name, arr in lists.items()})
+                                          | {f"{name}_eta_like": arr for name, arr in lists.items()}
+                                          | {f"{name}_eta_like_kind": pa.array(v) for name, v in kind.items()})
                             if like_writer is None:
                                 like_writer = AtomicParquetWriter(likelihood_path,
                                                                   likelihood_schema(lt.schema, eta_grid))
@@ -298,6 +333,7 @@ def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, 
                 pick = rng.uniform(size=table.num_rows) < keep_fraction
                 samples.append(table.select([n for n in PLOT_COLUMNS if n in names]).filter(pa.array(pick)))
                 rows += table.num_rows
+                start += table.num_rows
                 log.info("shard %d/%d: %d of %d rows written", index + 1, len(shards), rows, total_rows)
     except BaseException:
         for w in (writer, like_writer):
@@ -311,4 +347,6 @@ def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, 
     return {"rows": rows,
             "flag_counts": {c: {m.name: flag_counts[c].get(m.name, 0) for m in F.ALL[c]}
                             for c in FLAG_COLUMNS if flag_counts[c] or c in ("quality_flags",)},
-            "best_method": dict(sorted(best.items())), "entries": used}
+            "best_method": dict(sorted(best.items())), "entries": used,
+            "likelihood_kinds": {name: {lk.KIND_NAMES[int(k)]: int(c) for k, c in sorted(v.items())}
+                                 for name, v in kinds.items()}}

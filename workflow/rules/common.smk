@@ -85,6 +85,11 @@ TABLE_DIGEST = content_digest([EXTINCTION_TABLE])
 # name, so two calibrations never overwrite each other
 STAGE_SHARDS = {stage: f"{SHARDS}/{stage}/part-{{shard}}.parquet" for stage in ("extinction", "kcorr", "redshift")}
 METHOD_SHARDS = {m: f"{SHARDS}/{m}/{CALIBRATIONS[m].name}/part-{{shard}}.parquet" for m in METHODS}
+# likelihoods.write: each method job writes the shard's eta-likelihood part beside its file
+# (the rows whose likelihood is not the analytic Gaussian; galdist.likelihood)
+LIKELIHOODS_WRITTEN = bool(config["likelihoods"]["write"])
+METHOD_LIKELIHOODS = ({m: f"{SHARDS}/{m}/{CALIBRATIONS[m].name}/eta-like-{{shard}}.parquet" for m in METHODS}
+                      if LIKELIHOODS_WRITTEN else {})
 
 
 def shard_path(wildcards):

@@ -67,13 +67,14 @@ rule assemble:
         grid=rules.mu_grid.output[0],
         calibrations=list(CALIBRATION_FILES.values()),
         **{stage: per_shard(pattern) for stage, pattern in JOINED_SHARDS.items()},
+        **{f"{m}_likelihood": per_shard(pattern) for m, pattern in METHOD_LIKELIHOODS.items()},
     output:
         # update(): Snakemake keeps the old product until the new one replaces it (and puts
         # it back if the job fails), instead of deleting it when the job starts
         distances=update(f"{RUN}/distances.parquet"),
         summary=update(f"{RUN}/summary.json"),
         plot_sample=update(f"{RUN}/plot_sample.parquet"),
-        likelihoods=update(f"{RUN}/eta_likelihoods.parquet"),
+        **({"likelihoods": update(f"{RUN}/eta_likelihoods.parquet")} if LIKELIHOODS_WRITTEN else {}),
         columns=update(f"{RUN}/COLUMNS.md"),
     params:
         crosscheck=config["crosscheck"],
