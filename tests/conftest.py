@@ -183,3 +183,20 @@ def open_in_browser(page: Path, workdir: Path) -> tuple[str, Path]:
     subprocess.run([*args, "--window-size=1280,1000", f"--screenshot={shot}", page.as_uri()],
                    capture_output=True, timeout=180, cwd=workdir)
     return dom.stdout, shot
+
+
+def calibration_sample_file(tmp_path: Path, drop=()) -> str:
+    """A small calibration sample (30 rows of ``small_catalog`` in 3 groups, one in three with a
+    reference modulus) without the columns ``drop``, written as Parquet; returns its path."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    cols = small_catalog(30)
+    cols["group_id"] = np.array([f"G{i % 3}" for i in range(30)], dtype=object)
+    cols["mu_ref"] = np.where(np.arange(30) % 3 == 0, 32.0, np.nan)
+    cols["mu_ref_err"] = np.where(np.arange(30) % 3 == 0, 0.1, np.nan)
+    for k in drop:
+        cols.pop(k)
+    path = tmp_path / f"sample-{'-'.join(drop) or 'all'}.parquet"
+    pq.write_table(pa.table(cols), path)
+    return str(path)

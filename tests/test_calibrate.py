@@ -22,7 +22,7 @@ from galdist.calibration import load_calibration
 from galdist.demo import _observed_width
 from galdist.errors import ConfigError
 
-from conftest import copy_workflow, run_snakemake
+from conftest import calibration_sample_file, copy_workflow, run_snakemake
 
 A0, A1, SCATTER = -21.2, -8.5, 0.3  # invented truth
 Q0 = 0.2
@@ -188,23 +188,6 @@ def test_small_free_groups_are_left_out_and_references_combine():
     assert list(small) == [False, False, False, True]
 
 
-def _sample_file(tmp_path, **drop):
-    import pyarrow as pa
-    import pyarrow.parquet as pq
-
-    from conftest import small_catalog
-
-    cols = small_catalog(30)
-    cols["group_id"] = np.array([f"G{i % 3}" for i in range(30)], dtype=object)
-    cols["mu_ref"] = np.where(np.arange(30) % 3 == 0, 32.0, np.nan)
-    cols["mu_ref_err"] = np.where(np.arange(30) % 3 == 0, 0.1, np.nan)
-    for k in drop:
-        cols.pop(k)
-    path = tmp_path / "sample.parquet"
-    pq.write_table(pa.table(cols), path)
-    return str(path)
-
-
 def _calibrate_errors(user):
     result = preflight.check(user, sample_rows=False)
     return [f.message for f in result.errors if f.check == "calibration sample"]
@@ -217,14 +200,16 @@ def test_preflight_names_the_key_and_the_fix(tmp_path):
 
     survey = tmp_path / "survey.parquet"
     pq.write_table(pa.table(small_catalog(20)), survey)
-    good = _sample_file(tmp_path)
+    good = calibration_sample_file(tmp_path)
     assert _calibrate_errors({"catalog": str(survey), "calibrate": {"catalog": good}}) == []
     (msg,) = _calibrate_errors({"catalog": str(survey), "calibrate": {"catalog": good, "method": "sbf",
                                                                       "form": "inverse"}})
     assert "calibrate.form" in msg and "Tully-Fisher only" in msg
-    msgs = _calibrate_errors({"catalog": str(survey), "calibrate": {"catalog": _sample_file(tmp_path, group_id=1)}})
+    msgs = _calibrate_errors({"catalog": str(survey),
+                              "calibrate": {"catalog": calibration_sample_file(tmp_path, drop=("group_id",))}})
     assert any("calibrate.columns.group_id" in m for m in msgs)
-    msgs = _calibrate_errors({"catalog": str(survey), "calibrate": {"catalog": _sample_file(tmp_path, mu_ref_err=1)}})
+    msgs = _calibrate_errors({"catalog": str(survey),
+                              "calibrate": {"catalog": calibration_sample_file(tmp_path, drop=("mu_ref_err",))}})
     assert any("mu_ref_err" in m for m in msgs)
     msgs = _calibrate_errors({"catalog": str(survey), "calibrate": {"catalog": good},
                               "extinction": {"ebv_scale": 0.9}})

@@ -23,7 +23,7 @@ from galdist import relation_fit as rf
 from galdist.calibration import load_calibration
 from galdist.errors import ConfigError
 
-from conftest import copy_workflow, run_snakemake
+from conftest import calibration_sample_file, copy_workflow, run_snakemake
 
 # invented truth: slopes, the Gaussian's centre (s, i), widths (v1, v2, v3; dex)
 A, B = 1.35, -0.80
@@ -267,23 +267,6 @@ def test_round_trip_through_fp_distance(fitted_file):
 
 # ------------------------------------------------------------------ pre-flight
 
-def _sample_file(tmp_path, drop=()):
-    import pyarrow as pa
-    import pyarrow.parquet as pq
-
-    from conftest import small_catalog
-
-    cols = small_catalog(30)
-    cols["group_id"] = np.array([f"G{i % 3}" for i in range(30)], dtype=object)
-    cols["mu_ref"] = np.where(np.arange(30) % 3 == 0, 32.0, np.nan)
-    cols["mu_ref_err"] = np.where(np.arange(30) % 3 == 0, 0.1, np.nan)
-    for k in drop:
-        cols.pop(k)
-    path = tmp_path / f"sample-{'-'.join(drop) or 'all'}.parquet"
-    pq.write_table(pa.table(cols), path)
-    return str(path)
-
-
 def _errors(tmp_path, **section):
     import pyarrow as pa
     import pyarrow.parquet as pq
@@ -300,11 +283,11 @@ def test_preflight_names_fp_columns_and_options(tmp_path):
     """A sample without an FP column, without both <mu_e> and the total magnitude, or
     with options the plane does not take stops before any job, naming the key or
     column."""
-    good = _sample_file(tmp_path)
+    good = calibration_sample_file(tmp_path)
     assert _errors(tmp_path, catalog=good) == []
-    msgs = _errors(tmp_path, catalog=_sample_file(tmp_path, drop=("fp_sigma",)))
+    msgs = _errors(tmp_path, catalog=calibration_sample_file(tmp_path, drop=("fp_sigma",)))
     assert any("fp_sigma" in m for m in msgs), msgs
-    msgs = _errors(tmp_path, catalog=_sample_file(tmp_path, drop=("fp_mu_e", "fp_mu_e_err")))
+    msgs = _errors(tmp_path, catalog=calibration_sample_file(tmp_path, drop=("fp_mu_e", "fp_mu_e_err")))
     assert any("'fp_mu_e'" in m and "'fp_mag'" in m for m in msgs), msgs
     for key, value in (("form", "bivariate"), ("degree", 2), ("curvature_break", 2.3), ("magnitude_pivot", -20.0)):
         (msg,) = _errors(tmp_path, catalog=good, **{key: value})

@@ -19,7 +19,7 @@ from bench.common import METHOD_RULE, METHODS, REPO, ROW_RULES, STAGE_ORDER
 
 # After a swap of the Tully-Fisher calibration only these rules may run (the target),
 # and every distance job is Tully-Fisher's.
-SWAP_ALLOWED = {METHOD_RULE, "crosscheck_statistics", "assemble", "plots", "run_report", "all"}
+SWAP_ALLOWED = {METHOD_RULE, "crosscheck_statistics", "groups", "assemble", "plots", "run_report", "all"}
 SWAP_CALIBRATION = "{calibration: tf_ks_masters_2008, band: Ks}"
 
 

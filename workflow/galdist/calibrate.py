@@ -447,21 +447,7 @@ def report_figure(sample, result: dict, path, xlabel: str) -> None:
     ax[0, 0].invert_yaxis()
     ax[0, 0].set(xlabel=xlabel, ylabel="corrected magnitude - group modulus (mag)", title="relation")
     ax[0, 0].legend()
-    ax[0, 1].plot(sample.x, res, ".", ms=3, color="0.3")
-    ax[0, 1].axhline(0, color="C0")
-    ax[0, 1].set(xlabel=xlabel, ylabel="residual (mag)", title="residuals against predictor")
-    ax[1, 0].plot(best.group_mu[sample.group], res, ".", ms=3, color="0.3")
-    ax[1, 0].axhline(0, color="C0")
-    ax[1, 0].set(xlabel="group distance modulus (mag)", ylabel="residual (mag)",
-                 title="residuals against distance")
-    offsets = np.array([res[sample.group == g].mean() for g in range(sample.n_groups)])
-    counts = np.bincount(sample.group, minlength=sample.n_groups)
-    ax[1, 1].errorbar(np.arange(sample.n_groups), offsets, yerr=best.scatter / np.sqrt(np.maximum(counts, 1)),
-                      fmt="o", ms=4)
-    ax[1, 1].axhline(0, color="C0")
-    ax[1, 1].set_xticks(np.arange(sample.n_groups), [str(g) for g in sample.group_names], rotation=90,
-                        fontsize=6)
-    ax[1, 1].set(ylabel="mean residual (mag)", title="per-group offsets")
+    _residual_panels(ax, sample, best, res, sample.x, xlabel, "predictor", "residual (mag)", "mag")
     fig.tight_layout()
     fig.savefig(path, dpi=110)
     plt.close(fig)
@@ -759,6 +745,24 @@ def _plane_calibration_data(config: Mapping, sample: rf.PlaneSample, best: rf.Pl
     return data
 
 
+def _residual_panels(ax, sample, best, res, x, xlabel: str, xname: str, ylabel: str, unit: str) -> None:
+    """The report's residual panels, shared by relations and planes: against ``x``, against
+    the group modulus (the signature of a selection bias), and per-group mean offsets."""
+    ax[0, 1].plot(x, res, ".", ms=3, color="0.3")
+    ax[0, 1].axhline(0, color="C0")
+    ax[0, 1].set(xlabel=xlabel, ylabel=ylabel, title=f"residuals against {xname}")
+    ax[1, 0].plot(best.group_mu[sample.group], res, ".", ms=3, color="0.3")
+    ax[1, 0].axhline(0, color="C0")
+    ax[1, 0].set(xlabel="group distance modulus (mag)", ylabel=ylabel, title="residuals against distance")
+    offsets = np.array([res[sample.group == g].mean() for g in range(sample.n_groups)])
+    counts = np.bincount(sample.group, minlength=sample.n_groups)
+    ax[1, 1].errorbar(np.arange(sample.n_groups), offsets, yerr=best.scatter / np.sqrt(np.maximum(counts, 1)),
+                      fmt="o", ms=4)
+    ax[1, 1].axhline(0, color="C0")
+    ax[1, 1].set_xticks(np.arange(sample.n_groups), [str(g) for g in sample.group_names], rotation=90, fontsize=6)
+    ax[1, 1].set(ylabel=f"mean residual ({unit})", title="per-group offsets")
+
+
 def _plane_report_figure(sample: rf.PlaneSample, result: dict, path) -> None:
     """The FP fit report: the plane edge-on (both fits), residuals against s and against
     the group modulus (the signature of a selection bias), per-group offsets."""
@@ -781,20 +785,8 @@ def _plane_report_figure(sample: rf.PlaneSample, result: dict, path) -> None:
     ax[0, 0].set(xlabel=r"$a (s - s_p) + b (i - i_p) + c$", ylabel=r"$\log_{10} R_e$ (kpc) at the group distance",
                  title="plane, edge-on")
     ax[0, 0].legend()
-    ax[0, 1].plot(sample.s, res, ".", ms=3, color="0.3")
-    ax[0, 1].axhline(0, color="C0")
-    ax[0, 1].set(xlabel=r"$\log_{10} \sigma_0$ (km/s)", ylabel="residual in r (dex)", title="residuals against s")
-    ax[1, 0].plot(best.group_mu[sample.group], res, ".", ms=3, color="0.3")
-    ax[1, 0].axhline(0, color="C0")
-    ax[1, 0].set(xlabel="group distance modulus (mag)", ylabel="residual in r (dex)",
-                 title="residuals against distance")
-    offsets = np.array([res[sample.group == g].mean() for g in range(sample.n_groups)])
-    counts = np.bincount(sample.group, minlength=sample.n_groups)
-    ax[1, 1].errorbar(np.arange(sample.n_groups), offsets, yerr=best.scatter / np.sqrt(np.maximum(counts, 1)),
-                      fmt="o", ms=4)
-    ax[1, 1].axhline(0, color="C0")
-    ax[1, 1].set_xticks(np.arange(sample.n_groups), [str(g) for g in sample.group_names], rotation=90, fontsize=6)
-    ax[1, 1].set(ylabel="mean residual (dex)", title="per-group offsets")
+    _residual_panels(ax, sample, best, res, sample.s, r"$\log_{10} \sigma_0$ (km/s)", "s", "residual in r (dex)",
+                     "dex")
     fig.tight_layout()
     fig.savefig(path, dpi=110)
     plt.close(fig)

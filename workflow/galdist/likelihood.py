@@ -55,8 +55,9 @@ SUMMARIES = {
     "eta_p16": "16th percentile of eta under its likelihood",
     "eta_p84": "84th percentile of eta under its likelihood",
 }
-#: rows computed at once: (rows x grid) float64 arrays stay below ~30 MB
-BLOCK_ROWS = 16_384
+#: rows computed at once: (rows x grid) float64 arrays of ~7 MB; the assembly holds several at
+#: once per distance (16384-row blocks took its peak from 0.75 to 1.15 GB at 10^6-row shards)
+BLOCK_ROWS = 4_096
 #: where each likelihood came from (the companion file's ``<name>_eta_like_kind``, uint8)
 NONE, GAUSSIAN, POSTERIOR, DRAWS, PRODUCT = 0, 1, 2, 3, 4
 KINDS = {NONE: "no distance", GAUSSIAN: "analytic Gaussian of mu, mu_err (log-normal distance)",

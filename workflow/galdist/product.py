@@ -93,6 +93,10 @@ CAUTIONS = (
     "An implied H0 from a calibration whose zero point assumes an H0 (h0_implied_independent false) "
     "returns that H0 by construction: it is not a measurement.",
 )
+#: rows the assembly handles at once: a batch holds every stage's columns and the cross-check's
+#: in float64 (measured on the benchmark's 10^6-row shards, with likelihood.BLOCK_ROWS = 4096:
+#: peak 0.75 GB; 131072 rows and blocks of 16384 reached 1.15 GB)
+BATCH_ROWS = 65_536
 #: the catalog columns the product always carries (config copy_inputs: false drops the rest)
 IDENTITY_COLUMNS = frozenset({"galaxy_id", "ra", "dec", "z_helio", "z_helio_err", "galaxy_class", "group_id"})
 PLOT_COLUMNS = ["galaxy_id", "gal_l", "gal_b", "z_cmb", "mu_z", "mu_z_err"] + [
@@ -283,7 +287,7 @@ def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, 
                         raise StaleInputError(f"{path} holds eta likelihoods on another grid than config "
                                               "likelihoods; delete it and run the same command again")
                 readers = {p: lk.PartReader(path) for p, path in part_files.items()}
-            for cols, units in iter_shard(files["shard"], stages):
+            for cols, units in iter_shard(files["shard"], stages, rows=BATCH_ROWS):
                 cols |= crosscheck.galaxy_columns(cols, grid, statistics, methods=prefixes, min_cz=min_cz,
                                                   clip_sigma=clip_sigma, zero_point=zero_point)
                 cols["cz_cmb_kms"] = C_KMS * np.asarray(cols["z_cmb"], dtype=float)
