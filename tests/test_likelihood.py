@@ -28,6 +28,30 @@ def test_gaussian_in_mu_is_the_log_normal_transform():
         # mode and mean of a Gaussian in eta: its centre (mu_z - mu) / 5, the mode to the grid step
         assert s["eta_mean"][0] == pytest.approx((mu_z[i] - mu[i]) / 5, abs=1e-6)
         assert s["eta_mode"][0] == pytest.approx((mu_z[i] - mu[i]) / 5, abs=0.0025)
+        # the summaries the product carries for a Gaussian are exact (the grid's ends lie > 6 widths away)
+        g = likelihood.gaussian_summaries(mu[i:i + 1], sigma[i:i + 1], mu_z[i:i + 1], grid)
+        assert g["eta_p16"][0] == pytest.approx(np.log10(d_z / law.ppf(0.84)), abs=1e-9)
+        assert g["eta_p84"][0] == pytest.approx(np.log10(d_z / law.ppf(0.16)), abs=1e-9)
+        assert g["eta_mode"][0] == pytest.approx((mu_z[i] - mu[i]) / 5, abs=1e-12)
+        assert g["eta_mean"][0] == pytest.approx((mu_z[i] - mu[i]) / 5, abs=1e-9)
+
+
+def test_gaussian_summaries_near_a_grid_end_are_the_truncated_normal():
+    """Near a grid end the gridded curve is a normal truncated to the grid's range; its mean and
+    percentiles are the truncated normal's (scipy.stats.truncnorm, the textbook distribution)."""
+    grid = likelihood.eta_grid()
+    mu_z, mu, sigma = np.array([34.0]), np.array([34.0 - 5 * 0.46]), np.array([5 * 0.02])  # eta0 0.46, s 0.02
+    g = likelihood.gaussian_summaries(mu, sigma, mu_z, grid)
+    law = stats.truncnorm((grid[0] - 0.46) / 0.02, (grid[-1] - 0.46) / 0.02, loc=0.46, scale=0.02)
+    assert g["eta_mean"][0] == pytest.approx(law.mean(), abs=1e-9)
+    assert g["eta_p16"][0] == pytest.approx(law.ppf(0.16), abs=1e-9)
+    assert g["eta_p84"][0] == pytest.approx(law.ppf(0.84), abs=1e-9)
+    # the gridded summary of the same curve agrees to the grid's resolution
+    s = likelihood.summarize(likelihood.gaussian_eta(mu, sigma, mu_z, grid), grid)
+    assert s["eta_p84"][0] == pytest.approx(law.ppf(0.84), abs=5e-4)
+    # less than MIN_MASS on the grid: no summaries
+    far = likelihood.gaussian_summaries(np.array([34.0 - 5 * 0.49]), sigma, mu_z, grid)
+    assert all(np.isnan(v).all() for v in far.values())
 
 
 def test_missing_and_off_grid_rows():
@@ -47,9 +71,14 @@ def test_columns_are_fixed_size_lists_in_blocks(monkeypatch):
     lists, summ = likelihood.likelihood_columns({"tf": (mu, np.full(30, 0.3))}, mu + 0.1, grid)
     arr = lists["tf"]
     assert arr.type.list_size == len(grid) == 101 and len(arr) == 30
-    values = arr.flatten().to_numpy().reshape(30, len(grid))
-    np.testing.assert_allclose(values, likelihood.gaussian_eta(mu, np.full(30, 0.3), mu + 0.1, grid), rtol=1e-6)
-    np.testing.assert_allclose(summ["tf_eta_mean"], 0.02, atol=1e-4)
+    # a Gaussian's curve is not stored (it is in the product's mu and mu_err): null lists,
+    # which dense_curves rebuilds
+    assert arr.null_count == 30
+    kinds = np.full(30, likelihood.GAUSSIAN)
+    dense = likelihood.dense_curves(arr, kinds, mu, np.full(30, 0.3), mu + 0.1, grid)
+    np.testing.assert_allclose(dense, likelihood.gaussian_eta(mu, np.full(30, 0.3), mu + 0.1, grid), rtol=1e-12)
+    # eta0 = (mu_z - mu) / 5 = 0.02 exactly, far from the grid's ends (the change of variables above)
+    np.testing.assert_allclose(summ["tf_eta_mean"], 0.02, atol=1e-12)
 
 
 def test_bad_grid_refused():
@@ -213,15 +242,19 @@ def test_product_of_gaussians_is_the_gaussian_of_mu_best():
     blocks = list(likelihood.likelihood_blocks(dists, mu_z, grid, parts={"tf": part}, usable=usable,
                                                offsets={"tf": 0.0, "sbf": 0.037}))
     (_, _, lists, summ, kinds), = blocks
-    got = lists["best"].flatten().to_numpy().reshape(n, len(grid))
+    got = likelihood.dense_curves(lists["best"], kinds["best"], best["mu_best"], best["mu_best_err"], mu_z, grid)
     expected = likelihood.gaussian_eta(best["mu_best"], best["mu_best_err"], mu_z, grid)
     # a product where the TF part enters mu_best; elsewhere (TF flagged) the analytic Gaussian
     assert kinds["best"].tolist() == np.where(usable["tf"], likelihood.PRODUCT, likelihood.GAUSSIAN).tolist()
     # linear interpolation of the SBF curve moved by 0.037 / 5 dex: ~(step / sigma)^2 / 8 relative
     np.testing.assert_allclose(got, expected, rtol=0, atol=2e-3 * expected.max())
+    # the product's summaries from its curve on the grid; the Gaussians' exact (gaussian_summaries)
+    prod = usable["tf"]
     ref = likelihood.summarize(expected, grid)
+    exact = likelihood.gaussian_summaries(best["mu_best"], best["mu_best_err"], mu_z, grid)
     for k in ("eta_mean", "eta_p16", "eta_p84"):
-        np.testing.assert_allclose(summ[f"best_{k}"], ref[k], atol=2e-4)
+        np.testing.assert_allclose(summ[f"best_{k}"][prod], ref[k][prod], atol=2e-4)
+        np.testing.assert_array_equal(summ[f"best_{k}"][~prod], exact[k][~prod])
 
 
 def test_part_file_round_trip_in_blocks(tmp_path, monkeypatch):

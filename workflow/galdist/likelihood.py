@@ -30,11 +30,14 @@ used directly (kind ``GAUSSIAN``; else ``PRODUCT``).
 
 The likelihood is stored as a density in dex^-1 on the grid (integral 1 over the whole
 line, so a galaxy near a grid end keeps only its mass on the grid), float32, one
-fixed-size list per galaxy and distance (NaN where the galaxy has no distance); its
-mode, mean and 16th/84th percentiles are computed from the gridded values (trapezoid
-rule), so they describe the likelihood on the grid's range, and are NaN where less than
-``MIN_MASS`` of the probability lies on the grid (the galaxy's eta is beyond the grid's
-range) or, for a product, where the product is cut by a grid end (``EDGE``).
+fixed-size list per galaxy and distance, null where there is no distance or it is the
+analytic Gaussian (already in the product as mu, mu_err and mu_z: ``dense_curves``
+rebuilds it), so the file holds only the curves that are news; its mode, mean and
+16th/84th percentiles describe the likelihood on the grid's range: exact for a Gaussian
+(``gaussian_summaries``), from the gridded values otherwise (``summarize``, trapezoid
+rule); NaN where less than ``MIN_MASS`` of the probability lies on the grid (the
+galaxy's eta is beyond the grid's range) or, for a product, where the product is cut by
+a grid end (``EDGE``).
 """
 
 from __future__ import annotations
@@ -50,8 +53,8 @@ MIN_MASS = 0.95
 EDGE = 0.05
 #: the summary columns, per distance: (suffix, description)
 SUMMARIES = {
-    "eta_mode": "mode of the eta likelihood on the grid",
-    "eta_mean": "mean of eta under its likelihood (trapezoid rule on the grid)",
+    "eta_mode": "mode of the eta likelihood on the grid's range",
+    "eta_mean": "mean of eta under its likelihood on the grid's range (exact for a Gaussian, else the trapezoid rule)",
     "eta_p16": "16th percentile of eta under its likelihood",
     "eta_p84": "84th percentile of eta under its likelihood",
 }
@@ -237,6 +240,28 @@ def summarize(like: np.ndarray, grid: np.ndarray, valid=None) -> dict[str, np.nd
     return {k: np.where(ok, v, np.nan) for k, v in out.items()}
 
 
+def gaussian_summaries(mu, mu_err, mu_z, grid: np.ndarray) -> dict[str, np.ndarray]:
+    """``summarize`` of the analytic Gaussians, exact: the normal N(eta0, s), eta0 = (mu_z -
+    mu) / 5, s = mu_err / 5, truncated to the grid's range [g0, g1] as the gridded curve is
+    (alpha, beta = (g0 - eta0) / s, (g1 - eta0) / s; mass Z = Phi(beta) - Phi(alpha)): mode
+    eta0, mean eta0 + s (phi(alpha) - phi(beta)) / Z, percentile q at eta0 + s
+    Phi^-1(Phi(alpha) + q Z) (the truncated normal; Johnson, Kotz & Balakrishnan 1994,
+    Continuous Univariate Distributions 1, ch. 13.10; from memory). NaN where the modulus or
+    its error (> 0) is missing or Z < MIN_MASS."""
+    from scipy.special import ndtr, ndtri
+
+    mu, err, mu_z = (np.asarray(a, dtype=float) for a in (mu, mu_err, mu_z))
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        eta0, s = (mu_z - mu) / 5.0, err / 5.0
+        lo, hi = (grid[0] - eta0) / s, (grid[-1] - eta0) / s
+        p_lo, mass = ndtr(lo), ndtr(hi) - ndtr(lo)
+        ok = np.isfinite(eta0) & np.isfinite(s) & (s > 0) & (mass >= MIN_MASS)
+        density = (np.exp(-0.5 * lo ** 2) - np.exp(-0.5 * hi ** 2)) / np.sqrt(2.0 * np.pi)
+        out = {"eta_mode": eta0, "eta_mean": eta0 + s * density / mass,
+               "eta_p16": eta0 + s * ndtri(p_lo + 0.16 * mass), "eta_p84": eta0 + s * ndtri(p_lo + 0.84 * mass)}
+    return {k: np.where(ok, v, np.nan) for k, v in out.items()}
+
+
 def likelihood_blocks(distances: dict[str, tuple], mu_z, grid: np.ndarray, *, parts: dict | None = None,
                       usable: dict | None = None, offsets: dict | None = None):
     """For each block of ``BLOCK_ROWS`` rows: (first row, end row, lists, summaries, kinds).
@@ -248,39 +273,75 @@ def likelihood_blocks(distances: dict[str, tuple], mu_z, grid: np.ndarray, *, pa
     (rows) of the methods entering mu_best (``crosscheck.best_usable``), ``offsets``:
     prefix -> the zero-point offset subtracted in mu_best (mag): where a used method's
     curve came from a part, the best one is their ``combine``d product. ``lists[name]`` is
-    the block's curves as a fixed-size float32 list array, ``kinds[name]`` uint8 (``KINDS``),
-    ``summaries`` holds ``<name>_eta_mode`` ... of the block. A block at a time, so the
-    memory is a block's, whatever the batch."""
+    the block's curves as a fixed-size float32 list array, null where the likelihood is the
+    analytic Gaussian or there is none (``kinds[name]``, uint8, says which: ``gaussian``
+    rebuilds a Gaussian from the product's columns), so the file holds only curves that
+    are not already in the product; ``summaries`` holds ``<name>_eta_mode`` ... of the
+    block (``gaussian_summaries`` for the Gaussians, ``summarize`` for the curves). A block
+    at a time, so the memory is a block's, whatever the batch."""
     parts, usable, offsets = parts or {}, usable or {}, offsets or {}
     mu_z = np.asarray(mu_z, dtype=float)
-    n = len(mu_z)
+    n, m = len(mu_z), len(grid)
     for a in range(0, n, BLOCK_ROWS):
         b = min(n, a + BLOCK_ROWS)
-        curves, kinds, special, valid = {}, {}, np.zeros(b - a, dtype=bool), {}
-        for name, (mu, err) in distances.items():
-            like = gaussian_eta(np.asarray(mu)[a:b], np.asarray(err)[a:b], mu_z[a:b], grid)
-            kind = np.where(np.isfinite(like[:, 0]), GAUSSIAN, NONE).astype(np.uint8)
-            if name in parts:
-                idx, got, got_kind = parts[name](a, b)
-                like[idx], kind[idx] = got, got_kind
+        got, special = {}, np.zeros(b - a, dtype=bool)
+        for name, take in parts.items():
+            if name in distances:
+                got[name] = take(a, b)
                 if name in usable:
                     hit = np.zeros(b - a, dtype=bool)
-                    hit[idx] = True
+                    hit[got[name][0]] = True
                     special |= hit & np.asarray(usable[name])[a:b]
-            curves[name], kinds[name] = like, kind
-        if "best" in curves and special.any():
-            names = [p for p in usable if p in curves]
-            prod, cut = combine([shifted(curves[p][special], grid, offsets.get(p, 0.0) / 5.0) for p in names],
+        lists, summaries, kinds = {}, {}, {}
+        stored = {}
+        for name, (mu, err) in distances.items():
+            mu_b, err_b = np.asarray(mu, dtype=float)[a:b], np.asarray(err, dtype=float)[a:b]
+            kind = np.where(np.isfinite(mu_b) & np.isfinite(err_b) & (err_b > 0) & np.isfinite(mu_z[a:b]),
+                            GAUSSIAN, NONE).astype(np.uint8)
+            summ = gaussian_summaries(mu_b, err_b, mu_z[a:b], grid)
+            curve = np.full((b - a, m), np.nan)
+            if name in got:
+                idx, curves, got_kind = got[name]
+                curve[idx], kind[idx] = curves, got_kind
+                for k, v in summarize(curves, grid).items():
+                    summ[k][idx] = v
+            stored[name] = kind != GAUSSIAN
+            if special.any() and name in usable:
+                fill = special & (kind == GAUSSIAN)  # a Gaussian that enters a product: its curve
+                curve[fill] = gaussian_eta(mu_b[fill], err_b[fill], mu_z[a:b][fill], grid)
+            kinds[name], summaries[name], lists[name] = kind, summ, curve
+        if "best" in distances and special.any():
+            names = [p for p in usable if p in lists]
+            prod, cut = combine([shifted(lists[p][special], grid, offsets.get(p, 0.0) / 5.0) for p in names],
                                 [np.asarray(usable[p])[a:b][special] for p in names], grid)
-            curves["best"][special] = prod
+            lists["best"][special] = prod
             kinds["best"][special] = np.where(np.isfinite(prod[:, 0]), PRODUCT, NONE)
-            valid["best"] = np.ones(b - a, dtype=bool)
-            valid["best"][special] = ~cut
-        lists, summaries = {}, {}
-        for name, like in curves.items():
-            summaries |= {f"{name}_{k}": v for k, v in summarize(like, grid, valid.get(name)).items()}
-            lists[name] = pa.FixedSizeListArray.from_arrays(pa.array(like.astype(np.float32).ravel()), len(grid))
-        yield a, b, lists, summaries, kinds
+            stored["best"] = kinds["best"] != GAUSSIAN
+            for k, v in summarize(prod, grid, ~cut).items():
+                summaries["best"][k][special] = v
+        out_lists, out_summaries = {}, {}
+        for name, curve in lists.items():
+            keep = stored[name] & (kinds[name] != NONE)
+            values = np.where(keep[:, None], curve, 0.0).astype(np.float32).ravel()
+            out_lists[name] = pa.FixedSizeListArray.from_arrays(pa.array(values), m, mask=pa.array(~keep))
+            out_summaries |= {f"{name}_{k}": v for k, v in summaries[name].items()}
+        yield a, b, out_lists, out_summaries, kinds
+
+
+def dense_curves(lists: pa.Array, kinds, mu, mu_err, mu_z, grid: np.ndarray) -> np.ndarray:
+    """Every row's curve on ``grid`` (rows, grid), float64: the stored curve where there is
+    one, the analytic Gaussian of (mu, mu_err) at mu_z where its kind is ``GAUSSIAN``, NaN
+    where there is no distance. ``lists``: a companion file's ``<name>_eta_like`` column;
+    ``mu``, ``mu_err``, ``mu_z``: the product's ``<name>_mu``, ``<name>_mu_err`` (for
+    ``best``: ``mu_best``, ``mu_best_err``) and ``mu_z`` of the same rows."""
+    lists = lists.combine_chunks() if isinstance(lists, pa.ChunkedArray) else lists
+    kinds = np.asarray(kinds)
+    out = np.full((len(lists), len(grid)), np.nan)
+    valid = ~lists.is_null().to_numpy(zero_copy_only=False)
+    out[valid] = lists.flatten().to_numpy(zero_copy_only=False).astype(float).reshape(-1, len(grid))
+    gauss = kinds == GAUSSIAN
+    out[gauss] = gaussian_eta(np.asarray(mu)[gauss], np.asarray(mu_err)[gauss], np.asarray(mu_z)[gauss], grid)
+    return out
 
 
 def likelihood_columns(distances: dict[str, tuple], mu_z, grid: np.ndarray, **kw) -> tuple[dict, dict]:

@@ -228,7 +228,9 @@ def likelihood_schema(schema: pa.Schema, eta_grid) -> pa.Schema:
             return {b"unit": b"", b"description": f"where the likelihood from {source} came from ({codes})".encode()}
         return {b"unit": b"1 / dex", b"description": (f"likelihood of eta = log10(d_z / d) from {source} on the "
                                                       "grid of the schema metadata (galdist.eta_grid): a density "
-                                                      "in 1/dex, NaN where there is no distance").encode()}
+                                                      "in 1/dex; null where there is no distance or it is the "
+                                                      f"analytic Gaussian of {source} (kind 1; "
+                                                      "galdist.likelihood.dense_curves rebuilds it)").encode()}
 
     fields = [pa.field(f.name, f.type, metadata=meta(f.name)) for f in schema]
     return pa.schema(fields, metadata=schema_metadata(np.asarray(eta_grid)))
