@@ -169,14 +169,17 @@ def parse_job_stats(text: str) -> dict:
 
 def swap_check(catalog: Path, run: str, shard_rows: int, cores: int, n_shards: int, log_path: Path) -> dict:
     """Dry-run a Tully-Fisher calibration swap and count the jobs Snakemake would run: one
-    distance job per shard, every one of them Tully-Fisher's, and the three final steps."""
+    distance job per shard, every one of them Tully-Fisher's, and the final steps (statistics,
+    groups, assembly, plots, report)."""
     args = config_args(catalog, run, shard_rows) + [f"tully_fisher={SWAP_CALIBRATION}"]
     cmd = snakemake_cmd(cores, "-n", *args)
     proc = subprocess.run(cmd, cwd=REPO, capture_output=True, text=True)
     log_path.write_text(proc.stdout + proc.stderr)
     counts = parse_job_stats(proc.stdout + "\n" + proc.stderr)
     unexpected = sorted(set(counts) - SWAP_ALLOWED)
-    shards = [line for line in (proc.stdout + proc.stderr).splitlines() if "output:" in line and "/shards/" in line]
+    # per-shard outputs: every one Tully-Fisher's (the groups job's per-galaxy folder follows the distances)
+    shards = [line for line in (proc.stdout + proc.stderr).splitlines()
+              if "output:" in line and "/shards/" in line and "/shards/groups" not in line]
     ok = (proc.returncode == 0 and bool(counts) and not unexpected and counts.get(METHOD_RULE, 0) == n_shards
           and all("/shards/tully_fisher/" in line for line in shards))
     return {"command": " ".join(cmd[1:]), "returncode": proc.returncode, "jobs": counts,
