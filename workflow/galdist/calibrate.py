@@ -487,24 +487,29 @@ def group_column_names(config: Mapping) -> dict[str, str]:
 def group_column_problems(config: Mapping) -> list[str]:
     """Messages for group columns the calibration catalog lacks (``mu_ref`` and
     ``mu_ref_err`` are optional, but one without the other is refused)."""
+    names = group_column_names(config)
+    problems = []
+    for one, have in sample_file_columns(config):
+        if names["group_id"] not in have:
+            problems.append(f"config key 'calibrate.columns.group_id': calibration catalog {one} has no "
+                            f"column '{names['group_id']}' (galaxies sharing a distance); add it or "
+                            "name yours there")
+        if (names["mu_ref"] in have) != (names["mu_ref_err"] in have):
+            problems.append(f"calibration catalog {one}: give both '{names['mu_ref']}' and "
+                            f"'{names['mu_ref_err']}' (reference modulus and its error) or neither "
+                            "(config keys calibrate.columns.mu_ref / mu_ref_err)")
+    return problems
+
+
+def sample_file_columns(config: Mapping):
+    """(file, the columns it has) for every file of the calibration sample."""
     from .catalog import describe, detect_format, source_files
 
-    names = group_column_names(config)
     paths, fmt = sample_paths(config)
-    problems = []
     for path in paths:
         f = detect_format(path, fmt)
         for one in source_files(path, f):
-            have = describe(one, f)
-            if names["group_id"] not in have:
-                problems.append(f"config key 'calibrate.columns.group_id': calibration catalog {one} has no "
-                                f"column '{names['group_id']}' (galaxies sharing a distance); add it or "
-                                "name yours there")
-            if (names["mu_ref"] in have) != (names["mu_ref_err"] in have):
-                problems.append(f"calibration catalog {one}: give both '{names['mu_ref']}' and "
-                                f"'{names['mu_ref_err']}' (reference modulus and its error) or neither "
-                                "(config keys calibrate.columns.mu_ref / mu_ref_err)")
-    return problems
+            yield one, describe(one, f)
 
 
 def read_group_columns(plan, config: Mapping) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -835,21 +840,11 @@ def _plane_option_problems(cfg: Mapping, form: str) -> list[str]:
 
 def _plane_column_problems(config: Mapping) -> list[str]:
     """The FP needs <mu_e> or the total magnitude in every calibration file."""
-    from .catalog import describe, detect_format, source_files
-
     names = config["columns"]
     mu_e, mag = names.get("fp_mu_e", "fp_mu_e"), names.get("fp_mag", "fp_mag")
-    paths, fmt = sample_paths(config)
-    problems = []
-    for path in paths:
-        f = detect_format(path, fmt)
-        for one in source_files(path, f):
-            have = describe(one, f)
-            if mu_e not in have and mag not in have:
-                problems.append(f"calibration catalog {one}: the Fundamental Plane needs column '{mu_e}' (mean "
-                                f"surface brightness within R_e) or '{mag}' (total magnitude); add one, or name "
-                                "yours in config key 'columns' (fp_mu_e / fp_mag)")
-    return problems
+    return [f"calibration catalog {one}: the Fundamental Plane needs column '{mu_e}' (mean surface brightness "
+            f"within R_e) or '{mag}' (total magnitude); add one, or name yours in config key 'columns' "
+            "(fp_mu_e / fp_mag)" for one, have in sample_file_columns(config) if mu_e not in have and mag not in have]
 
 
 def check(config: Mapping, buildable=frozenset()) -> None:
