@@ -293,7 +293,6 @@ def likelihood_blocks(distances: dict[str, tuple], mu_z, grid: np.ndarray, *, pa
                     hit[got[name][0]] = True
                     special |= hit & np.asarray(usable[name])[a:b]
         lists, summaries, kinds = {}, {}, {}
-        stored = {}
         for name, (mu, err) in distances.items():
             mu_b, err_b = np.asarray(mu, dtype=float)[a:b], np.asarray(err, dtype=float)[a:b]
             kind = np.where(np.isfinite(mu_b) & np.isfinite(err_b) & (err_b > 0) & np.isfinite(mu_z[a:b]),
@@ -305,7 +304,6 @@ def likelihood_blocks(distances: dict[str, tuple], mu_z, grid: np.ndarray, *, pa
                 curve[idx], kind[idx] = curves, got_kind
                 for k, v in summarize(curves, grid).items():
                     summ[k][idx] = v
-            stored[name] = kind != GAUSSIAN
             if special.any() and name in usable:
                 fill = special & (kind == GAUSSIAN)  # a Gaussian that enters a product: its curve
                 curve[fill] = gaussian_eta(mu_b[fill], err_b[fill], mu_z[a:b][fill], grid)
@@ -316,12 +314,11 @@ def likelihood_blocks(distances: dict[str, tuple], mu_z, grid: np.ndarray, *, pa
                                 [np.asarray(usable[p])[a:b][special] for p in names], grid)
             lists["best"][special] = prod
             kinds["best"][special] = np.where(np.isfinite(prod[:, 0]), PRODUCT, NONE)
-            stored["best"] = kinds["best"] != GAUSSIAN
             for k, v in summarize(prod, grid, ~cut).items():
                 summaries["best"][k][special] = v
         out_lists, out_summaries = {}, {}
         for name, curve in lists.items():
-            keep = stored[name] & (kinds[name] != NONE)
+            keep = (kinds[name] != GAUSSIAN) & (kinds[name] != NONE)  # curves the product does not hold
             values = np.where(keep[:, None], curve, 0.0).astype(np.float32).ravel()
             out_lists[name] = pa.FixedSizeListArray.from_arrays(pa.array(values), m, mask=pa.array(~keep))
             out_summaries |= {f"{name}_{k}": v for k, v in summaries[name].items()}
