@@ -23,7 +23,7 @@ include: "workflow/rules/calibrate.smk"
 
 rule all:
     input:
-        rules.assemble.output.distances,
+        PRODUCT_FILES,
         rules.assemble.output.summary,
         rules.plots.output,
         rules.run_report.output,

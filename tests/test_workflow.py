@@ -207,10 +207,13 @@ def test_calibration_change_reruns_only_that_method(demo_run, method, override):
     assert result.returncode == 0, out[-2000:]
     jobs = _jobs(out)
     # one distance job per shard, all of them the changed method's
-    assert jobs == {"distance": 3, "crosscheck_statistics": 1, "groups": 1, "assemble": 1, "plots": 1, "run_report": 1, "all": 1}, jobs
-    # per-shard outputs (the groups job's one folder of member columns aside: it gathers every shard)
+    assert jobs == {"distance": 3, "crosscheck_statistics": 1, "groups": 1, "assemble_part": 3, "assemble": 1,
+                    "plots": 1, "run_report": 1, "all": 1}, jobs
+    # per-shard stage outputs (the groups job's one folder of member columns and the product's
+    # parts aside: they gather every stage of a shard)
     planned = [line.split("output:")[1] for line in out.splitlines()
-               if line.strip().startswith("output:") and "/shards/" in line and "/shards/groups" not in line]
+               if line.strip().startswith("output:") and "/shards/" in line
+               and "/shards/groups" not in line and "/shards/assembly" not in line]
     assert len(planned) == 3 and all(f"/shards/{method}/" in p for p in planned), planned
 
 
@@ -247,3 +250,39 @@ def test_dry_run_shows_the_dag(workflow_copy):
     out = result.stdout + result.stderr
     assert result.returncode == 0, out[-2000:]
     assert "demo_catalog" in out and "ingest" in out
+
+
+def test_product_in_parts_is_the_same_table(workflow_copy):
+    """product_layout parts: a folder of per-shard parts that reads as the one file would;
+    switching the layout replaces the other one (never both beside each other)."""
+    from galdist import export
+
+    cols = small_catalog(250)
+    pq.write_table(pa.table(cols), workflow_copy / "my.parquet")
+    args = ("--config", "catalog=my.parquet", "run=parts", "shard_rows=100")
+    result = run_snakemake(workflow_copy, *args, "product_layout=parts")
+    assert result.returncode == 0, result.stderr[-3000:]
+    run = workflow_copy / "results" / "parts"
+    parts = sorted((run / "distances").glob("part-*.parquet"))
+    assert [p.name for p in parts] == ["part-00000.parquet", "part-00001.parquet", "part-00002.parquet"]
+    assert sorted(p.name for p in (run / "eta_likelihoods").glob("*.parquet")) == [p.name for p in parts]
+    assert not (run / "distances.parquet").exists()
+    dataset = pq.read_table(run / "distances")  # pyarrow reads the folder as one table
+    assert dataset.column("galaxy_id").to_pylist() == list(cols["galaxy_id"])  # input order
+    summary = json.loads((run / "summary.json").read_text())
+    assert summary["product"] == {"layout": "parts", "path": "distances/", "parts": 3}
+    assert summary["rows_out"] == 250
+    fits_out = workflow_copy / "from_parts.fits"
+    assert export.export(run / "distances", fits_out, "fits")["rows"] == 250
+
+    result = run_snakemake(workflow_copy, *args, "product_layout=file")
+    assert result.returncode == 0, result.stderr[-3000:]
+    assert not (run / "distances").exists() and not (run / "eta_likelihoods").exists()
+    one = pq.read_table(run / "distances.parquet")
+    assert one.num_rows == 250 and one.schema.names == dataset.schema.names
+    import pandas as pd
+
+    pd.testing.assert_frame_equal(one.to_pandas(), dataset.to_pandas())  # the same values, row for row
+    assert pq.read_table(run / "eta_likelihoods.parquet").num_rows == 250
+    # the parts were temporary: joined into the one file, then removed
+    assert not list((run / "shards" / "assembly").glob("part-*.parquet"))

@@ -1,54 +1,61 @@
-"""Rule script: stream every shard's stages into distances.parquet and write summary.json."""
+"""Rule script: the parts' counts into summary.json, their samples into plot_sample.parquet,
+COLUMNS.md, and (product_layout file) the parts joined into distances.parquet."""
+import shutil
 from pathlib import Path
 
-from galdist import calibration, conventions, dictionary, io, likelihood, product, redshift
-from galdist.methods import REGISTRY
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from galdist import dictionary, io, product, report
 from galdist.logs import logged
 
 with logged(snakemake.log[0], "assemble") as log:
-    inp, cfg, min_cz = snakemake.input, snakemake.params.crosscheck, snakemake.params.min_cz
-    stages = ["extinction", "kcorr", "redshift", *snakemake.params.methods]
-    shards = [{"shard": s} | {st: inp[st][i] for st in stages} | {"groups": Path(inp.group_members) / Path(s).name}
-              for i, s in enumerate(inp.shards)]
-    like_out = dict(snakemake.output.items()).get("likelihoods")  # None: likelihoods.write is false
-    if like_out is None:  # an earlier run's companion file would no longer match the product
-        Path(snakemake.output.distances).with_name("eta_likelihoods.parquet").unlink(missing_ok=True)
-    # each method job's eta-likelihood part of each shard, stitched by the assembly
-    parts = [{m: inp[f"{m}_likelihood"][i] for m in snakemake.params.methods} for i in range(len(shards))] \
-        if like_out else None
-    grouped, lk = io.read_json(inp.groups), snakemake.params.likelihoods
-    stats, ingest_summary = io.read_json(inp.statistics), io.read_json(inp.ingest_summary)
-    cals = {m: calibration.load_calibration(p) for m, p in snakemake.params.calibrations.items()}
-    for m, cal in cals.items():  # provenance must describe the calibration the distances came from
-        io.check_stamps(inp[m], "galdist.calibration.sha256", cal.sha256,
-                        f"computed with another version of calibration {cal.path}")
-    conventions.mark_h0_independence(stats, {REGISTRY[m].prefix: cal for m, cal in cals.items()})
-    info = product.provenance(snakemake.config, cals, ingest_summary, Path(snakemake.scriptdir).parents[1])
-    info["zero_point"] = grouped["zero_point"]  # the offsets, and whether mu_best and group_mu carry them
-    entries = dictionary.by_name(dictionary.for_run(list(snakemake.config["bands"]), snakemake.params.methods,
+    inp, out, params = snakemake.input, snakemake.output, snakemake.params
+    run_dir, methods, lk = Path(params.run_dir), params.methods, params.likelihoods
+    ingest_summary = io.read_json(inp.ingest_summary)
+    entries = dictionary.by_name(dictionary.for_run(list(snakemake.config["bands"]), methods,
                                                     ingest_summary.get("kept_columns", {})))
-    counts = product.assemble(shards, snakemake.output.distances, snakemake.output.plot_sample,
-                              redshift.MuGrid.load(inp.grid), stats, snakemake.params.methods, info,
-                              min_cz=min_cz, clip_sigma=cfg["clip_sigma"],
-                              plot_max_points=cfg["plot_max_points"], total_rows=ingest_summary["rows_out"],
-                              entries=entries, zero_point=grouped["zero_point"],
-                              likelihood_path=like_out, likelihood_parts=parts,
-                              eta_grid=likelihood.eta_grid(lk["eta_min"], lk["eta_max"], lk["eta_step"])
-                              if like_out else None, copy_inputs=snakemake.params.copy_inputs)
+    counts = product.merge_counts([io.read_json(p) for p in inp.counts], entries)
     if counts["rows"] != ingest_summary["rows_in"]:
         raise RuntimeError(f"row count changed: {ingest_summary['rows_in']} in, {counts['rows']} out")
-    summary = {"rows_in": ingest_summary["rows_in"], "rows_out": counts["rows"],
-               "methods": list(snakemake.params.methods),
+    parts, like_parts = list(inp.parts), list(inp.likelihoods)
+    # the other layout's product (an earlier run's), a likelihood file no longer written, and
+    # parts of shards this run does not have: none may sit beside the product and disagree with it
+    stale = [run_dir / "distances", run_dir / "eta_likelihoods"] if params.layout == "file" else [
+        run_dir / "distances.parquet", run_dir / "eta_likelihoods.parquet"]
+    if not like_parts:
+        stale += [run_dir / "eta_likelihoods.parquet", run_dir / "eta_likelihoods"]
+    for path in stale:
+        shutil.rmtree(path) if path.is_dir() else path.unlink(missing_ok=True)
+    if params.layout == "parts":
+        for folder, current in ((run_dir / "distances", parts), (run_dir / "eta_likelihoods", like_parts)):
+            keep = {Path(p).name for p in current}
+            for old in folder.glob("part-*.parquet") if folder.is_dir() else []:
+                if old.name not in keep:
+                    old.unlink()
+    else:
+        product.concatenate(parts, out.distances)
+        if like_parts:
+            product.concatenate(like_parts, out.likelihoods)
+    like_files = [out.likelihoods] if params.layout == "file" and like_parts else like_parts
+    info = report.read_provenance(parts[0])
+    summary = {"rows_in": ingest_summary["rows_in"], "rows_out": counts["rows"], "methods": list(methods),
+               "product": {"layout": params.layout,
+                           "path": Path(out.distances).name if params.layout == "file" else "distances/",
+                           "parts": len(parts)},
                "flag_counts": counts["flag_counts"], "best_method": counts["best_method"],
-               "statistics": stats, "groups": grouped["groups"], "zero_point": grouped["zero_point"],
-               "eta_likelihoods": {"file": Path(like_out).name, "eta_min": lk["eta_min"],
-                                   "eta_max": lk["eta_max"], "eta_step": lk["eta_step"],
-                                   "bytes": Path(like_out).stat().st_size,
-                                   "kinds": counts["likelihood_kinds"]} if like_out else None,
+               "statistics": io.read_json(inp.statistics), **{k: v for k, v in io.read_json(inp.groups).items()
+                                                              if k in ("groups", "zero_point")},
+               "eta_likelihoods": {"file": "eta_likelihoods.parquet" if params.layout == "file" else "eta_likelihoods/",
+                                   "eta_min": lk["eta_min"], "eta_max": lk["eta_max"], "eta_step": lk["eta_step"],
+                                   "bytes": sum(Path(p).stat().st_size for p in like_files),
+                                   "kinds": counts["likelihood_kinds"]} if like_parts else None,
                "cosmology": info["config"]["redshift"]["cosmology"],
                "calibrations": {m: c["reference"] for m, c in info["calibrations"].items()},
                "inputs": info["inputs"], "git_commit": info["git_commit"], "cautions": info["cautions"]}
-    log.info("%d rows written", counts["rows"])
-    io.write_json(summary, snakemake.output.summary)
-    with io.atomic_path(snakemake.output.columns) as tmp:
+    samples = [pq.read_table(p) for p in inp.samples]
+    io.write_parquet(pa.concat_tables(samples), out.plot_sample)
+    log.info("%d rows in %d parts (%s)", counts["rows"], len(parts), params.layout)
+    io.write_json(summary, out.summary)
+    with io.atomic_path(out.columns) as tmp:
         tmp.write_text(dictionary.columns_markdown(counts["entries"], snakemake.config["run"]), encoding="utf-8")

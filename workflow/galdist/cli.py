@@ -331,6 +331,7 @@ def cmd_run(args) -> int:
         return 1
     _say(f"products in {shown}/:")
     for name, what in (("distances.parquet", "one row per input galaxy"),
+                       ("distances/", "one row per input galaxy, in parts (a Parquet dataset: read the folder)"),
                        ("summary.json", f"counts and statistics (galdist summary {shown})"),
                        ("COLUMNS.md", "what each column means: unit, description, flag bits"),
                        ("report.html", "the run report: open it first"),
@@ -543,12 +544,16 @@ def cmd_export(args) -> int:
     from . import export
 
     path = Path(args.run_dir)
-    product = path / "distances.parquet" if path.is_dir() else path
-    if not product.is_file():
-        raise Refused(f"no distances.parquet in {args.run_dir}: give a finished run's folder "
-                      f"(<output_dir>/<run>, e.g. {DEFAULT_OUTPUT_DIR}/mine) or the product file")
+    # a run's folder holds distances.parquet or (product_layout parts) the folder distances/
+    candidates = [path / "distances.parquet", path / "distances"] if path.is_dir() and not any(
+        path.glob("part-*.parquet")) else [path]
+    product = next((p for p in candidates if p.is_file() or any(p.glob("part-*.parquet"))), None)
+    if product is None:
+        raise Refused(f"no distances.parquet or distances/ in {args.run_dir}: give a finished run's folder "
+                      f"(<output_dir>/<run>, e.g. {DEFAULT_OUTPUT_DIR}/mine) or the product")
     columns = [c for item in args.columns or [] for c in item.split(",") if c]
-    out = Path(args.output) if args.output else product.with_suffix("." + args.format)
+    out = Path(args.output) if args.output else (
+        product.with_suffix("." + args.format) if product.is_file() else product.parent / f"distances.{args.format}")
     if out.resolve() == product.resolve():
         raise Refused(f"-o {out}: that is the product itself; choose another file name")
     try:
@@ -597,7 +602,7 @@ def parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_flags)
 
     p = sub.add_parser("export", help="the product as FITS, ECSV or CSV, with units and descriptions")
-    p.add_argument("run_dir", help="the run's folder, <output_dir>/<run> (or its distances.parquet)")
+    p.add_argument("run_dir", help="the run's folder, <output_dir>/<run> (or its distances.parquet or distances/)")
     p.add_argument("--format", required=True, choices=("fits", "ecsv", "csv"),
                    help="fits (TUNIT/TCOMM), ecsv (astropy's header) or csv (plain, with a .columns.json beside it)")
     p.add_argument("--columns", nargs="+", help="only these columns, in this order (names or comma-separated lists; "

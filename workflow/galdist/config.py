@@ -122,6 +122,27 @@ def catalog_spec(config: dict) -> tuple[list[str], str]:
     return ([paths] if isinstance(paths, str) else list(paths)), cat.get("format", "auto")
 
 
+#: config product_layout auto: one product file up to this size of the catalog's files
+SINGLE_FILE_MAX_CATALOG_BYTES = 1 << 30
+
+
+def product_layout(config: dict) -> str:
+    """"file" (one distances.parquet) or "parts" (a distances/ folder of per-shard parts):
+    config ``product_layout``, where ``auto`` decides by the catalog's size on disk (a
+    catalog the workflow builds itself, not there yet, counts as small)."""
+    layout = config.get("product_layout", "auto")
+    if layout != "auto":
+        return layout
+
+    def size(path: Path) -> int:
+        if path.is_file():
+            return path.stat().st_size
+        return sum(p.stat().st_size for p in path.rglob("*") if p.is_file()) if path.is_dir() else 0
+
+    total = sum(size(Path(p)) for p in catalog_spec(config)[0])
+    return "parts" if total > SINGLE_FILE_MAX_CATALOG_BYTES else "file"
+
+
 def check_inputs_exist(paths: list[str], buildable: set[str] = frozenset()) -> None:
     """Every catalog path must exist (or be one the workflow itself builds)."""
     missing = [p for p in paths if p not in buildable and not Path(p).exists()]

@@ -26,7 +26,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from .io import atomic_path, is_arrow_text
+from .io import atomic_path, dataset_files, is_arrow_text
 
 FORMATS = ("fits", "ecsv", "csv")
 BATCH_ROWS = 65_536
@@ -36,7 +36,7 @@ def columns_info(product: str | Path, columns=None) -> list[dict]:
     """Each column's name, unit, description, Arrow type, flag bits and longest text, read
     from the product's metadata. ``columns``: the names to keep, in that order (ValueError
     naming any the product lacks)."""
-    schema = pq.read_schema(product)
+    schema = pq.read_schema(dataset_files(product)[0])  # parts share one schema and header
     meta = schema.metadata or {}
     if columns:
         missing = [c for c in columns if c not in schema.names]
@@ -61,12 +61,13 @@ def columns_info(product: str | Path, columns=None) -> list[dict]:
 
 
 def _batches(product, names):
-    pf = pq.ParquetFile(product, pre_buffer=False, buffer_size=1 << 22)
-    yield from pf.iter_batches(batch_size=BATCH_ROWS, columns=names, use_threads=False)
+    for path in dataset_files(product):
+        pf = pq.ParquetFile(path, pre_buffer=False, buffer_size=1 << 22)
+        yield from pf.iter_batches(batch_size=BATCH_ROWS, columns=names, use_threads=False)
 
 
 def export(product: str | Path, out: str | Path, fmt: str, columns=None) -> dict:
-    """Write ``product``'s rows (``columns`` only, if given) to ``out`` in ``fmt``; returns
+    """Write ``product``'s rows (one file, or a folder of parts) (``columns`` only, if given) to ``out`` in ``fmt``; returns
     {"rows", "columns", "files"}."""
     if fmt not in FORMATS:
         raise ValueError(f"format {fmt!r}: choose one of {', '.join(FORMATS)}")
@@ -128,7 +129,7 @@ def _fits(product, out: Path, info: list[dict]) -> int:
     from astropy.io import fits
     from astropy.table import Column, Table
 
-    n = pq.ParquetFile(product).metadata.num_rows
+    n = sum(pq.ParquetFile(p).metadata.num_rows for p in dataset_files(product))
     # astropy's own header for these columns (TFORM, TZERO of unsigned flags, and the
     # descriptions and bits as its serialized-column comments, which Table.read restores);
     # the units are set below, where FITS cannot spell a unit astropy would warn

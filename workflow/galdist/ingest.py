@@ -578,6 +578,8 @@ def run(p: IngestPlan, out_dir: str | Path, summary_path: str | Path, shard_rows
     counts: Counter = Counter()
     rows = flagged = 0
     writer = _ShardWriter(tmp_dir, schema, shard_rows)
+    # the longest value of each text column: every product part's header needs the catalog's
+    text_names, text_lengths = [f.name for f in schema if is_arrow_text(f.type)], {}
     try:
         needed = sorted(set(p.source_of.values()) | {src for src, _, _ in p.keep.values()})
         for source in p.files:
@@ -591,7 +593,11 @@ def run(p: IngestPlan, out_dir: str | Path, summary_path: str | Path, shard_rows
                 for member in F.Quality:
                     counts[member.name] += int(F.has(q, member).sum())
                 flagged += int(np.count_nonzero(q))
-                writer.write(_table(cols, q, schema))
+                table = _table(cols, q, schema)
+                for name in text_names:
+                    longest = pc.max(pc.utf8_length(table.column(name))).as_py() or 0
+                    text_lengths[name] = max(text_lengths.get(name, 0), longest)
+                writer.write(table)
                 rows += len(q)
                 in_file += len(q)
                 log.info("read %d rows", rows)
@@ -617,6 +623,7 @@ def run(p: IngestPlan, out_dir: str | Path, summary_path: str | Path, shard_rows
                     for canonical, src in sorted(p.source_of.items())},
         "absent_optional_columns": sorted(c.name for c in OPTIONAL if c.name not in p.source_of),
         "kept_columns": {name: {"source": src, "type": str(t), "unit": unit} for name, (src, t, unit) in p.keep.items()},
+        "text_lengths": {name: text_lengths.get(name, 0) for name in text_names},
     }
     write_json(summary, summary_path)
     return summary

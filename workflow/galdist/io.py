@@ -26,7 +26,9 @@ import pyarrow.parquet as pq
 from .errors import CorruptFileError, StaleInputError
 
 FINGERPRINT_KEY = b"galdist.shard_fingerprint"
-INTERMEDIATE_COMPRESSION = "snappy"  # fastest to write and read for files read once
+#: zstd (level 1, pyarrow's default) for the intermediates too: as fast to write as snappy here and
+#: 12-22 % smaller per stage file (measured on the benchmark's shards; issue 22's disk budget)
+INTERMEDIATE_COMPRESSION = "zstd"
 PRODUCT_COMPRESSION = "zstd"  # smaller final product, still fast to read
 ROW_GROUP_ROWS = 256 * 1024  # ~2 MB per float column: large enough to compress well, small to stream
 #: float columns every file keeps in float64: positions (float32 resolves only ~0.1 arcsec at
@@ -152,6 +154,18 @@ class AtomicParquetWriter:
             _commit(self.tmp, self.path)
         self.tmp.unlink(missing_ok=True)
         return False
+
+
+def dataset_files(path: str | Path) -> list[Path]:
+    """The Parquet files of a product: the file itself, or a folder's part-*.parquet in
+    order (config product_layout parts); FileNotFoundError naming a folder without parts."""
+    path = Path(path)
+    if not path.is_dir():
+        return [path]
+    parts = sorted(path.glob("part-*.parquet"))
+    if not parts:
+        raise FileNotFoundError(f"{path} holds no part-*.parquet files")
+    return parts
 
 
 def write_json(data, path: str | Path) -> None:

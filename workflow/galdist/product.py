@@ -1,12 +1,14 @@
-"""The final product: join every stage's shard files, cross-check, write one Parquet.
+"""The final product: join every stage's shard files, cross-check, write Parquet parts.
 
-``assemble`` streams shard by shard (never the whole catalog in memory): it
-reads the ingest shard and each stage's narrow file (fingerprints checked),
-derives the per-galaxy cross-check columns from the sample statistics computed
-beforehand over all shards (``crosscheck.sample_statistics``), and appends the
-rows, in input order, to ``distances.parquet``. Units go into field metadata,
-provenance into the schema metadata. It also counts every flag bit for the
-summary and keeps a small deterministic subsample of rows for the plots.
+``assemble_part`` streams one shard (one job per shard, in parallel): it reads the
+ingest shard and each stage's narrow file (fingerprints checked), derives the
+per-galaxy cross-check columns from the sample statistics computed beforehand over
+all shards (``crosscheck.sample_statistics``), and writes the rows, in input order,
+to the shard's product part. Units go into field metadata, provenance into the
+schema metadata. It also counts every flag bit for the summary and keeps a small
+deterministic subsample of rows for the plots. The parts are the product
+(``distances/``, a Parquet dataset) or are joined into one ``distances.parquet``
+(``concatenate``; config ``product_layout``, ``galdist.config.product_layout``).
 """
 
 from __future__ import annotations
@@ -236,27 +238,29 @@ def likelihood_schema(schema: pa.Schema, eta_grid) -> pa.Schema:
     return pa.schema(fields, metadata=schema_metadata(np.asarray(eta_grid)))
 
 
-def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, methods: list[str],
-             provenance_info: dict, *, min_cz: float, clip_sigma: float, plot_max_points: int,
-             total_rows: int, entries: dict, zero_point: dict | None = None,
-             likelihood_path=None, eta_grid=None, likelihood_parts=None, copy_inputs: bool = True) -> dict:
-    """Stream the shards into ``out_path``; returns flag counts, best-method counts and the
-    product's dictionary entries in column order.
+def assemble_part(files: dict, index: int, out_path, sample_path, grid, statistics: dict, methods: list[str],
+                  provenance_info: dict, *, min_cz: float, clip_sigma: float, keep_fraction: float,
+                  text_lengths: dict, entries: dict, zero_point: dict | None = None, likelihood_path=None,
+                  eta_grid=None, likelihood_parts=None, copy_inputs: bool = True) -> dict:
+    """Stream one shard's stages into the product part ``out_path``; returns its counts
+    (``merge_counts`` adds the parts').
 
-    ``shards``: one dict per shard, in order, mapping "shard" to the ingest shard
-    and each stage name to its narrow file. ``entries``: the run's column dictionary
-    (``dictionary.by_name(dictionary.for_run(...))``); a column without an entry stops
-    the assembly. Besides the provenance, the schema metadata holds the header astropy
-    reads (``dictionary.astropy_metadata``). ``zero_point``: the run's zero-point tie
-    (``groups.fit_zero_points``), subtracted in mu_best where "applied". ``likelihood_path``:
-    the companion file of every row's eta likelihoods on ``eta_grid`` per method and for
-    mu_best (``galdist.likelihood``), in product order; their summaries go into the product.
-    ``likelihood_parts``: per shard, method -> its job's eta-likelihood part file (the rows
-    whose likelihood is not the analytic Gaussian), read forward with the shard; without
-    them every likelihood is the analytic Gaussian. No ``eta_grid``: no likelihoods and no
-    summary columns. ``copy_inputs`` false: of the catalog's own columns only
-    ``IDENTITY_COLUMNS`` (config ``copy_inputs``; the rows keep the catalog's order, so
-    galaxy_id joins the rest back).
+    ``files``: "shard" the ingest shard and each stage name its narrow file; ``index``:
+    the shard's place (it seeds the plot subsample, ``keep_fraction`` of the rows, written
+    to ``sample_path``). ``entries``: the run's column dictionary
+    (``dictionary.by_name(dictionary.for_run(...))``); a column without an entry stops the
+    assembly. Besides the provenance, the schema metadata holds the header astropy reads
+    (``dictionary.astropy_metadata``; ``text_lengths``: the longest value of each text
+    column over the whole catalog, so that every part has the same header).
+    ``zero_point``: the run's zero-point tie (``groups.fit_zero_points``), subtracted in
+    mu_best where "applied". ``likelihood_path``: the part of the companion file of every
+    row's eta likelihoods on ``eta_grid`` per method and for mu_best
+    (``galdist.likelihood``); their summaries go into the product. ``likelihood_parts``:
+    method -> its job's eta-likelihood part file of this shard (the rows whose likelihood
+    is not the analytic Gaussian); without them every likelihood is the analytic Gaussian.
+    No ``eta_grid``: no likelihoods and no summary columns. ``copy_inputs`` false: of the
+    catalog's own columns only ``IDENTITY_COLUMNS`` (config ``copy_inputs``; the rows keep
+    the catalog's order, so galaxy_id joins the rest back).
     """
     from . import likelihood as lk
     from .io import FINGERPRINT_KEY, check_stamps, read_fingerprint
@@ -264,83 +268,76 @@ def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, 
 
     prefixes = [METHOD_PREFIX[m] for m in methods]
     flag_counts = {c: Counter() for c in FLAG_COLUMNS}
-    best = Counter()
+    best, kinds = Counter(), {}
     rows = 0
     writer = like_writer = None
-    samples = []
-    used: list = []
-    kinds = {}
-    text_lengths = longest_texts([f["shard"] for f in shards])
-    keep_fraction = min(1.0, plot_max_points / max(total_rows, 1))
+    samples, used = [], []
+    text_lengths = dict(text_lengths)
     offsets = crosscheck.tie(zero_point, prefixes)[0]
+    stages = {k: v for k, v in files.items() if k != "shard"}
+    rng = np.random.default_rng(index)
+    readers = {}
+    if eta_grid is not None and likelihood_parts:
+        part_files = {METHOD_PREFIX[m]: path for m, path in likelihood_parts.items()}
+        check_stamps(part_files.values(), FINGERPRINT_KEY.decode(), read_fingerprint(files["shard"]),
+                     f"computed from another version of shard {files['shard']}")
+        for p, path in part_files.items():
+            # an empty part (a job that computes no likelihood) depends on no grid
+            got = lk.part_grid(path) if lk.part_rows(path) else eta_grid
+            if got.shape != eta_grid.shape or not np.allclose(got, eta_grid, rtol=0, atol=1e-9):
+                raise StaleInputError(f"{path} holds eta likelihoods on another grid than config "
+                                      "likelihoods; delete it and run the same command again")
+        readers = {p: lk.PartReader(path) for p, path in part_files.items()}
     try:
-        for index, files in enumerate(shards):
-            stages = {k: v for k, v in files.items() if k != "shard"}
-            rng = np.random.default_rng(index)
-            readers, start = {}, 0
-            if eta_grid is not None and likelihood_parts:
-                part_files = {METHOD_PREFIX[m]: path for m, path in likelihood_parts[index].items()}
-                check_stamps(part_files.values(), FINGERPRINT_KEY.decode(), read_fingerprint(files["shard"]),
-                             f"computed from another version of shard {files['shard']}")
-                for p, path in part_files.items():
-                    # an empty part (a job that computes no likelihood) depends on no grid
-                    got = lk.part_grid(path) if lk.part_rows(path) else eta_grid
-                    if got.shape != eta_grid.shape or not np.allclose(got, eta_grid, rtol=0, atol=1e-9):
-                        raise StaleInputError(f"{path} holds eta likelihoods on another grid than config "
-                                              "likelihoods; delete it and run the same command again")
-                readers = {p: lk.PartReader(path) for p, path in part_files.items()}
-            for cols, units in iter_shard(files["shard"], stages, rows=BATCH_ROWS):
-                cols |= crosscheck.galaxy_columns(cols, grid, statistics, methods=prefixes, min_cz=min_cz,
-                                                  clip_sigma=clip_sigma, zero_point=zero_point)
-                cols["cz_cmb_kms"] = C_KMS * np.asarray(cols["z_cmb"], dtype=float)
-                if eta_grid is not None:
-                    # the likelihoods go to their file a block at a time; their summaries into the product
-                    dists = {p: (cols[f"{p}_mu"], cols[f"{p}_mu_err"]) for p in prefixes if f"{p}_mu" in cols}
-                    dists["best"] = (cols["mu_best"], cols["mu_best_err"])
-                    n_rows = len(cols["mu_z"])
-                    usable = {p: crosscheck.best_usable(cols[f"{p}_mu"], cols[f"{p}_mu_err"], cols[f"{p}_flags"])
-                              for p in prefixes if f"{p}_mu" in cols}
-                    parts = {p: (lambda a, b, r=r, s=start: r.take(s + a, s + b)) for p, r in readers.items()}
-                    for a, b, lists, summaries, kind in lk.likelihood_blocks(
-                            dists, cols["mu_z"], eta_grid, parts=parts, usable=usable, offsets=offsets):
-                        for k, v in summaries.items():
-                            cols.setdefault(k, np.full(n_rows, np.nan))[a:b] = v
-                        for name, v in kind.items():
-                            counts_of = kinds.setdefault(name, Counter())
-                            counts_of.update(dict(zip(*np.unique(v, return_counts=True))))
-                        if likelihood_path is not None:
-                            lt = pa.table({"galaxy_id": cols["galaxy_id"][a:b]}
-                                          | {f"{name}_eta_like": arr for name, arr in lists.items()}
-                                          | {f"{name}_eta_like_kind": pa.array(v) for name, v in kind.items()})
-                            if like_writer is None:
-                                like_writer = AtomicParquetWriter(likelihood_path,
-                                                                  likelihood_schema(lt.schema, eta_grid))
-                            like_writer.write(lt.cast(like_writer.writer.schema))
-                if writer is None:
-                    used = [e for e in ordered_entries(cols, entries)
-                            if copy_inputs or e.origin != "catalog" or e.name in IDENTITY_COLUMNS]
-                    stale = [f"{e.name} ({units[e.name]!r} in the stage file, {e.unit!r} in the dictionary)"
-                             for e in used if e.name in units and units[e.name] != e.unit]
-                    if stale:
-                        raise ValueError("units differ between the stage files and the column dictionary: "
-                                         + ", ".join(stale))
-                names = [e.name for e in used]
-                table = table_from_columns({n: cols[n] for n in names})
-                if writer is None:
-                    text_lengths["best_method"] = max(len("+".join(prefixes)), len(crosscheck.NO_METHOD))
-                    writer = AtomicParquetWriter(out_path, product_schema(table, entries, provenance_info,
-                                                                          text_lengths))
-                writer.write(table.cast(writer.writer.schema))
-                for c in FLAG_COLUMNS:
-                    if c in cols:
-                        for m in F.ALL[c]:
-                            flag_counts[c][m.name] += int(F.has(cols[c], m).sum())
-                best.update(crosscheck.count_labels(cols["best_method"]))
-                pick = rng.uniform(size=table.num_rows) < keep_fraction
-                samples.append(table.select([n for n in PLOT_COLUMNS if n in names]).filter(pa.array(pick)))
-                rows += table.num_rows
-                start += table.num_rows
-                log.info("shard %d/%d: %d of %d rows written", index + 1, len(shards), rows, total_rows)
+        for cols, units in iter_shard(files["shard"], stages, rows=BATCH_ROWS):
+            cols |= crosscheck.galaxy_columns(cols, grid, statistics, methods=prefixes, min_cz=min_cz,
+                                              clip_sigma=clip_sigma, zero_point=zero_point)
+            cols["cz_cmb_kms"] = C_KMS * np.asarray(cols["z_cmb"], dtype=float)
+            if eta_grid is not None:
+                # the likelihoods go to their file a block at a time; their summaries into the product
+                dists = {p: (cols[f"{p}_mu"], cols[f"{p}_mu_err"]) for p in prefixes if f"{p}_mu" in cols}
+                dists["best"] = (cols["mu_best"], cols["mu_best_err"])
+                n_rows = len(cols["mu_z"])
+                usable = {p: crosscheck.best_usable(cols[f"{p}_mu"], cols[f"{p}_mu_err"], cols[f"{p}_flags"])
+                          for p in prefixes if f"{p}_mu" in cols}
+                parts = {p: (lambda a, b, r=r, s=rows: r.take(s + a, s + b)) for p, r in readers.items()}
+                for a, b, lists, summaries, kind in lk.likelihood_blocks(
+                        dists, cols["mu_z"], eta_grid, parts=parts, usable=usable, offsets=offsets):
+                    for k, v in summaries.items():
+                        cols.setdefault(k, np.full(n_rows, np.nan))[a:b] = v
+                    for name, v in kind.items():
+                        counts_of = kinds.setdefault(name, Counter())
+                        counts_of.update({str(k): int(c) for k, c in zip(*np.unique(v, return_counts=True))})
+                    if likelihood_path is not None:
+                        lt = pa.table({"galaxy_id": cols["galaxy_id"][a:b]}
+                                      | {f"{name}_eta_like": arr for name, arr in lists.items()}
+                                      | {f"{name}_eta_like_kind": pa.array(v) for name, v in kind.items()})
+                        if like_writer is None:
+                            like_writer = AtomicParquetWriter(likelihood_path, likelihood_schema(lt.schema, eta_grid))
+                        like_writer.write(lt.cast(like_writer.writer.schema))
+            if writer is None:
+                used = [e for e in ordered_entries(cols, entries)
+                        if copy_inputs or e.origin != "catalog" or e.name in IDENTITY_COLUMNS]
+                stale = [f"{e.name} ({units[e.name]!r} in the stage file, {e.unit!r} in the dictionary)"
+                         for e in used if e.name in units and units[e.name] != e.unit]
+                if stale:
+                    raise ValueError("units differ between the stage files and the column dictionary: "
+                                     + ", ".join(stale))
+            names = [e.name for e in used]
+            table = table_from_columns({n: cols[n] for n in names})
+            if writer is None:
+                text_lengths["best_method"] = max(len("+".join(prefixes)), len(crosscheck.NO_METHOD))
+                writer = AtomicParquetWriter(out_path, product_schema(table, entries, provenance_info, text_lengths))
+            writer.write(table.cast(writer.writer.schema))
+            for c in FLAG_COLUMNS:
+                if c in cols:
+                    for m in F.ALL[c]:
+                        flag_counts[c][m.name] += int(F.has(cols[c], m).sum())
+            best.update(crosscheck.count_labels(cols["best_method"]))
+            pick = rng.uniform(size=table.num_rows) < keep_fraction
+            samples.append(table.select([n for n in PLOT_COLUMNS if n in names]).filter(pa.array(pick)))
+            rows += table.num_rows
+            log.info("%d rows written", rows)
     except BaseException:
         for w in (writer, like_writer):
             if w is not None:
@@ -351,8 +348,55 @@ def assemble(shards: list[dict], out_path, sample_path, grid, statistics: dict, 
             w.__exit__(None, None, None)
     write_parquet(pa.concat_tables(samples), sample_path)
     return {"rows": rows,
+            "flag_counts": {c: dict(v) for c, v in flag_counts.items() if v or c in ("quality_flags",)},
+            "best_method": dict(best), "columns": [e.name for e in used],
+            "likelihood_kinds": {name: dict(v) for name, v in kinds.items()}}
+
+
+def merge_counts(parts: list[dict], entries: dict) -> dict:
+    """The counts of every product part added up (``assemble_part``'s), each flag bit named
+    (zero where no row has it), and the product's dictionary entries in column order."""
+    from .likelihood import KIND_NAMES
+
+    flag_counts = {c: Counter() for c in FLAG_COLUMNS}
+    best, kinds = Counter(), {}
+    for part in parts:
+        for c, v in part["flag_counts"].items():
+            flag_counts[c].update(v)
+        best.update(part["best_method"])
+        for name, v in part["likelihood_kinds"].items():
+            kinds.setdefault(name, Counter()).update(v)
+    columns = parts[0]["columns"] if parts else []
+    return {"rows": sum(p["rows"] for p in parts),
             "flag_counts": {c: {m.name: flag_counts[c].get(m.name, 0) for m in F.ALL[c]}
-                            for c in FLAG_COLUMNS if flag_counts[c] or c in ("quality_flags",)},
-            "best_method": dict(sorted(best.items())), "entries": used,
-            "likelihood_kinds": {name: {lk.KIND_NAMES[int(k)]: int(c) for k, c in sorted(v.items())}
+                            for c in FLAG_COLUMNS if any(c in p["flag_counts"] for p in parts)},
+            "best_method": dict(sorted(best.items())), "entries": [entries[n] for n in columns],
+            "likelihood_kinds": {name: {KIND_NAMES[int(k)]: int(c) for k, c in sorted(v.items(), key=lambda kv: int(kv[0]))}
                                  for name, v in kinds.items()}}
+
+
+def concatenate(parts: list, out_path, created: str | None = None) -> int:
+    """The product parts, in order, as one Parquet file (row group by row group, never a
+    whole part in memory); the schema and its metadata are the first part's, with the
+    provenance's creation time ``created`` (default: now). Returns the rows written."""
+    import pyarrow.parquet as pq
+
+    schema = pq.read_schema(parts[0])
+    meta = dict(schema.metadata or {})
+    if b"galdist.provenance" in meta:
+        info = json.loads(meta[b"galdist.provenance"])
+        info["created_utc"] = created or _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+        meta[b"galdist.provenance"] = json.dumps(info, sort_keys=True, default=str).encode()
+    schema = schema.with_metadata(meta)
+    rows = 0
+    with AtomicParquetWriter(out_path, schema) as writer:
+        for path in parts:
+            pf = pq.ParquetFile(path)
+            if not pf.schema_arrow.equals(schema, check_metadata=False):
+                raise StaleInputError(f"{path} has other columns than {parts[0]}: the parts of one product "
+                                      "must come from one run; delete them and run the same command again")
+            for g in range(pf.num_row_groups):
+                table = pf.read_row_group(g)
+                writer.write(table.replace_schema_metadata(meta))
+                rows += table.num_rows
+    return rows

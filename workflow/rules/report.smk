@@ -14,7 +14,7 @@ rule run_report:
     input:
         unpack(calibration_fit_files),
         summary=rules.assemble.output.summary,
-        distances=rules.assemble.output.distances,
+        distances=PRODUCT_FILES,
         plots=[f"{RUN}/plots/{name}.png" for name in PLOTS],
     output:
         f"{RUN}/report.html",
