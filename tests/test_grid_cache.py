@@ -137,3 +137,53 @@ def test_a_hit_never_calls_the_computation(tmp_path):
     for name in ("a.json", "b.json"):
         grid_cache.cached(tmp_path / name, tmp_path, "demo_kind", {"x": 1}, build)
     assert len(calls) == 1 and (tmp_path / "b.json").read_text() == "grid"
+
+
+def test_remembered_answers_are_kept_only_in_an_existing_cache(tmp_path):
+    calls = []
+
+    def compute():
+        calls.append(1)
+        return [["r", 1.0000000000000002]]
+
+    folder = tmp_path / grid_cache.CACHE_FOLDER
+    assert grid_cache.remembered(folder, "demo_answer", {"x": 1}, compute) == [["r", 1.0000000000000002]]
+    assert not folder.exists()  # nothing written where no grid job ran yet (a failed start writes nothing)
+    folder.mkdir()
+    for _ in range(2):
+        assert grid_cache.remembered(folder, "demo_answer", {"x": 1}, compute) == [["r", 1.0000000000000002]]
+    assert len(calls) == 2  # the first call with a folder stored it; the next read it (float exact)
+    grid_cache.remembered(folder, "demo_answer", {"x": 2}, compute)
+    assert len(calls) == 3
+
+
+def test_parse_time_answers_match_the_computed_ones(tmp_path, defaults):
+    # the extinction factors go into the method rules' params: a remembered value must be
+    # the very value computed, or every start would re-run the method jobs
+    from galdist import conventions
+
+    folder = tmp_path / grid_cache.CACHE_FOLDER
+    folder.mkdir()
+    direct = conventions.extinction_factors(defaults, "sfd98")
+    first = conventions.extinction_factors(defaults, "sfd98", cache_dir=folder)
+    again = conventions.extinction_factors(defaults, "sfd98", cache_dir=folder)
+    assert direct == first == again and list(direct) == list(again)
+    assert len(list(folder.glob("extinction_factors-*.json"))) == 1
+    # a changed extinction section is another entry
+    conventions.extinction_factors(dict(defaults, extinction=dict(defaults["extinction"], r_v=2.9)), "sfd98",
+                                   cache_dir=folder)
+    assert len(list(folder.glob("extinction_factors-*.json"))) == 2
+
+
+def test_filter_check_remembers_a_file_by_content(tmp_path, defaults):
+    folder = tmp_path / grid_cache.CACHE_FOLDER
+    folder.mkdir()
+    curve = tmp_path / "tophat.csv"
+    curve.write_text("wavelength,throughput\n6000,1\n6500,1\n7000,1\n")
+    config = dict(defaults, bands={"R": {"filter": str(curve), "system": "AB", "ab_minus_vega": None}})
+    gconfig.check_bands(config, folder)
+    gconfig.check_bands(config, folder)
+    assert len(list(folder.glob("filter_check-*.json"))) == 1
+    curve.write_text("wavelength,throughput\n6000,0\n6500,0\n7000,0\n")  # now unusable: must be checked again
+    with pytest.raises(gconfig.ConfigError, match="positive throughput"):
+        gconfig.check_bands(config, folder)

@@ -63,20 +63,35 @@ def atomic_path(path: str | Path):
         tmp.unlink(missing_ok=True)
 
 
-def copy_file(src: str | Path, dst: str | Path, clean_stale: bool = True) -> None:
-    """Copy ``src`` to ``dst`` atomically. ``clean_stale`` False: leave other writers'
-    temporaries alone (a folder shared by concurrent jobs, e.g. the grid cache)."""
-    dst = Path(dst)
+def _target(dst: Path, clean_stale: bool) -> Path:
     if clean_stale:
-        tmp = _atomic_target(dst, suffix=dst.suffix)
-    else:
-        dst.parent.mkdir(parents=True, exist_ok=True)
-        fd, name = tempfile.mkstemp(prefix=f".{dst.name}.", suffix=".part", dir=dst.parent)
-        os.fchmod(fd, 0o666 & ~_umask())
-        os.close(fd)
-        tmp = Path(name)
+        return _atomic_target(dst, suffix=dst.suffix)
+    # a folder shared by concurrent jobs (the grid cache): leave other writers' temporaries alone
+    dst.parent.mkdir(parents=True, exist_ok=True)
+    fd, name = tempfile.mkstemp(prefix=f".{dst.name}.", suffix=".part", dir=dst.parent)
+    os.fchmod(fd, 0o666 & ~_umask())
+    os.close(fd)
+    return Path(name)
+
+
+def copy_file(src: str | Path, dst: str | Path, clean_stale: bool = True) -> None:
+    """Copy ``src`` to ``dst`` atomically. ``clean_stale`` False: in a folder shared by
+    concurrent jobs, e.g. the grid cache."""
+    dst = Path(dst)
+    tmp = _target(dst, clean_stale)
     try:
         shutil.copyfile(src, tmp)
+        _commit(tmp, dst)
+    finally:
+        tmp.unlink(missing_ok=True)
+
+
+def write_text(dst: str | Path, text: str, clean_stale: bool = True) -> None:
+    """Write ``text`` (UTF-8) to ``dst`` atomically; ``clean_stale`` as in ``copy_file``."""
+    dst = Path(dst)
+    tmp = _target(dst, clean_stale)
+    try:
+        tmp.write_text(text, encoding="utf-8")
         _commit(tmp, dst)
     finally:
         tmp.unlink(missing_ok=True)

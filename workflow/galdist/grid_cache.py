@@ -22,7 +22,7 @@ from collections.abc import Callable, Mapping
 from functools import lru_cache
 from pathlib import Path
 
-from .atomic import copy_file
+from .atomic import copy_file, write_text
 
 CACHE_FOLDER = ".galdist-cache"
 #: libraries whose version is part of every key (the ones the grids are computed with)
@@ -90,3 +90,34 @@ def cached(output: str | Path, output_dir: str | Path, kind: str, inputs: Mappin
     except OSError as exc:  # the cache only saves time: a full or read-only disk costs a recompute
         log.warning("%s: computed, not cached (%s)", kind, exc)
     return False
+
+
+def file_digest(path) -> str | None:
+    """SHA-256 of the file at ``path``, or None if there is no such file (a library's
+    name, like a speclite filter name, rather than a path)."""
+    if path is None or not Path(path).is_file():
+        return None
+    return hashlib.sha256(Path(path).read_bytes()).hexdigest()
+
+
+def remembered(cache_dir: str | Path | None, kind: str, inputs: Mapping, compute: Callable[[], object]):
+    """``compute()`` (a JSON-able value), or the value it gave before for the same ``inputs``
+    (same key as ``cached``), kept in ``cache_dir``. ``cache_dir`` None: always compute.
+    For the parse-time checks that would otherwise import speclite and dust_extinction
+    at every start of the workflow. Stored only where ``cache_dir`` exists already (the
+    grid jobs create it): a start that stops on a bad config writes nothing."""
+    if cache_dir is None:
+        return compute()
+    entry = Path(cache_dir) / f"{kind}-{cache_key(kind, inputs)}.json"
+    try:
+        return json.loads(entry.read_text(encoding="utf-8"))["value"]
+    except (OSError, ValueError, KeyError, TypeError):
+        pass  # no entry, or a damaged one: compute again
+    value = compute()
+    text = json.dumps({"kind": kind, "value": value}, sort_keys=True)
+    try:
+        if entry.parent.is_dir():
+            write_text(entry, text, clean_stale=False)
+    except OSError:
+        pass  # the cache only saves time
+    return json.loads(text)["value"]
