@@ -48,10 +48,11 @@ def code_digest(root: Path = PACKAGE) -> str:
 
 @lru_cache(maxsize=1)
 def library_versions() -> dict[str, str | None]:
-    """Installed version of each of ``LIBRARIES`` (None: not installed)."""
+    """Installed version of each of ``LIBRARIES`` (None: not installed), and Python's."""
+    import platform
     from importlib import metadata
 
-    versions = {}
+    versions = {"python": platform.python_version()}
     for name in LIBRARIES:
         try:
             versions[name] = metadata.version(name)
