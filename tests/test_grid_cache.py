@@ -187,3 +187,26 @@ def test_filter_check_remembers_a_file_by_content(tmp_path, defaults):
     curve.write_text("wavelength,throughput\n6000,0\n6500,0\n7000,0\n")  # now unusable: must be checked again
     with pytest.raises(gconfig.ConfigError, match="positive throughput"):
         gconfig.check_bands(config, folder)
+
+
+def test_cache_entries_and_copies_get_ordinary_permissions(tmp_path):
+    """Entries are written through a private temporary (mkstemp: 0600); the renamed file
+    must get the mode any new file gets (common practice: 0666 & ~umask)."""
+    import os
+    import stat
+
+    umask = os.umask(0o022)
+    try:
+        for name in ("a.json", "b.json"):  # a miss (entry written) then a hit (output copied)
+            grid_cache.cached(tmp_path / "run" / name, tmp_path, "demo_kind", {"x": 3},
+                              lambda path: Path(path).write_text("grid"))
+    finally:
+        os.umask(umask)
+    written = [*entries_in(tmp_path), tmp_path / "run" / "a.json", tmp_path / "run" / "b.json"]
+    assert len(written) == 3
+    for path in written:
+        assert stat.S_IMODE(path.stat().st_mode) == 0o644, path
+
+
+def entries_in(output_dir: Path) -> list[Path]:
+    return sorted((output_dir / grid_cache.CACHE_FOLDER).glob("*"))

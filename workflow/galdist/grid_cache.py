@@ -84,6 +84,7 @@ def cached(output: str | Path, output_dir: str | Path, kind: str, inputs: Mappin
         copy_file(entry, output)
         log.info("%s: from the cache, %s", kind, entry)
         return True
+    output.parent.mkdir(parents=True, exist_ok=True)
     build(str(output))
     try:
         copy_file(output, entry, clean_stale=False)
