@@ -13,7 +13,9 @@ For each catalog size N (default 1e5, 1e6, 1e7) this script
 2. runs the full workflow (all stages, every method, shard_rows 10^6 unless
    ``--shard-rows``) in a subprocess ``python -m snakemake --cores 2 --config
    catalog=... run=bench_<N> shard_rows=...`` from the repository root, after
-   deleting ``results/bench_<N>``, and times the wall clock;
+   deleting ``results/bench_<N>`` and (unless ``--warm-cache``) the grid cache
+   ``results/.galdist-cache``, and times the wall clock (the JSON says whether
+   the cache was cold or warm);
 3. measures the I/O floor in this process: a bare ``pyarrow.parquet.read_table``
    of the catalog plus a write with the product's settings (zstd, 256 Ki-row
    groups, dictionaries on text and flag columns only, fsync) of a table with the
@@ -92,6 +94,9 @@ def main(argv=None) -> int:
                     help="profile rule scripts under cProfile after the largest run (optionally a "
                          f"comma-separated list; default {','.join(PROFILE_RULES_DEFAULT)})")
     ap.add_argument("--top", type=int, default=20, help="lines of each profile to print (default 20)")
+    ap.add_argument("--warm-cache", action="store_true",
+                    help="keep results/.galdist-cache (the grid cache) between runs; default: empty it "
+                         "before each run, so the figures are cold ones")
     ap.add_argument("--no-swap-check", action="store_true", help="skip the calibration-swap dry run")
     ap.add_argument("--merge", action="store_true",
                     help="keep other sizes from an existing JSON (same shard_rows and cores) in the report")
@@ -149,7 +154,8 @@ def main(argv=None) -> int:
             say(f"{label(n)} rows: snakemake --cores {args.cores} (run {run})"
                 + (f", repeat {rep + 1}/{args.repeat}" if args.repeat > 1 else ""))
             code_before = code_fingerprint()
-            res = run_workflow(catalog, run, args.shard_rows, args.cores, OUT_DIR / f"snakemake_{n}.log")
+            res = run_workflow(catalog, run, args.shard_rows, args.cores, OUT_DIR / f"snakemake_{n}.log",
+                               warm_cache=args.warm_cache)
             if res["returncode"] != 0:
                 best = res
                 break

@@ -204,3 +204,11 @@ def test_mu_z_error_terms_against_astropy(grid):
 def test_empty_shard(grid):
     out = redshift_distances(np.zeros(0), np.zeros(0), np.zeros(0), np.zeros(0), grid)
     assert all(len(v) == 0 for v in out.values())
+
+
+def test_speed_of_light_is_astropys():
+    # C_KMS is a literal (no astropy import in the jobs that only read grids); it must be
+    # CODATA's exact c = 299 792 458 m/s, as astropy.constants gives it
+    from astropy import constants, units
+
+    assert C_KMS == constants.c.to_value(units.km / units.s)

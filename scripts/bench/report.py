@@ -130,7 +130,7 @@ def print_report(report: dict, stream=None) -> None:
             continue
         sm = r.get("snakemake", {})
         cp = r.get("critical_path") or {}
-        p(f"  {r['rows']:>10,}: wall {r['wall_s']:.1f} s; critical path {fmt(cp.get('seconds'))} s "
+        p(f"  {r['rows']:>10,}: wall {r['wall_s']:.1f} s ({sm.get('grid_cache', 'no')} grid cache); critical path {fmt(cp.get('seconds'))} s "
           f"({' > '.join(cp.get('path', []))}); Snakemake dry run (start-up + DAG) {fmt(sm.get('noop_s'))} s; "
           f"CPU ours {fmt(sm.get('cpu_s_ours'))} s, other processes {fmt(sm.get('foreign_cpu_s'))} s "
           f"({fmt(None if sm.get('foreign_cpu_fraction_of_capacity') is None else 100 * sm['foreign_cpu_fraction_of_capacity'], '{:.0f}')} % of capacity)")

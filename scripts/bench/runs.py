@@ -31,17 +31,27 @@ def snakemake_cmd(cores: int, *extra: str) -> list[str]:
     return [sys.executable, "-m", "snakemake", "--cores", str(cores), *extra]
 
 
-def run_workflow(catalog: Path, run: str, shard_rows: int, cores: int, log_path: Path) -> dict:
-    """Run the whole workflow on a clean run directory; returns wall time and status."""
+def run_workflow(catalog: Path, run: str, shard_rows: int, cores: int, log_path: Path,
+                 warm_cache: bool = False) -> dict:
+    """Run the whole workflow on a clean run directory; returns wall time and status.
+
+    The output folder's grid cache (galdist.grid_cache) is emptied first unless
+    ``warm_cache``; how many entries it held at the start is recorded either way, so
+    a warm figure is never taken for a cold one."""
     run_dir = REPO / "results" / run
     if run_dir.exists():
         shutil.rmtree(run_dir)
+    cache_dir = REPO / "results" / ".galdist-cache"
+    if not warm_cache:
+        shutil.rmtree(cache_dir, ignore_errors=True)
+    cached = len(list(cache_dir.glob("*-*.*"))) if cache_dir.is_dir() else 0
     cmd = snakemake_cmd(cores, *config_args(catalog, run, shard_rows), "-q")
     load_before = os.getloadavg()[0]
     with CpuMeter() as meter, open(log_path, "w") as log:
         proc = subprocess.run(cmd, cwd=REPO, stdout=log, stderr=subprocess.STDOUT)
     return {"command": " ".join(cmd[1:]), "returncode": proc.returncode, "wall_s": round(meter.wall, 3),
-            "log": str(log_path.relative_to(REPO)), "load_avg_1min_before": round(load_before, 2)} | meter.summary()
+            "log": str(log_path.relative_to(REPO)), "load_avg_1min_before": round(load_before, 2),
+            "grid_cache": "warm" if cached else "cold", "grid_cache_entries_before": cached} | meter.summary()
 
 
 def noop_run(catalog: Path, run: str, shard_rows: int, cores: int, log_path: Path) -> dict:

@@ -157,9 +157,13 @@ def check_inputs_exist(paths: list[str], buildable: set[str] = frozenset()) -> N
                           + " (a pipe, device or socket cannot be a catalog)")
 
 
-def check_bands(config: dict) -> None:
-    """Every band's filter must be loadable (speclite name or an existing file)."""
-    from .filters import FilterError, load_filter
+def check_bands(config: dict, cache_dir: str | Path | None = None) -> None:
+    """Every band's filter must be loadable (speclite name or an existing file).
+
+    ``cache_dir``: remember each answer there (``galdist.grid_cache.remembered``: keyed by
+    the name, the file's content, galdist's code and speclite's version), so a start with
+    the same filters need not import speclite."""
+    from . import grid_cache
 
     problems = []
     for label, band in config["bands"].items():
@@ -167,12 +171,24 @@ def check_bands(config: dict) -> None:
         if spec.exists() and not spec.is_file():
             problems.append(f"config key 'bands.{label}.filter': {spec} is not a regular file")
             continue
-        try:
-            load_filter(band["filter"])
-        except FilterError as exc:
-            problems.append(f"config key 'bands.{label}.filter': {exc}")
+        error = grid_cache.remembered(cache_dir, "filter_check",
+                                      {"filter": band["filter"], "file": grid_cache.file_digest(spec)},
+                                      lambda name=band["filter"]: _filter_error(name))
+        if error:
+            problems.append(f"config key 'bands.{label}.filter': {error}")
     if problems:
         raise ConfigError("invalid configuration:\n  - " + "\n  - ".join(problems))
+
+
+def _filter_error(name: str) -> str | None:
+    """Why the filter ``name`` (speclite name or file) does not load, or None."""
+    from .filters import FilterError, load_filter
+
+    try:
+        load_filter(name)
+    except FilterError as exc:
+        return str(exc)
+    return None
 
 
 def load(path: str | Path) -> dict:

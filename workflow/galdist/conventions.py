@@ -117,14 +117,31 @@ def _factors(bands_json: str, extinction_json: str, convention: str) -> tuple:
     return tuple(out)
 
 
-def extinction_factors(config: Mapping, convention: str, bands=None) -> dict[str, float]:
-    """A_conv / A_run for each of ``bands`` (default: every configured band)."""
+def extinction_factors(config: Mapping, convention: str, bands=None, cache_dir=None) -> dict[str, float]:
+    """A_conv / A_run for each of ``bands`` (default: every configured band).
+
+    ``cache_dir``: remember the factors there (``galdist.grid_cache.remembered``: keyed by
+    the bands, their filter files' content, the extinction section and its table's
+    content, galdist's code and the libraries' versions), so the workflow's start need
+    not import speclite and dust_extinction when nothing changed."""
     if convention not in EXTINCTION_CONVENTIONS:
         raise ValueError(f"unknown extinction convention {convention!r}; known: {', '.join(EXTINCTION_CONVENTIONS)}")
     wanted = {b: config["bands"][b] for b in (bands if bands is not None else config["bands"])}
-    factors = _factors(json.dumps(wanted, sort_keys=True), json.dumps(dict(config["extinction"]), sort_keys=True,
-                                                                       default=str), convention)
-    return dict(factors)
+    bands_json = json.dumps(wanted, sort_keys=True)
+    ext_json = json.dumps(dict(config["extinction"]), sort_keys=True, default=str)
+    if cache_dir is None:
+        return dict(_factors(bands_json, ext_json, convention))
+    from . import grid_cache
+    from .config import extinction_table_file
+
+    ext = config["extinction"]
+    table = extinction_table_file(config) if ext["coefficients"] == "table" else None
+    inputs = {"bands": json.loads(bands_json), "extinction": json.loads(ext_json), "convention": convention,
+              "filter_files": {b: grid_cache.file_digest(v["filter"]) for b, v in wanted.items()},
+              "table_file": grid_cache.file_digest(table)}
+    pairs = grid_cache.remembered(cache_dir, "extinction_factors", inputs,
+                                  lambda: [list(p) for p in _factors(bands_json, ext_json, convention)])
+    return {band: float(factor) for band, factor in pairs}
 
 
 def mark_h0_independence(statistics: dict, calibrations: Mapping) -> dict:

@@ -54,7 +54,6 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 
-import astropy.units as u
 import numpy as np
 import yaml
 
@@ -185,6 +184,8 @@ def relative_band_extinction(filt, model, source=None, source_temperature: float
     R_V E. The integration covers only where the filter response is positive; a
     filter reaching beyond the law's valid range raises ValueError.
     """
+    import astropy.units as u  # here, not at the top: the per-shard extinction jobs need no units
+
     label = label or getattr(filt, "name", "band")
     law_name = law_name or type(model).__name__
     w_f = np.asarray(filt.wavelength, dtype=float)

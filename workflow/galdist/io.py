@@ -10,12 +10,9 @@ position.
 from __future__ import annotations
 
 import contextlib
-import glob
 import hashlib
 import json
-import os
 import shutil
-import tempfile
 import zipfile
 from pathlib import Path
 
@@ -23,6 +20,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from .atomic import _atomic_target, _commit, atomic_path  # noqa: F401 (atomic_path: galdist.io's API)
 from .errors import CorruptFileError, StaleInputError
 
 FINGERPRINT_KEY = b"galdist.shard_fingerprint"
@@ -64,57 +62,6 @@ def dictionary_columns(schema: pa.Schema) -> list[str]:
     """
     return [f.name for f in schema if is_arrow_text(f.type) or pa.types.is_dictionary(f.type)
             or (pa.types.is_integer(f.type) and f.name.endswith("flags"))]
-
-
-def _umask() -> int:
-    try:  # Linux: read it without changing it (os.umask would, for a moment, for every thread)
-        with open("/proc/self/status", encoding="ascii") as fh:
-            for line in fh:
-                if line.startswith("Umask:"):
-                    return int(line.split()[1], 8)
-    except (OSError, ValueError):
-        pass
-    mask = os.umask(0o022)
-    os.umask(mask)
-    return mask
-
-
-def _atomic_target(path: Path, suffix: str = ".tmp"):
-    path.parent.mkdir(parents=True, exist_ok=True)
-    # one job writes a given output: temporaries a killed earlier attempt left are its own
-    for stale in path.parent.glob(f".{glob.escape(path.name)}.*{suffix}"):
-        stale.unlink(missing_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=suffix, dir=path.parent)
-    # mkstemp creates the file owner-only (0600); the renamed file gets the mode any
-    # other new file would have
-    os.fchmod(fd, 0o666 & ~_umask())
-    os.close(fd)
-    return Path(tmp)
-
-
-def _commit(tmp: Path, path: Path) -> None:
-    with open(tmp, "rb") as fh:
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
-
-
-@contextlib.contextmanager
-def atomic_path(path: str | Path):
-    """A temporary path beside ``path`` to write to; renamed onto ``path`` only on success.
-
-    The temporary name keeps ``path``'s suffix, so writers that choose the format from
-    it (numpy.savez, matplotlib savefig) work unchanged::
-
-        with atomic_path(out) as tmp:
-            np.savez(tmp, ...)
-    """
-    path = Path(path)
-    tmp = _atomic_target(path, suffix=path.suffix)
-    try:
-        yield tmp
-        _commit(tmp, path)
-    finally:
-        tmp.unlink(missing_ok=True)
 
 
 def write_parquet(table: pa.Table, path: str | Path, compression: str = INTERMEDIATE_COMPRESSION) -> None:

@@ -191,16 +191,17 @@ class MethodSpec:
     def settings_class(self):
         return self._attr(self.settings)
 
-    def used_config(self, config: Mapping, calibration=None) -> dict:
+    def used_config(self, config: Mapping, calibration=None, cache_dir=None) -> dict:
         """The part of the configuration the method's jobs read: its section, the bands,
         the sections in ``uses`` (a change elsewhere does not re-run them), ``likelihoods``
         where its jobs compute eta likelihoods (``computes_likelihood``) and, given the
-        calibration, what its conventions mean for this run (``conventions_for``)."""
+        calibration, what its conventions mean for this run (``conventions_for``; ``cache_dir``
+        as there)."""
         out = {key: config[key] for key in (self.name, "bands", *self.uses)}
         if self.computes_likelihood(config):
             out["likelihoods"] = config.get("likelihoods", {})
         if calibration is not None:
-            out["conventions"] = self.conventions_for(config, calibration)
+            out["conventions"] = self.conventions_for(config, calibration, cache_dir)
         return out
 
     def writes_likelihood(self, config: Mapping) -> bool:
@@ -232,16 +233,16 @@ class MethodSpec:
                 out[inp.column.format(**labels)] = labels[role.group(1)]
         return out
 
-    def conventions_for(self, config: Mapping, calibration) -> dict:
+    def conventions_for(self, config: Mapping, calibration, cache_dir=None) -> dict:
         """The run's H0 (the calibration's zero point is moved to it) and, per band whose
         A_<band> the method reads, the factor onto the calibration's extinction convention
-        (``galdist.conventions``)."""
+        (``galdist.conventions``; ``cache_dir``: where to remember the factors)."""
         from . import conventions
 
         bands = sorted(set(self.extinction_bands(config[self.name]).values()))
         return {"h0": conventions.run_h0(config), "extinction": calibration.extinction_convention,
                 "extinction_factors": conventions.extinction_factors(config, calibration.extinction_convention,
-                                                                     bands)}
+                                                                     bands, cache_dir=cache_dir)}
 
     def settings_for(self, config: Mapping, calibration):
         """The method's settings: its config section, validated by the schema, plus what

@@ -50,12 +50,14 @@ def resolve(user: dict) -> dict:
     return gconfig.layered(user, gconfig.load(gconfig.DEFAULT_CONFIG))
 
 
-def check(user: dict, buildable: frozenset = frozenset(), sample_rows: bool = True) -> Preflight:
+def check(user: dict, buildable: frozenset = frozenset(), sample_rows: bool = True,
+          remember: bool = False) -> Preflight:
     """Run every check in order; a failed check stops the ones that depend on it.
 
     ``buildable``: catalog paths the workflow itself makes (the demo): not required
     to exist yet. ``sample_rows``: read the first rows of each file for the
-    whole-column unit checks.
+    whole-column unit checks. ``remember``: the filter checks remember their answers in
+    the output folder's grid cache (``cache_dir``; False: check every time).
     """
     result = Preflight(resolve(user), [], {})
     cfg = result.config
@@ -75,7 +77,7 @@ def check(user: dict, buildable: frozenset = frozenset(), sample_rows: bool = Tr
     if not ok:
         return result
     ok_files, spec = step("catalog files", lambda: _catalog_files(cfg, buildable))
-    ok_bands, _ = step("bands", lambda: gconfig.check_bands(cfg))
+    ok_bands, _ = step("bands", lambda: gconfig.check_bands(cfg, cache_dir(cfg) if remember else None))
     ok_cal, cals = step("calibrations and stages", lambda: gconfig.check_stages(cfg))
     result.calibrations = cals or {}
     if ok_cal and ok_bands:
@@ -93,6 +95,13 @@ def check(user: dict, buildable: frozenset = frozenset(), sample_rows: bool = Tr
             step("rows", lambda: _has_rows(result.plan))
             step("column values", lambda: _column_sanity(result.plan, cfg["units"]))
     return result
+
+
+def cache_dir(config: dict) -> Path:
+    """The output folder's grid cache (``galdist.grid_cache``)."""
+    from .grid_cache import CACHE_FOLDER
+
+    return Path(config["output_dir"]) / CACHE_FOLDER
 
 
 _DONE = {

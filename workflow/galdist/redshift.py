@@ -22,15 +22,15 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
-from astropy import constants as _const
-from astropy import units as _u
 
 from . import flags as _flags
 from .distance import mpc_from_mu
 from .io import atomic_path, reading_grid
 from .uncertainty import quadrature
 
-C_KMS = _const.c.to_value(_u.km / _u.s)  # 299792.458 km/s (exact, SI definition)
+# exact by the SI definition of the metre; a literal, so that the jobs that only read a
+# mu(z) grid need not import astropy (tests/test_redshift.py checks it against astropy.constants)
+C_KMS = 299_792.458
 
 # CMB dipole, Planck 2018 results I (A&A 641, A1, Table 2), secondary copy.
 V_SUN_KMS = 369.82
@@ -74,6 +74,8 @@ def make_cosmology(name: str | None = None, H0: float = DEFAULT_H0, Om0: float =
 
 def describe_cosmology(cosmology) -> dict:
     """JSON-ready description (class, name, H0, Om0, Ode0, Tcmb0) for provenance."""
+    from astropy import units as _u
+
     return {
         "class": type(cosmology).__name__,
         "name": cosmology.name,
@@ -134,6 +136,8 @@ class MuGrid:
             raise ValueError(f"redshift.grid_z_max must exceed {z_min}, got {z_max}")
         if int(n) < 100:
             raise ValueError(f"redshift.grid_n must be >= 100, got {n}")
+        from astropy import units as _u
+
         z = np.geomspace(z_min, z_max, int(n))
         mu = np.asarray(cosmology.distmod(z).to_value(_u.mag), dtype=float)
         dmu_dlnz = np.gradient(mu, np.log(z), edge_order=2)

@@ -19,8 +19,9 @@ DEMO_CALIBRATION_SAMPLE = "results/demo-input/corvid_reach_calibration.parquet"
 # the user's config (--configfile, --config) laid over config/config.yaml, then every
 # check that can run before a job (galdist.preflight, the same as `galdist check`)
 # (a job started on a cluster node parses this file again: it skips the row sample)
+# (answers that need speclite or dust_extinction are remembered in the grid cache, GRID_CACHE)
 _checked = preflight.check(dict(config), buildable=frozenset({DEMO_CATALOG, DEMO_CALIBRATION_SAMPLE}),
-                           sample_rows=workflow.is_main_process)
+                           sample_rows=workflow.is_main_process, remember=True)
 config.clear()
 config.update(_checked.config)
 try:
@@ -31,6 +32,8 @@ for _warning in (f for f in _checked.findings if f.level == "warning"):
     print(f"galdist: warning [{_warning.check}] {_warning.message}", file=sys.stderr)
 CATALOG_PATHS, CATALOG_FORMAT = gconfig.catalog_spec(config)
 CALIBRATIONS = _checked.calibrations
+# galdist.grid_cache: the once-per-configuration grids and parse-time answers, shared by the runs
+GRID_CACHE = str(preflight.cache_dir(config))
 BANDS = list(config["bands"])
 METHODS = list(config["methods"])
 
@@ -77,7 +80,7 @@ EXTINCTION_TABLE = (str(gconfig.extinction_table_file(config))
                     if config["extinction"]["coefficients"] == "table" else None)
 CALIBRATION_DIGESTS = {m: cal.sha256 for m, cal in CALIBRATIONS.items()}
 # what each method's jobs read of the config, with its calibration's conventions applied to this run
-METHOD_CONFIG = {m: REGISTRY[m].used_config(config, cal) for m, cal in CALIBRATIONS.items()}
+METHOD_CONFIG = {m: REGISTRY[m].used_config(config, cal, cache_dir=GRID_CACHE) for m, cal in CALIBRATIONS.items()}
 TABLE_DIGEST = content_digest([EXTINCTION_TABLE])
 
 
