@@ -57,11 +57,12 @@ import os
 import shutil
 from pathlib import Path
 
-import pyarrow.parquet as pq
-
-from bench.common import DEFAULT_SHARD_ROWS, OUT_DIR, REPO, TARGETS, dir_size, disk_use, label, machine_info, parse_sizes, say
+from bench.common import (DEFAULT_SHARD_ROWS, OUT_DIR, PER_SHARD_RULES, REPO, TARGETS, label, machine_info,
+                          parse_size, parse_sizes, say)
 from bench.catalogs import ensure_catalog
-from bench.floor import io_floor
+from bench.disk import disk_use, product_path, tree_bytes
+from bench.floor import io_floor, product_shape
+from bench.scaling import model_section, print_model
 from bench.profiling import PROFILE_RULES_DEFAULT, profile_rules
 from bench.report import checks, pairwise, print_report
 from bench.runs import (code_fingerprint, critical_path, noop_run, read_benchmarks, rule_graph, run_workflow,
@@ -82,7 +83,14 @@ def main(argv=None) -> int:
     ap.add_argument("--repeat", type=int, default=1,
                     help="run the workflow this many times per size and keep the fastest (default 1)")
     ap.add_argument("--floor-repeats", type=int, default=2,
-                    help="I/O floor measurements per size; the fastest is kept (default 2)")
+                    help="I/O floor measurements per size; the fastest is kept (default 2; 0 = no floor)")
+    ap.add_argument("--no-floor", action="store_const", const=0, dest="floor_repeats",
+                    help="skip the I/O floor (same as --floor-repeats 0; e.g. for a 1e8 run)")
+    ap.add_argument("--config", nargs="+", action="extend", default=[], metavar="KEY=VALUE",
+                    help="passed to every workflow run (snakemake --config), e.g. keep_intermediates=false "
+                         "copy_inputs=false product_layout=parts; recorded in the JSON and the report")
+    ap.add_argument("--disk-interval", type=float, default=1.0,
+                    help="seconds between samples of the run folder's size during a run (default 1; 0 = off)")
     ap.add_argument("--regenerate", action="store_true", help="rebuild catalogs even if a matching file exists")
     ap.add_argument("--keep-catalogs", action="store_true",
                     help="reuse catalogs written by an older galdist/demo.py (default: rebuild them)")
@@ -96,10 +104,39 @@ def main(argv=None) -> int:
     ap.add_argument("--merge", action="store_true",
                     help="keep other sizes from an existing JSON (same shard_rows and cores) in the report")
     ap.add_argument("--json", default=str(OUT_DIR / "benchmark.json"), help="output JSON path")
+    model = ap.add_argument_group("scaling model (scripts/bench/scaling.py)")
+    model.add_argument("--model-from", metavar="JSON",
+                       help="run nothing: print the scaling model fitted to this benchmark JSON")
+    model.add_argument("--fit-rows", type=parse_size, default=None,
+                       help="size whose per-row costs the model uses (default: the largest measured)")
+    model.add_argument("--predict", type=parse_sizes, default=[10**8, 10**9],
+                       help="catalog sizes to predict (default 1e8,1e9)")
+    model.add_argument("--nodes", type=lambda t: [int(x) for x in t.split(",") if x.strip()], default=[1, 10, 100],
+                       help="node counts to predict (default 1,10,100)")
+    model.add_argument("--cores-per-node", type=int, default=2, help="cores (concurrent jobs) per node (default 2)")
+    model.add_argument("--queue-wait-s", type=float, default=30.0,
+                       help="SLURM queue wait per wave of jobs on more than one node (default 30; 0 on one node)")
     args = ap.parse_args(argv)
+    model_args = {"predict_rows": args.predict, "nodes": args.nodes, "cores_per_node": args.cores_per_node,
+                  "queue_wait_s": args.queue_wait_s, "fit_rows": args.fit_rows}
+    if args.model_from:
+        try:
+            section = model_section(json.loads(Path(args.model_from).read_text()), **model_args)
+        except (OSError, ValueError, KeyError) as exc:
+            ap.error(f"--model-from {args.model_from}: {exc}")
+        print_model(section)
+        return 0
 
-    if args.repeat < 1 or args.floor_repeats < 1:
-        ap.error("--repeat and --floor-repeats must be >= 1")
+    if args.repeat < 1 or args.floor_repeats < 0:
+        ap.error("--repeat must be >= 1 and --floor-repeats >= 0")
+    extra = tuple(args.config)
+    for item in extra:
+        key = item.split("=", 1)[0]
+        if "=" not in item or not key:
+            ap.error(f"--config {item!r}: expected KEY=VALUE, e.g. keep_intermediates=false")
+        if key in ("catalog", "run", "shard_rows"):
+            ap.error(f"--config {key}=...: the benchmark sets {key} itself"
+                     + (" (use --shard-rows)" if key == "shard_rows" else ""))
     if args.shard_rows < 1000:
         ap.error("--shard-rows must be >= 1000 (the config schema's minimum)")
     profile_list = None
@@ -113,15 +150,17 @@ def main(argv=None) -> int:
     OUT_DIR.mkdir(parents=True, exist_ok=True)
     json_path = Path(args.json)
     settings = {"cores": args.cores, "shard_rows": args.shard_rows, "seed": args.seed,
-                "chunk_rows": args.chunk_rows, "top": args.top}
+                "chunk_rows": args.chunk_rows, "top": args.top, "config": list(extra),
+                "floor_repeats": args.floor_repeats, "disk_interval_s": args.disk_interval}
     previous = []
     if args.merge and json_path.exists():
         old = json.loads(json_path.read_text())
         if (old.get("settings", {}).get("shard_rows") == args.shard_rows
-                and old.get("settings", {}).get("cores") == args.cores):
+                and old.get("settings", {}).get("cores") == args.cores
+                and old.get("settings", {}).get("config", []) == list(extra)):
             previous = [r for r in old.get("sizes", []) if r["rows"] not in args.sizes]
         else:
-            say("--merge: existing JSON has other shard_rows/cores; not merged")
+            say("--merge: existing JSON has other shard_rows/cores/--config; not merged")
     report = {"created_utc": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
               "machine": machine_info(), "settings": settings, "targets": TARGETS, "sizes": list(previous)}
 
@@ -129,6 +168,10 @@ def main(argv=None) -> int:
         rs = report["sizes"]
         report["scaling"] = pairwise(rs)
         report["checks"] = checks(rs, report["scaling"])
+        try:
+            report["model"] = model_section(report, **model_args)
+        except (ValueError, KeyError):  # no successful size yet
+            report.pop("model", None)
         json_path.parent.mkdir(parents=True, exist_ok=True)
         tmp = json_path.with_suffix(".json.tmp")
         tmp.write_text(json.dumps(report, indent=2, default=str) + "\n")
@@ -149,12 +192,13 @@ def main(argv=None) -> int:
             say(f"{label(n)} rows: snakemake --cores {args.cores} (run {run})"
                 + (f", repeat {rep + 1}/{args.repeat}" if args.repeat > 1 else ""))
             code_before = code_fingerprint()
-            res = run_workflow(catalog, run, args.shard_rows, args.cores, OUT_DIR / f"snakemake_{n}.log")
+            res = run_workflow(catalog, run, args.shard_rows, args.cores, OUT_DIR / f"snakemake_{n}.log", extra,
+                               args.disk_interval)
             if res["returncode"] != 0:
                 best = res
                 break
             res["stages"] = read_benchmarks(run_dir / "benchmarks", n)  # before anything can re-run a job
-            res |= noop_run(catalog, run, args.shard_rows, args.cores, OUT_DIR / f"snakemake_noop_{n}.log")
+            res |= noop_run(catalog, run, args.shard_rows, args.cores, OUT_DIR / f"snakemake_noop_{n}.log", extra)
             res["code_fingerprint"] = code_before
             res["code_changed_during_run"] = code_fingerprint() != code_before or bool(res["noop_ran_jobs"])
             if res["code_changed_during_run"]:
@@ -172,19 +216,25 @@ def main(argv=None) -> int:
             save()
             continue
         entry["wall_s"] = best["wall_s"]
-        product = run_dir / "distances.parquet"
-        entry["shards"] = len(list((run_dir / "shards" / "ingest").glob("part-*.parquet")))
+        product = product_path(run_dir)  # distances.parquet or distances/ (parts)
+        shard_jobs = [stages[r]["jobs"] for r in PER_SHARD_RULES if r in stages]
+        entry["shards"] = (max(shard_jobs) if shard_jobs  # the ingest folder may be a temp, gone by now
+                           else len(list((run_dir / "shards" / "ingest").glob("part-*.parquet"))))
         entry["stages"] = stages  # from the fastest repeat
         if not graph:
-            graph.update(rule_graph(catalog, run, args.shard_rows))
+            graph.update(rule_graph(catalog, run, args.shard_rows, extra))
         entry["critical_path"] = critical_path(graph, stages)
-        entry["product"] = {"rows": pq.read_metadata(product).num_rows, "columns": len(pq.read_schema(product)),
-                            "bytes": product.stat().st_size}
-        entry["run_dir_bytes"] = dir_size(run_dir)
-        entry["disk"] = disk_use(run_dir, catalog, n)
-        say(f"{label(n)} rows: wall {best['wall_s']:.1f} s (fastest of {len(entry['all_wall_s'])}); I/O floor")
-        entry["floor"] = io_floor(catalog, product, args.floor_repeats)
-        entry["ratio_to_floor"] = round(entry["wall_s"] / entry["floor"]["floor_s"], 2)
+        if product is not None:
+            schema, product_rows = product_shape(product)
+            entry["product"] = {"path": product.name, "rows": product_rows, "columns": len(schema),
+                                "bytes": tree_bytes(product)}
+        entry["run_dir_bytes"] = tree_bytes(run_dir)
+        entry["disk"] = disk_use(run_dir, catalog, n, best.get("disk_peak"))
+        say(f"{label(n)} rows: wall {best['wall_s']:.1f} s (fastest of {len(entry['all_wall_s'])})"
+            + ("; I/O floor" if args.floor_repeats and product is not None else ""))
+        if args.floor_repeats and product is not None:
+            entry["floor"] = io_floor(catalog, product, args.floor_repeats)
+            entry["ratio_to_floor"] = round(entry["wall_s"] / entry["floor"]["floor_s"], 2)
         job_s = sum(st["seconds"] for st in entry["stages"].values())
         entry["job_seconds"] = round(job_s, 2)
         entry["wall_minus_job_s_per_core"] = round(entry["wall_s"] - job_s / args.cores, 2)
@@ -193,10 +243,10 @@ def main(argv=None) -> int:
             if not args.no_swap_check:
                 say(f"{label(n)} rows: calibration-swap dry run")
                 entry["swap_check"] = swap_check(catalog, run, args.shard_rows, args.cores, entry["shards"],
-                                                 OUT_DIR / f"swap_dryrun_{n}.log")
+                                                 OUT_DIR / f"swap_dryrun_{n}.log", extra)
             if profile_list:
                 say(f"{label(n)} rows: profiling {', '.join(profile_list)}")
-                entry["profile"] = profile_rules(profile_list, catalog, run, args.shard_rows, args.top)
+                entry["profile"] = profile_rules(profile_list, catalog, run, args.shard_rows, args.top, extra)
             save()
         if not args.keep:
             shutil.rmtree(run_dir, ignore_errors=True)

@@ -16,39 +16,45 @@ from pathlib import Path
 import numpy as np
 
 from bench.common import METHOD_RULE, METHODS, REPO, ROW_RULES, STAGE_ORDER
+from bench.disk import DiskSampler
 
 # After a swap of the Tully-Fisher calibration only these rules may run (the issue's target),
 # and every distance job is Tully-Fisher's.
-SWAP_ALLOWED = {METHOD_RULE, "crosscheck_statistics", "groups", "assemble", "plots", "run_report", "all"}
+SWAP_ALLOWED = {METHOD_RULE, "crosscheck_statistics", "groups", "assemble_part", "assemble", "plots", "run_report",
+                "all"}
 SWAP_CALIBRATION = "{calibration: tf_ks_masters_2008, band: Ks}"
 
 
-def config_args(catalog: Path, run: str, shard_rows: int) -> list[str]:
-    return ["--config", f"catalog={catalog.relative_to(REPO)}", f"run={run}", f"shard_rows={shard_rows}"]
+def config_args(catalog: Path, run: str, shard_rows: int, extra: tuple[str, ...] = ()) -> list[str]:
+    """snakemake --config of a benchmark run; ``extra``: the user's KEY=VALUE pairs (--config)."""
+    return ["--config", f"catalog={catalog.relative_to(REPO)}", f"run={run}", f"shard_rows={shard_rows}", *extra]
 
 
 def snakemake_cmd(cores: int, *extra: str) -> list[str]:
     return [sys.executable, "-m", "snakemake", "--cores", str(cores), *extra]
 
 
-def run_workflow(catalog: Path, run: str, shard_rows: int, cores: int, log_path: Path) -> dict:
-    """Run the whole workflow on a clean run directory; returns wall time and status."""
+def run_workflow(catalog: Path, run: str, shard_rows: int, cores: int, log_path: Path, extra: tuple[str, ...] = (),
+                 disk_interval: float = 1.0) -> dict:
+    """Run the whole workflow on a clean run directory; returns wall time, status and the
+    peak disk use of the run folder sampled every ``disk_interval`` s (0: not sampled)."""
     run_dir = REPO / "results" / run
     if run_dir.exists():
         shutil.rmtree(run_dir)
-    cmd = snakemake_cmd(cores, *config_args(catalog, run, shard_rows), "-q")
+    cmd = snakemake_cmd(cores, *config_args(catalog, run, shard_rows, extra), "-q")
     load_before = os.getloadavg()[0]
-    with CpuMeter() as meter, open(log_path, "w") as log:
+    with DiskSampler(run_dir, disk_interval) as disk, CpuMeter() as meter, open(log_path, "w") as log:
         proc = subprocess.run(cmd, cwd=REPO, stdout=log, stderr=subprocess.STDOUT)
     return {"command": " ".join(cmd[1:]), "returncode": proc.returncode, "wall_s": round(meter.wall, 3),
-            "log": str(log_path.relative_to(REPO)), "load_avg_1min_before": round(load_before, 2)} | meter.summary()
+            "log": str(log_path.relative_to(REPO)), "load_avg_1min_before": round(load_before, 2),
+            "disk_peak": disk.summary()} | meter.summary()
 
 
-def noop_run(catalog: Path, run: str, shard_rows: int, cores: int, log_path: Path) -> dict:
+def noop_run(catalog: Path, run: str, shard_rows: int, cores: int, log_path: Path, extra: tuple[str, ...] = ()) -> dict:
     """A dry run of the finished workflow, which should find nothing to do: Snakemake's own
     start-up, configuration checks and DAG time. If it would run jobs, the code or
     configuration changed under the measurement (another session edited the tree)."""
-    cmd = snakemake_cmd(cores, "-n", *config_args(catalog, run, shard_rows))
+    cmd = snakemake_cmd(cores, "-n", *config_args(catalog, run, shard_rows, extra))
     t0 = time.perf_counter()
     proc = subprocess.run(cmd, cwd=REPO, capture_output=True, text=True)
     elapsed = time.perf_counter() - t0
@@ -167,11 +173,12 @@ def parse_job_stats(text: str) -> dict:
     return counts
 
 
-def swap_check(catalog: Path, run: str, shard_rows: int, cores: int, n_shards: int, log_path: Path) -> dict:
+def swap_check(catalog: Path, run: str, shard_rows: int, cores: int, n_shards: int, log_path: Path,
+               extra: tuple[str, ...] = ()) -> dict:
     """Dry-run a Tully-Fisher calibration swap and count the jobs Snakemake would run: one
     distance job per shard, every one of them Tully-Fisher's, and the final steps (statistics,
     groups, assembly, plots, report)."""
-    args = config_args(catalog, run, shard_rows) + [f"tully_fisher={SWAP_CALIBRATION}"]
+    args = config_args(catalog, run, shard_rows, extra) + [f"tully_fisher={SWAP_CALIBRATION}"]
     cmd = snakemake_cmd(cores, "-n", *args)
     proc = subprocess.run(cmd, cwd=REPO, capture_output=True, text=True)
     log_path.write_text(proc.stdout + proc.stderr)
@@ -188,9 +195,9 @@ def swap_check(catalog: Path, run: str, shard_rows: int, cores: int, n_shards: i
             "log": str(log_path.relative_to(REPO))}
 
 
-def rule_graph(catalog: Path, run: str, shard_rows: int) -> dict[str, list[str]]:
+def rule_graph(catalog: Path, run: str, shard_rows: int, extra: tuple[str, ...] = ()) -> dict[str, list[str]]:
     """rule -> rules it depends on, from ``snakemake --rulegraph`` (dot)."""
-    cmd = snakemake_cmd(1, "--rulegraph", *config_args(catalog, run, shard_rows))
+    cmd = snakemake_cmd(1, "--rulegraph", *config_args(catalog, run, shard_rows, extra))
     proc = subprocess.run(cmd, cwd=REPO, capture_output=True, text=True)
     if proc.returncode != 0:
         return {}
