@@ -98,7 +98,7 @@ class DiskSampler:
         return False
 
     def summary(self) -> dict | None:
-        if self._thread is None:
+        if not self.samples:
             return None
         return {"interval_s": self.interval, "samples": self.samples,
                 "peak_shards_bytes": self.peak_shards, "peak_shards_at_s": self.peak_shards_t,
