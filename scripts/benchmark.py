@@ -12,13 +12,15 @@ For each catalog size N (default 1e5, 1e6, 1e7) this script
    is reused.
 2. runs the full workflow (all stages, every method, shard_rows 10^6 unless
    ``--shard-rows``) in a subprocess ``python -m snakemake --cores 2 --config
-   catalog=... run=bench_<N> shard_rows=...`` from the repository root, after
-   deleting ``results/bench_<N>``, and times the wall clock;
+   catalog=... run=bench_<N> shard_rows=... [--config KEY=VALUE ...]`` from the
+   repository root, after deleting ``results/bench_<N>``, and times the wall clock;
+   a thread samples the bytes of the run's ``shards/`` folder and of the whole run
+   folder every ``--disk-interval`` s (1 s) and keeps the peak of each;
 3. measures the I/O floor in this process: a bare ``pyarrow.parquet.read_table``
    of the catalog plus a write with the product's settings (zstd, 256 Ki-row
    groups, dictionaries on text and flag columns only, fsync) of a table with the
    product's row count, column count and string/number column kinds, filled with
-   the columns just read;
+   the columns just read (``--no-floor`` or ``--floor-repeats 0`` skips it);
 4. parses every Snakemake ``benchmark:`` TSV under ``results/bench_<N>/benchmarks``:
    per rule (per method for the distance rule), jobs, summed and largest seconds,
    rows/s = N / summed seconds, and the largest max_rss (MB).
@@ -38,11 +40,19 @@ profile (imports separated from work). Results go to
 ``results/benchmark/benchmark.json`` (profiles and logs beside it) and a
 plain-text table is printed; ``results/bench_<N>`` is deleted unless ``--keep``.
 
+The report ends with the scaling model (``scripts/bench/scaling.py``): per-stage costs
+fitted from the largest size and the wall time predicted for 1e8 and 1e9 rows on 1, 10
+and 100 nodes; its check fits each size of at least a shard and predicts every larger
+measured one. ``--model-from F.json`` runs nothing and prints the model of an earlier
+JSON (``--fit-rows``, ``--predict``, ``--nodes``, ``--cores-per-node``, ``--queue-wait-s``).
+
     python scripts/benchmark.py                       # 1e5, 1e6, 1e7 rows
     python scripts/benchmark.py --sizes 1e4,1e5,1e6 --profile
     python scripts/benchmark.py --sizes 1e7 --merge   # add a size to an earlier JSON
+    python scripts/benchmark.py --sizes 1e8 --merge --no-floor --no-swap-check --config keep_intermediates=false
+    python scripts/benchmark.py --model-from results/benchmark/benchmark.json --nodes 1,10,100 --queue-wait-s 30
 
-The parts live in ``scripts/bench/`` (catalogs, runs, floor, profiling, report);
+The parts live in ``scripts/bench/`` (catalogs, runs, disk, floor, profiling, scaling, report);
 this file is the command line and the loop over sizes. The accuracy of the
 interpolated quantities (mu(z), K, A) is a test, ``tests/test_accuracy.py``. Speed
 and memory are measured here, never asserted in tests.
@@ -156,11 +166,14 @@ def main(argv=None) -> int:
     if args.merge and json_path.exists():
         old = json.loads(json_path.read_text())
         if (old.get("settings", {}).get("shard_rows") == args.shard_rows
-                and old.get("settings", {}).get("cores") == args.cores
-                and old.get("settings", {}).get("config", []) == list(extra)):
+                and old.get("settings", {}).get("cores") == args.cores):
             previous = [r for r in old.get("sizes", []) if r["rows"] not in args.sizes]
+            other = sorted({" ".join(r.get("config", [])) for r in previous} - {" ".join(extra)})
+            if other:
+                say(f"--merge: kept sizes were run with other --config ({'; '.join(o or '(none)' for o in other)}); "
+                    "the report names each size's")
         else:
-            say("--merge: existing JSON has other shard_rows/cores/--config; not merged")
+            say("--merge: existing JSON has other shard_rows/cores; not merged")
     report = {"created_utc": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
               "machine": machine_info(), "settings": settings, "targets": TARGETS, "sizes": list(previous)}
 
@@ -180,7 +193,8 @@ def main(argv=None) -> int:
     largest = max(args.sizes)
     graph: dict[str, list[str]] = {}
     for n in args.sizes:
-        entry = {"rows": n, "measured_utc": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds")}
+        entry = {"rows": n, "measured_utc": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
+                 "config": list(extra)}
         report["sizes"].append(entry)
         run = f"bench_{n}"
         run_dir = REPO / "results" / run

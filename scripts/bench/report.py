@@ -147,6 +147,8 @@ def print_report(report: dict, stream=None) -> None:
             continue
         sm = r.get("snakemake", {})
         cp = r.get("critical_path") or {}
+        if r.get("config", report["settings"].get("config")) != report["settings"].get("config"):
+            p(f"  {r['rows']:>10,}: run with --config {' '.join(r.get('config') or []) or '(none)'}")
         p(f"  {r['rows']:>10,}: wall {r['wall_s']:.1f} s; critical path {fmt(cp.get('seconds'))} s "
           f"({' > '.join(cp.get('path', []))}); Snakemake dry run (start-up + DAG) {fmt(sm.get('noop_s'))} s; "
           f"CPU ours {fmt(sm.get('cpu_s_ours'))} s, other processes {fmt(sm.get('foreign_cpu_s'))} s "
