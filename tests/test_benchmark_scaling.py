@@ -48,6 +48,8 @@ def test_fit_recovers_the_costs_the_json_was_made_from():
     assert model["per_shard_s_per_row"]["kcorr"] == pytest.approx(1.9e-3)
     assert model["whole_s_per_row"]["assemble"] == pytest.approx((3.0 - 1.1) / 2000)
     assert model["constant_s"] == {"kcorr_grid": 3.0, "mu_grid": 1.0, "plots": 2.0}
+    assert model["warnings"] == []  # a full-shard fit, start-up from a run smaller than a shard
+    assert len(scaling.fit(synthetic_report(), 100)["warnings"]) == 1  # a fit from a tenth of a shard
     # dry runs at 9 and 11 jobs: 1.9 and 2.1 s -> 1 s + 0.1 s/job
     assert model["dag"]["s"] == pytest.approx(1.0) and model["dag"]["s_per_job"] == pytest.approx(0.1)
 

@@ -91,7 +91,15 @@ def fit(report: dict, fit_rows: int | None = None) -> dict:
         dag = {"kind": "proportional to jobs (upper bound)", "s": 0.0, "s_per_job": points[-1][1] / points[-1][0]}
     else:
         dag = {"kind": "not measured", "s": 0.0, "s_per_job": 0.0}
-    return {"fit_rows": n, "startup_rows": small["rows"], "shard_rows": report["settings"]["shard_rows"],
+    shard_rows = report["settings"]["shard_rows"]
+    warnings = []
+    if n < shard_rows:
+        warnings.append(f"fitted from {n:,} rows, less than one shard of {shard_rows:,}: the per-row costs are "
+                        "mostly start-up; fit from a run of at least one full shard")
+    if small["rows"] >= shard_rows:
+        warnings.append(f"start-up taken from full {shard_rows:,}-row shards: overestimated; add a small size "
+                        "(e.g. 1e4) to the benchmark")
+    return {"fit_rows": n, "startup_rows": small["rows"], "shard_rows": shard_rows, "warnings": warnings,
             "startup_s": s0, "per_shard_s_per_row": per_shard, "whole_s_per_row": whole, "constant_s": const,
             "dag": dag}
 
@@ -199,6 +207,8 @@ def print_model(section: dict, stream=None) -> None:
       f"start-up {m['startup_s']:.2f} s (median of the {m['startup_rows']:,}-row run's per-shard and mu_grid "
       f"jobs), DAG {m['dag']['s']:.1f} s + {m['dag']['s_per_job']:.4f} s/job ({m['dag']['kind']}), shards of "
       f"{m['shard_rows']:,} rows")
+    for w in m.get("warnings", []):
+        p(f"  warning: {w}")
     costs = [f"{r} {1e6 * a:.2f}" for r, a in m["per_shard_s_per_row"].items()]
     p(f"  per-shard, us/row: {', '.join(costs)}")
     p(f"  whole-catalog, us/row: {', '.join(f'{r} {1e6 * b:.2f}' for r, b in m['whole_s_per_row'].items())}")
