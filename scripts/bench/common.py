@@ -26,10 +26,14 @@ DEFAULT_SHARD_ROWS = 1_000_000  # the schema's default (config/config.yaml sets 
 METHODS = tuple(REGISTRY)  # benchmark entries per method (benchmarks/<method>/...)
 METHOD_RULE = "distance"  # the one rule of every method's jobs
 # Rules whose work grows with N (rows/s is meaningful); the others run once per configuration.
-ROW_RULES = ("ingest", "extinction", "kcorr", "redshift", *METHODS, "crosscheck_statistics", "assemble")
-PER_SHARD_RULES = ("extinction", "kcorr", "redshift", *METHODS)
+# ``assemble_part`` (one job per shard) exists where the assembly is split into per-shard parts
+# and a final whole-catalog ``assemble``; older runs have ``assemble`` alone.
+ROW_RULES = ("ingest", "extinction", "kcorr", "redshift", *METHODS, "crosscheck_statistics", "groups",
+             "assemble_part", "assemble")
+PER_SHARD_RULES = ("extinction", "kcorr", "redshift", *METHODS)  # the ones --profile can run on one shard
 STAGE_ORDER = ["ingest", "extinction_coefficients", "kcorr_grid", "mu_grid", "extinction", "kcorr",
-               "redshift", *METHODS, "crosscheck_statistics", "assemble", "plots", "run_report"]
+               "redshift", *METHODS, "crosscheck_statistics", "groups", "assemble_part", "assemble", "plots",
+               "run_report"]
 
 TARGETS = {
     "marginal_factor": 2.0,  # (wall(N2) - wall(N1)) <= 2 (floor(N2) - floor(N1))
@@ -37,8 +41,8 @@ TARGETS = {
     "fixed_cost_s": 6.0,
     "max_rss_mb": 1024.0,
     "exponent": 1.0,
-    "intermediates_over_catalog": 1.5,  # every shards/<stage> folder at the run's end (their peak)
-    "product_over_catalog": 2.5,  # distances.parquet (its companions are optional and counted apart)
+    "intermediates_over_catalog": 1.5,  # the shards/ folder at its peak during the run (sampled)
+    "product_over_catalog": 2.5,  # distances.parquet or distances/ (companions are counted apart)
 }
 
 
@@ -66,31 +70,6 @@ def label(n: int) -> str:
 
 def say(msg: str) -> None:
     print(f"[benchmark {dt.datetime.now().strftime('%H:%M:%S')}] {msg}", file=sys.stderr, flush=True)
-
-
-def dir_size(path: Path) -> int:
-    if path.is_file():
-        return path.stat().st_size
-    return sum(p.stat().st_size for p in path.rglob("*") if p.is_file()) if path.exists() else 0
-
-
-def disk_use(run_dir: Path, catalog: Path, rows: int) -> dict:
-    """Bytes per row of every file kind of a finished run: the catalog, each stage's shard
-    folder (the intermediates), the product and its companions; and the ratios the disk
-    targets speak of (intermediates and product over the input catalog)."""
-    per_row = {"catalog": dir_size(catalog) / rows}
-    shards = run_dir / "shards"
-    stages = sorted(p for p in shards.iterdir() if p.is_dir()) if shards.exists() else []
-    per_row |= {f"shards/{p.name}": dir_size(p) / rows for p in stages}
-    intermediate = sum(per_row[f"shards/{p.name}"] for p in stages)
-    files = {"distances.parquet", "eta_likelihoods.parquet", "groups.parquet", "plot_sample.parquet"}
-    per_row |= {name: dir_size(run_dir / name) / rows for name in sorted(files) if (run_dir / name).exists()}
-    rest = dir_size(run_dir) - dir_size(shards) - sum(dir_size(run_dir / f) for f in files)
-    per_row["other (grids, plots, logs, json)"] = rest / rows
-    return {"bytes_per_row": {k: round(v, 1) for k, v in per_row.items()},
-            "intermediates_bytes_per_row": round(intermediate, 1),
-            "intermediates_over_catalog": round(intermediate / per_row["catalog"], 2),
-            "product_over_catalog": round(per_row["distances.parquet"] / per_row["catalog"], 2)}
 
 
 def machine_info() -> dict:

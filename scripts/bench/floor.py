@@ -8,6 +8,7 @@ import time
 from pathlib import Path
 
 import pyarrow as pa
+import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 
 from bench.common import OUT_DIR
@@ -26,13 +27,20 @@ def io_floor(catalog: Path, product: Path, repeats: int = 2) -> dict:
                    "write_bytes_default_encoding": default["write_bytes"]}
 
 
+def product_shape(product: Path) -> tuple[pa.Schema, int]:
+    """Schema and row count of the product, one file or a folder of parts (from the footers)."""
+    if Path(product).is_dir():
+        dataset = ds.dataset(product, format="parquet")
+        return dataset.schema, dataset.count_rows()
+    return pq.read_schema(product), pq.read_metadata(product).num_rows
+
+
 def io_floor_once(catalog: Path, product: Path, product_encoding: bool = True) -> dict:
     """Bare read of the catalog + write of a table shaped like the product, with the
     product's writer settings (zstd, row groups of ``ROW_GROUP_ROWS``, dictionaries on
     text and flag columns only; pyarrow's default dictionaries unless ``product_encoding``),
     fsync included."""
-    out_schema = pq.read_schema(product)
-    out_rows = pq.read_metadata(product).num_rows
+    out_schema, out_rows = product_shape(product)
     t0 = time.perf_counter()
     table = pq.read_table(catalog)
     t_read = time.perf_counter() - t0

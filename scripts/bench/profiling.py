@@ -10,6 +10,7 @@ import time
 from pathlib import Path
 
 from bench.common import METHOD_RULE, METHODS, OUT_DIR, PER_SHARD_RULES, REPO
+from bench.disk import product_path
 from bench.runs import config_args, parse_job_stats, snakemake_cmd
 
 # In DAG order, ingest last: forcing one job leaves every job downstream of it out of date, so
@@ -23,12 +24,13 @@ def _profile_target(run_dir: Path, rule: str) -> Path | None:
     if rule in ("crosscheck_statistics",):
         return run_dir / "crosscheck_statistics.json"
     if rule == "assemble":
-        return run_dir / "distances.parquet"
+        return product_path(run_dir) or run_dir / "distances.parquet"  # either layout
     hits = sorted((run_dir / "shards" / rule).rglob("part-*.parquet"))
     return hits[0] if hits else None
 
 
-def profile_rules(rules: list[str], catalog: Path, run: str, shard_rows: int, top: int) -> dict:
+def profile_rules(rules: list[str], catalog: Path, run: str, shard_rows: int, top: int,
+                  extra: tuple[str, ...] = ()) -> dict:
     """Run each rule's script once more under cProfile (first shard for per-shard rules).
 
     Snakemake writes the job's script (its pickled ``snakemake`` object plus the
@@ -46,7 +48,7 @@ def profile_rules(rules: list[str], catalog: Path, run: str, shard_rows: int, to
         before = set(scripts_dir.glob("*.py")) if scripts_dir.exists() else set()
         # the target comes first: --config takes a variable number of values
         cmd = snakemake_cmd(1, str(target.relative_to(REPO)), "--force", "--skip-script-cleanup",
-                            *config_args(catalog, run, shard_rows))
+                            *config_args(catalog, run, shard_rows, extra))
         proc = subprocess.run(cmd, cwd=REPO, capture_output=True, text=True)
         jobs = parse_job_stats(proc.stdout + proc.stderr)
         after = set(scripts_dir.glob("*.py")) if scripts_dir.exists() else set()

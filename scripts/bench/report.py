@@ -7,24 +7,27 @@ import math
 import sys
 
 from bench.common import TARGETS
+from bench.scaling import print_model
 
 
 def pairwise(results: list[dict]) -> list[dict]:
-    """Scaling exponent and marginal cost between consecutive successful sizes."""
-    ok = [r for r in results if r.get("wall_s") is not None and r.get("floor", {}).get("floor_s") is not None]
+    """Scaling exponent and marginal cost between consecutive successful sizes (the floor's
+    figures None where a size was run without the I/O floor)."""
+    ok = [r for r in results if r.get("wall_s") is not None]
     ok.sort(key=lambda r: r["rows"])
     out = []
     for a, b in zip(ok, ok[1:]):
         dwall = b["wall_s"] - a["wall_s"]
-        dfloor = b["floor"]["floor_s"] - a["floor"]["floor_s"]
+        fa, fb = (r.get("floor", {}).get("floor_s") for r in (a, b))
+        dfloor = None if fa is None or fb is None else fb - fa
         out.append({"from": a["rows"], "to": b["rows"],
                     "exponent": round(math.log(b["wall_s"] / a["wall_s"]) / math.log(b["rows"] / a["rows"]), 3),
-                    "marginal_wall_s": round(dwall, 3), "marginal_floor_s": round(dfloor, 3),
-                    "marginal_ratio": round(dwall / dfloor, 2) if dfloor > 0 else None,
+                    "marginal_wall_s": round(dwall, 3), "marginal_floor_s": None if dfloor is None else round(dfloor, 3),
+                    "marginal_ratio": round(dwall / dfloor, 2) if dfloor is not None and dfloor > 0 else None,
                     "same_code": a.get("snakemake", {}).get("code_fingerprint")
                     == b.get("snakemake", {}).get("code_fingerprint"),
                     "wall_us_per_row": round(1e6 * dwall / (b["rows"] - a["rows"]), 3),
-                    "floor_us_per_row": round(1e6 * dfloor / (b["rows"] - a["rows"]), 3)})
+                    "floor_us_per_row": None if dfloor is None else round(1e6 * dfloor / (b["rows"] - a["rows"]), 3)})
     return out
 
 
@@ -57,12 +60,14 @@ def checks(results: list[dict], pairs: list[dict]) -> dict:
                                                               default=None) for r in results},
                           "target": f"<= {TARGETS['max_rss_mb']} MB, independent of N",
                           "pass": worst[2] <= TARGETS["max_rss_mb"]}
-    disk = [r for r in results if r.get("disk")]
     for key in ("intermediates_over_catalog", "product_over_catalog"):
-        if disk:
+        disk = [r for r in results if (r.get("disk") or {}).get(key) is not None]
+        if disk:  # intermediates: their sampled peak during the run, else their size at its end
             worst = max(disk, key=lambda r: r["disk"][key])
             out[key] = {"value": worst["disk"][key], "rows": worst["rows"], "target": f"<= {TARGETS[key]}",
                         "pass": worst["disk"][key] <= TARGETS[key]}
+            if key == "intermediates_over_catalog":
+                out[key]["judged_on"] = worst["disk"].get("intermediates_judged_on", "end of run")
     for r in sorted(results, key=lambda r: -r["rows"]):
         if "swap_check" in r:
             out["calibration_swap"] = {"rows": r["rows"], "jobs": r["swap_check"]["jobs"],
@@ -83,6 +88,7 @@ def print_report(report: dict, stream=None) -> None:
     p("")
     p(f"galdist benchmark  ({report['machine']['cpus']} CPUs, cores={report['settings']['cores']}, "
       f"shard_rows={report['settings']['shard_rows']:,}, commit {str(report['machine']['git_commit'])[:10]})")
+    p(f"  --config: {' '.join(report['settings'].get('config') or []) or '(none: the configuration defaults)'}")
     p("")
     p(f"{'rows':>10} {'shards':>6} {'jobs':>5} {'wall s':>8} {'floor s':>8} {'(read':>7} {'write)':>7} "
       f"{'wall/floor':>10} {'rows/s':>10} {'job s':>8} {'max RSS MB':>10}")
@@ -115,14 +121,25 @@ def print_report(report: dict, stream=None) -> None:
     disk = [r for r in results if r.get("disk")]
     if disk:
         p("")
-        p("disk, bytes per row (intermediates = every shards/<stage> folder at the run's end, their peak):")
+        p("disk, bytes per row at the run's end (intermediates = the shards/<stage> folders):")
         kinds = list(dict.fromkeys(k for r in disk for k in r["disk"]["bytes_per_row"]))
         p(f"  {'file':<34}" + "".join(f"{r['rows']:>12,}" for r in disk))
         for k in kinds:
             p(f"  {k:<34}" + "".join(f"{fmt(r['disk']['bytes_per_row'].get(k)):>12}" for r in disk))
-        for key, text in (("intermediates_over_catalog", "intermediates / catalog"),
-                          ("product_over_catalog", "distances.parquet / catalog")):
-            p(f"  {text:<34}" + "".join(f"{fmt(r['disk'][key], '{:.2f}'):>12}" for r in disk))
+        for key, text in (("intermediates_over_catalog_end", "intermediates / catalog, end"),
+                          ("product_over_catalog", "product / catalog")):
+            p(f"  {text:<34}" + "".join(f"{fmt(r['disk'].get(key, r['disk'].get(key.removesuffix('_end'))), '{:.2f}'):>12}"
+                                        for r in disk))  # older JSONs: no "_end"
+        peaks = [r["disk"].get("peak") or {} for r in disk]
+        if any(peaks):
+            p(f"peak during the run (sampled every ~{fmt(max(k.get('interval_s', 0) for k in peaks), '{:g}')} s; "
+              "a lower bound of the true peak):")
+            for key, text in (("shards_bytes_per_row", "shards/, bytes per row"),
+                              ("shards_over_catalog", "shards/ / catalog"),
+                              ("run_bytes_per_row", "run folder, bytes per row"),
+                              ("run_over_catalog", "run folder / catalog"),
+                              ("peak_shards_at_s", "shards/ peak at (s into the run)")):
+                p(f"  {text:<34}" + "".join(f"{fmt(k.get(key)):>12}" for k in peaks))
     p("")
     p("where the wall time goes:")
     for r in results:
@@ -130,6 +147,8 @@ def print_report(report: dict, stream=None) -> None:
             continue
         sm = r.get("snakemake", {})
         cp = r.get("critical_path") or {}
+        if r.get("config", report["settings"].get("config")) != report["settings"].get("config"):
+            p(f"  {r['rows']:>10,}: run with --config {' '.join(r.get('config') or []) or '(none)'}")
         p(f"  {r['rows']:>10,}: wall {r['wall_s']:.1f} s ({sm.get('grid_cache', 'no')} grid cache); critical path {fmt(cp.get('seconds'))} s "
           f"({' > '.join(cp.get('path', []))}); Snakemake dry run (start-up + DAG) {fmt(sm.get('noop_s'))} s; "
           f"CPU ours {fmt(sm.get('cpu_s_ours'))} s, other processes {fmt(sm.get('foreign_cpu_s'))} s "
@@ -139,9 +158,10 @@ def print_report(report: dict, stream=None) -> None:
         p("scaling between consecutive sizes:")
         for s in report["scaling"]:
             p(f"  {s['from']:>10,} -> {s['to']:>10,}: exponent {s['exponent']:.3f}; marginal wall "
-              f"{s['marginal_wall_s']:.1f} s vs floor {s['marginal_floor_s']:.1f} s "
+              f"{s['marginal_wall_s']:.1f} s vs floor {fmt(s['marginal_floor_s'])} s "
               f"(ratio {fmt(s['marginal_ratio'], '{:.1f}')}; {s['wall_us_per_row']:.2f} vs "
-              f"{s['floor_us_per_row']:.2f} us/row)" + ("" if s.get("same_code") else "  [different code versions!]"))
+              f"{fmt(s['floor_us_per_row'], '{:.2f}')} us/row)"
+              + ("" if s.get("same_code") else "  [different code versions!]"))
     if report.get("checks"):
         p("")
         p("targets:")
@@ -149,6 +169,8 @@ def print_report(report: dict, stream=None) -> None:
             verdict = "PASS" if c.get("pass") else "FAIL"
             detail = {k: v for k, v in c.items() if k not in ("pass", "per_size_mb")}
             p(f"  {name:<17} {verdict}  {json.dumps(detail, default=str)}")
+    if report.get("model"):
+        print_model(report["model"], stream)
     for r in results:
         prof = r.get("profile")
         if not prof:

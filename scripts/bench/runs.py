@@ -16,24 +16,28 @@ from pathlib import Path
 import numpy as np
 
 from bench.common import METHOD_RULE, METHODS, REPO, ROW_RULES, STAGE_ORDER
+from bench.disk import DiskSampler
 
 # After a swap of the Tully-Fisher calibration only these rules may run (the issue's target),
 # and every distance job is Tully-Fisher's.
-SWAP_ALLOWED = {METHOD_RULE, "crosscheck_statistics", "groups", "assemble", "plots", "run_report", "all"}
+SWAP_ALLOWED = {METHOD_RULE, "crosscheck_statistics", "groups", "assemble_part", "assemble", "plots", "run_report",
+                "all"}
 SWAP_CALIBRATION = "{calibration: tf_ks_masters_2008, band: Ks}"
 
 
-def config_args(catalog: Path, run: str, shard_rows: int) -> list[str]:
-    return ["--config", f"catalog={catalog.relative_to(REPO)}", f"run={run}", f"shard_rows={shard_rows}"]
+def config_args(catalog: Path, run: str, shard_rows: int, extra: tuple[str, ...] = ()) -> list[str]:
+    """snakemake --config of a benchmark run; ``extra``: the user's KEY=VALUE pairs (--config)."""
+    return ["--config", f"catalog={catalog.relative_to(REPO)}", f"run={run}", f"shard_rows={shard_rows}", *extra]
 
 
 def snakemake_cmd(cores: int, *extra: str) -> list[str]:
     return [sys.executable, "-m", "snakemake", "--cores", str(cores), *extra]
 
 
-def run_workflow(catalog: Path, run: str, shard_rows: int, cores: int, log_path: Path,
-                 warm_cache: bool = False) -> dict:
-    """Run the whole workflow on a clean run directory; returns wall time and status.
+def run_workflow(catalog: Path, run: str, shard_rows: int, cores: int, log_path: Path, extra: tuple[str, ...] = (),
+                 disk_interval: float = 1.0, warm_cache: bool = False) -> dict:
+    """Run the whole workflow on a clean run directory; returns wall time, status and the
+    peak disk use of the run folder sampled every ``disk_interval`` s (0: not sampled).
 
     The output folder's grid cache (galdist.grid_cache) is emptied first unless
     ``warm_cache``; how many entries it held at the start is recorded either way, so
@@ -45,20 +49,21 @@ def run_workflow(catalog: Path, run: str, shard_rows: int, cores: int, log_path:
     if not warm_cache:
         shutil.rmtree(cache_dir, ignore_errors=True)
     cached = len(list(cache_dir.glob("*-*.*"))) if cache_dir.is_dir() else 0
-    cmd = snakemake_cmd(cores, *config_args(catalog, run, shard_rows), "-q")
+    cmd = snakemake_cmd(cores, *config_args(catalog, run, shard_rows, extra), "-q")
     load_before = os.getloadavg()[0]
-    with CpuMeter() as meter, open(log_path, "w") as log:
+    with DiskSampler(run_dir, disk_interval) as disk, CpuMeter() as meter, open(log_path, "w") as log:
         proc = subprocess.run(cmd, cwd=REPO, stdout=log, stderr=subprocess.STDOUT)
     return {"command": " ".join(cmd[1:]), "returncode": proc.returncode, "wall_s": round(meter.wall, 3),
             "log": str(log_path.relative_to(REPO)), "load_avg_1min_before": round(load_before, 2),
-            "grid_cache": "warm" if cached else "cold", "grid_cache_entries_before": cached} | meter.summary()
+            "grid_cache": "warm" if cached else "cold", "grid_cache_entries_before": cached,
+            "disk_peak": disk.summary()} | meter.summary()
 
 
-def noop_run(catalog: Path, run: str, shard_rows: int, cores: int, log_path: Path) -> dict:
+def noop_run(catalog: Path, run: str, shard_rows: int, cores: int, log_path: Path, extra: tuple[str, ...] = ()) -> dict:
     """A dry run of the finished workflow, which should find nothing to do: Snakemake's own
     start-up, configuration checks and DAG time. If it would run jobs, the code or
     configuration changed under the measurement (another session edited the tree)."""
-    cmd = snakemake_cmd(cores, "-n", *config_args(catalog, run, shard_rows))
+    cmd = snakemake_cmd(cores, "-n", *config_args(catalog, run, shard_rows, extra))
     t0 = time.perf_counter()
     proc = subprocess.run(cmd, cwd=REPO, capture_output=True, text=True)
     elapsed = time.perf_counter() - t0
@@ -177,19 +182,22 @@ def parse_job_stats(text: str) -> dict:
     return counts
 
 
-def swap_check(catalog: Path, run: str, shard_rows: int, cores: int, n_shards: int, log_path: Path) -> dict:
+def swap_check(catalog: Path, run: str, shard_rows: int, cores: int, n_shards: int, log_path: Path,
+               extra: tuple[str, ...] = ()) -> dict:
     """Dry-run a Tully-Fisher calibration swap and count the jobs Snakemake would run: one
     distance job per shard, every one of them Tully-Fisher's, and the final steps (statistics,
     groups, assembly, plots, report)."""
-    args = config_args(catalog, run, shard_rows) + [f"tully_fisher={SWAP_CALIBRATION}"]
+    args = config_args(catalog, run, shard_rows, extra) + [f"tully_fisher={SWAP_CALIBRATION}"]
     cmd = snakemake_cmd(cores, "-n", *args)
     proc = subprocess.run(cmd, cwd=REPO, capture_output=True, text=True)
     log_path.write_text(proc.stdout + proc.stderr)
     counts = parse_job_stats(proc.stdout + "\n" + proc.stderr)
     unexpected = sorted(set(counts) - SWAP_ALLOWED)
-    # per-shard outputs: every one Tully-Fisher's (the groups job's per-galaxy folder follows the distances)
+    # per-shard stage outputs: every one Tully-Fisher's (the groups job's per-galaxy folder and the
+    # product's parts follow the distances)
     shards = [line for line in (proc.stdout + proc.stderr).splitlines()
-              if "output:" in line and "/shards/" in line and "/shards/groups" not in line]
+              if "output:" in line and "/shards/" in line and "/shards/groups" not in line
+              and "/shards/assembly" not in line]
     ok = (proc.returncode == 0 and bool(counts) and not unexpected and counts.get(METHOD_RULE, 0) == n_shards
           and all("/shards/tully_fisher/" in line for line in shards))
     return {"command": " ".join(cmd[1:]), "returncode": proc.returncode, "jobs": counts,
@@ -198,9 +206,9 @@ def swap_check(catalog: Path, run: str, shard_rows: int, cores: int, n_shards: i
             "log": str(log_path.relative_to(REPO))}
 
 
-def rule_graph(catalog: Path, run: str, shard_rows: int) -> dict[str, list[str]]:
+def rule_graph(catalog: Path, run: str, shard_rows: int, extra: tuple[str, ...] = ()) -> dict[str, list[str]]:
     """rule -> rules it depends on, from ``snakemake --rulegraph`` (dot)."""
-    cmd = snakemake_cmd(1, "--rulegraph", *config_args(catalog, run, shard_rows))
+    cmd = snakemake_cmd(1, "--rulegraph", *config_args(catalog, run, shard_rows, extra))
     proc = subprocess.run(cmd, cwd=REPO, capture_output=True, text=True)
     if proc.returncode != 0:
         return {}
