@@ -15,7 +15,7 @@ from bench.runs import config_args, parse_job_stats, snakemake_cmd
 
 # In DAG order, ingest last: forcing one job leaves every job downstream of it out of date, so
 # profiling in this order never makes Snakemake re-run an upstream job first.
-PROFILE_RULES_DEFAULT = (*PER_SHARD_RULES, "crosscheck_statistics", "assemble", "ingest")
+PROFILE_RULES_DEFAULT = (*PER_SHARD_RULES, "crosscheck_statistics", "assemble_part", "assemble", "ingest")
 
 
 def _profile_target(run_dir: Path, rule: str) -> Path | None:
@@ -23,6 +23,8 @@ def _profile_target(run_dir: Path, rule: str) -> Path | None:
         return run_dir / "shards" / "ingest"
     if rule in ("crosscheck_statistics",):
         return run_dir / "crosscheck_statistics.json"
+    if rule == "assemble_part":  # the first shard's part (its counts file: either product layout)
+        return run_dir / "shards" / "assembly" / "counts-00000.json"
     if rule == "assemble":
         return product_path(run_dir) or run_dir / "distances.parquet"  # either layout
     hits = sorted((run_dir / "shards" / rule).rglob("part-*.parquet"))

@@ -33,12 +33,12 @@ with logged(snakemake.log[0], "assemble") as log:
             for old in folder.glob("part-*.parquet") if folder.is_dir() else []:
                 if old.name not in keep:
                     old.unlink()
-    else:
-        product.concatenate(parts, out.distances)
+    else:  # one part (a catalog of one shard) is the file already: moved, not rewritten
+        product.join_parts(parts, out.distances)
         if like_parts:
-            product.concatenate(like_parts, out.likelihoods)
+            product.join_parts(like_parts, out.likelihoods)
     like_files = [out.likelihoods] if params.layout == "file" and like_parts else like_parts
-    info = report.read_provenance(parts[0])
+    info = report.read_provenance(out.distances if params.layout == "file" else parts[0])
     summary = {"rows_in": ingest_summary["rows_in"], "rows_out": counts["rows"], "methods": list(methods),
                "product": {"layout": params.layout,
                            "path": Path(out.distances).name if params.layout == "file" else "distances/",

@@ -375,6 +375,17 @@ def merge_counts(parts: list[dict], entries: dict) -> dict:
                                  for name, v in kinds.items()}}
 
 
+def join_parts(parts: list, out_path) -> None:
+    """The product parts as the one file ``out_path``: a single part is renamed (same file
+    system, atomic), several are concatenated (``concatenate``)."""
+    import os
+
+    if len(parts) == 1:
+        os.replace(parts[0], out_path)
+    else:
+        concatenate(parts, out_path)
+
+
 def concatenate(parts: list, out_path, created: str | None = None) -> int:
     """The product parts, in order, as one Parquet file (row group by row group, never a
     whole part in memory); the schema and its metadata are the first part's, with the
