@@ -99,6 +99,9 @@ CAUTIONS = (
 #: in float64 (measured on the benchmark's 10^6-row shards, with likelihood.BLOCK_ROWS = 4096:
 #: peak 0.75 GB; 131072 rows and blocks of 16384 reached 1.15 GB)
 BATCH_ROWS = 65_536
+#: likelihood blocks are gathered up to this many bytes before a write: a batch of mostly
+#: Gaussian (null) rows is one row group, a batch of stored curves a few
+LIKELIHOOD_FLUSH_BYTES = 32 << 20
 #: the catalog columns the product always carries (config copy_inputs: false drops the rest)
 IDENTITY_COLUMNS = frozenset({"galaxy_id", "ra", "dec", "z_helio", "z_helio_err", "galaxy_class", "group_id"})
 PLOT_COLUMNS = ["galaxy_id", "gal_l", "gal_b", "z_cmb", "mu_z", "mu_z_err"] + [
@@ -301,6 +304,15 @@ def assemble_part(files: dict, index: int, out_path, sample_path, grid, statisti
                 usable = {p: crosscheck.best_usable(cols[f"{p}_mu"], cols[f"{p}_mu_err"], cols[f"{p}_flags"])
                           for p in prefixes if f"{p}_mu" in cols}
                 parts = {p: (lambda a, b, r=r, s=rows: r.take(s + a, s + b)) for p, r in readers.items()}
+                blocks = []  # likelihood rows written together (few row groups, bounded memory)
+
+                def flush():
+                    nonlocal like_writer
+                    lt = pa.concat_tables(blocks)
+                    if like_writer is None:
+                        like_writer = AtomicParquetWriter(likelihood_path, likelihood_schema(lt.schema, eta_grid))
+                    like_writer.write(lt.cast(like_writer.writer.schema))
+                    blocks.clear()
                 for a, b, lists, summaries, kind in lk.likelihood_blocks(
                         dists, cols["mu_z"], eta_grid, parts=parts, usable=usable, offsets=offsets):
                     for k, v in summaries.items():
@@ -309,12 +321,13 @@ def assemble_part(files: dict, index: int, out_path, sample_path, grid, statisti
                         counts_of = kinds.setdefault(name, Counter())
                         counts_of.update({str(k): int(c) for k, c in zip(*np.unique(v, return_counts=True))})
                     if likelihood_path is not None:
-                        lt = pa.table({"galaxy_id": cols["galaxy_id"][a:b]}
-                                      | {f"{name}_eta_like": arr for name, arr in lists.items()}
-                                      | {f"{name}_eta_like_kind": pa.array(v) for name, v in kind.items()})
-                        if like_writer is None:
-                            like_writer = AtomicParquetWriter(likelihood_path, likelihood_schema(lt.schema, eta_grid))
-                        like_writer.write(lt.cast(like_writer.writer.schema))
+                        blocks.append(pa.table({"galaxy_id": cols["galaxy_id"][a:b]}
+                                               | {f"{name}_eta_like": arr for name, arr in lists.items()}
+                                               | {f"{name}_eta_like_kind": pa.array(v) for name, v in kind.items()}))
+                        if sum(t.nbytes for t in blocks) > LIKELIHOOD_FLUSH_BYTES:
+                            flush()
+                if blocks:
+                    flush()
             if writer is None:
                 used = [e for e in ordered_entries(cols, entries)
                         if copy_inputs or e.origin != "catalog" or e.name in IDENTITY_COLUMNS]
