@@ -168,10 +168,11 @@ def test_every_job_was_a_slurm_job(runs):
     assert set(jobs) == set(submitted), (jobs, submitted)
     assert all(j["state"] == "COMPLETED" for j in jobs.values()), jobs
     kinds = sorted(submitted.values())
-    # One job per shard for the shard's chain, one per shard for redshift, one for assemble,
-    # plots and the run report.
+    # One job per shard for the shard's chain, one per shard for redshift and for its product
+    # part, one for assemble, plots and the run report.
     assert kinds.count("group_shard_distance_extinction_kcorr") == 2, kinds
     assert kinds.count("rule_redshift") == 2, kinds
+    assert kinds.count("rule_assemble_part") == 2, kinds
     assert kinds.count("group_product_assemble_plots_run_report") == 1, kinds
     for rule in ("demo_catalog", "ingest", "mu_grid", "extinction_coefficients", "kcorr_grid",
                  "crosscheck_statistics", "groups"):
@@ -193,6 +194,8 @@ def test_profile_resources_reach_sbatch(runs):
         assert (job["cpus"], job["min_memory"], job["time_limit"]) == ("1", "2000M", limit), job
     for job in by_kind["rule_redshift"]:
         assert (job["cpus"], job["min_memory"], job["time_limit"]) == ("1", "2000M", "10:00"), job
+    for job in by_kind["rule_assemble_part"]:
+        assert (job["cpus"], job["min_memory"], job["time_limit"]) == ("1", "2000M", "15:00"), job
     # Whole-catalog rules: fixed memory (bounded by a shard, not by the catalog), a run
     # time that scales with their input's size; a small demo gets the floor.
     (ingest,) = by_kind["rule_ingest"]
