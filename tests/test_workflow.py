@@ -56,6 +56,11 @@ def test_zero_point_consistent_with_zero(demo_run):
         assert abs(s["wmean"]) < 3 * s["wmean_err"], (method, s["wmean"], s["wmean_err"])
         # implied H0 = 70 * 10^(-0.2 <dmu>): consistent with the assumed 70 within 3 sigma
         assert abs(s["h0_implied"] - 70.0) < 3 * s["h0_implied_err_stat"]
+    # whether an implied H0 is a measurement follows the calibration's zero point: the shipped
+    # FP plane's assumes H0 (its file's zero_point_h0), the demo's TF and SBF files do not
+    assert stats["methods"]["fp"]["h0_implied_independent"] is False
+    assert "not independent" in stats["methods"]["fp"]["h0_implied_note"]
+    assert stats["methods"]["tf"]["h0_implied_independent"] is True
 
 
 def test_product_metadata(demo_run):

@@ -6,8 +6,9 @@ from pathlib import Path
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from galdist import dictionary, io, product, report
+from galdist import calibration, conventions, dictionary, io, product, report
 from galdist.logs import logged
+from galdist.methods import REGISTRY
 
 with logged(snakemake.log[0], "assemble") as log:
     inp, out, params = snakemake.input, snakemake.output, snakemake.params
@@ -39,12 +40,15 @@ with logged(snakemake.log[0], "assemble") as log:
             product.join_parts(like_parts, out.likelihoods)
     like_files = [out.likelihoods] if params.layout == "file" and like_parts else like_parts
     info = report.read_provenance(out.distances if params.layout == "file" else parts[0])
+    stats = io.read_json(inp.statistics)  # with each method's implied H0 marked (in)dependent of the run's H0
+    cals = {m: calibration.load_calibration(p) for m, p in params.calibrations.items()}
+    conventions.mark_h0_independence(stats, {REGISTRY[m].prefix: cal for m, cal in cals.items()})
     summary = {"rows_in": ingest_summary["rows_in"], "rows_out": counts["rows"], "methods": list(methods),
                "product": {"layout": params.layout,
                            "path": Path(out.distances).name if params.layout == "file" else "distances/",
                            "parts": len(parts)},
                "flag_counts": counts["flag_counts"], "best_method": counts["best_method"],
-               "statistics": io.read_json(inp.statistics), **{k: v for k, v in io.read_json(inp.groups).items()
+               "statistics": stats, **{k: v for k, v in io.read_json(inp.groups).items()
                                                               if k in ("groups", "zero_point")},
                "eta_likelihoods": {"file": "eta_likelihoods.parquet" if params.layout == "file" else "eta_likelihoods/",
                                    "eta_min": lk["eta_min"], "eta_max": lk["eta_max"], "eta_step": lk["eta_step"],

@@ -136,6 +136,8 @@ rule assemble:
         layout=PRODUCT_LAYOUT,
         run_dir=RUN,
         methods=METHODS,
+        calibrations=CALIBRATION_FILES,
+        content=CALIBRATION_DIGESTS,
         likelihoods=config["likelihoods"],
     log:
         f"{LOGS}/assemble.log",
